@@ -1,0 +1,5 @@
+import sys
+
+from model_store.cli import main
+
+sys.exit(main())

@@ -1,0 +1,115 @@
+"""The single-file form of a bundle: an uncompressed POSIX tar of its files.
+
+Packing writes the manifest first, then the listed files in sorted order,
+with fixed owner, mode and time, so the same bundle always packs to the same
+bytes. Reading never extracts anything to disk by itself: it returns the
+member bytes after refusing absolute paths, ``..``, links, devices,
+directories, duplicate names, oversized members and any file the manifest
+does not list.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import tarfile
+from pathlib import Path, PurePosixPath
+
+from model_store.errors import BundleFormatError, UnsafeArchiveError
+from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE
+
+__all__ = ["MAX_MEMBER_BYTES", "is_archive", "pack_directory", "read_archive"]
+
+MAX_MEMBER_BYTES = 2 * 1024**3
+_MAX_MEMBERS = 64
+
+
+def is_archive(path: Path) -> bool:
+    """True when ``path`` is a file (the single-file form) rather than a bundle directory."""
+    return Path(path).is_file()
+
+
+def pack_directory(bundle_dir: Path, out: Path | io.BufferedIOBase) -> None:
+    """Write the bundle in ``bundle_dir`` as a deterministic tar to a path or binary stream."""
+    bundle_dir = Path(bundle_dir)
+    manifest = json.loads((bundle_dir / MANIFEST_FILE).read_text(encoding="utf-8"))
+    names = [MANIFEST_FILE, *sorted(manifest.get("files", {}))]
+    if (bundle_dir / SIGNATURE_FILE).is_file():
+        names.append(SIGNATURE_FILE)
+    if isinstance(out, (str, Path)):
+        with open(out, "wb") as handle:
+            _write_tar(bundle_dir, names, handle)
+    else:
+        _write_tar(bundle_dir, names, out)
+
+
+def _write_tar(bundle_dir: Path, names: list[str], handle) -> None:
+    with tarfile.open(fileobj=handle, mode="w", format=tarfile.PAX_FORMAT) as tar:
+        for name in names:
+            data = (bundle_dir / name).read_bytes()
+            info = tarfile.TarInfo(name)
+            info.size = len(data)
+            info.mode = 0o644
+            info.mtime = 0
+            info.uname = info.gname = ""
+            tar.addfile(info, io.BytesIO(data))
+
+
+def read_archive(path: Path) -> dict[str, bytes]:
+    """Return ``{member name: bytes}`` for a safe bundle archive, else raise ``UnsafeArchiveError``."""
+    try:
+        with tarfile.open(path, mode="r:") as tar:
+            members = _checked_members(path, tar)
+            contents = {member.name: _read_member(tar, member) for member in members}
+    except tarfile.TarError as exc:
+        raise BundleFormatError(f"{path}: not a bundle archive (uncompressed tar expected): {exc}") from exc
+    if MANIFEST_FILE not in contents:
+        raise BundleFormatError(f"{path}: archive has no {MANIFEST_FILE}; it is not a bundle")
+    try:
+        listed = set(json.loads(contents[MANIFEST_FILE]).get("files", {}))
+    except (ValueError, AttributeError) as exc:
+        raise BundleFormatError(f"{path}: {MANIFEST_FILE} is not a JSON object: {exc}") from exc
+    allowed = listed | {MANIFEST_FILE, SIGNATURE_FILE}
+    unexpected = sorted(set(contents) - allowed)
+    if unexpected:
+        raise UnsafeArchiveError(
+            f"{path}: archive holds {unexpected[0]!r}, which the manifest does not list; "
+            "a bundle archive may only hold the manifest, its signature and the listed files"
+        )
+    return contents
+
+
+def _checked_members(path: Path, tar: tarfile.TarFile) -> list[tarfile.TarInfo]:
+    members = []
+    seen: set[str] = set()
+    for member in tar:
+        if len(members) >= _MAX_MEMBERS:
+            raise UnsafeArchiveError(f"{path}: more than {_MAX_MEMBERS} entries; not a bundle archive")
+        name = member.name
+        pure = PurePosixPath(name)
+        if name.startswith("/") or pure.is_absolute() or "\\" in name:
+            raise UnsafeArchiveError(f"{path}: entry {name!r} has an absolute path; refusing to unpack")
+        if ".." in pure.parts:
+            raise UnsafeArchiveError(f"{path}: entry {name!r} climbs out with '..'; refusing to unpack")
+        if member.issym() or member.islnk():
+            raise UnsafeArchiveError(f"{path}: entry {name!r} is a link; bundle archives hold regular files only")
+        if not member.isreg():
+            raise UnsafeArchiveError(
+                f"{path}: entry {name!r} is not a regular file (directory, device or fifo); refusing to unpack"
+            )
+        if len(pure.parts) != 1:
+            raise UnsafeArchiveError(f"{path}: entry {name!r} is inside a folder; bundle files sit at the top")
+        if name in seen:
+            raise UnsafeArchiveError(f"{path}: entry {name!r} appears twice; refusing an ambiguous archive")
+        if member.size > MAX_MEMBER_BYTES:
+            raise UnsafeArchiveError(f"{path}: entry {name!r} is {member.size} bytes, over the {MAX_MEMBER_BYTES} limit")
+        seen.add(name)
+        members.append(member)
+    return members
+
+
+def _read_member(tar: tarfile.TarFile, member: tarfile.TarInfo) -> bytes:
+    handle = tar.extractfile(member)
+    if handle is None:
+        raise UnsafeArchiveError(f"entry {member.name!r} has no data; refusing to unpack")
+    return handle.read()

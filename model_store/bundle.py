@@ -1,0 +1,265 @@
+"""Loading, verifying and writing bundles.
+
+A bundle is a directory (or its single-file tar form) holding
+``manifest.json`` and the ``.npy`` arrays it lists:
+
+    support_vectors.npy      (n_sv, f) float64, support vectors in scaled space
+    dual_coef.npy            (k - 1, n_sv) float64, scikit-learn's dual_coef_
+    reference_quantiles.npy  (q,) float64, quantiles of the reference nearest distance
+
+Each file is read once, its SHA-256 checked against the manifest, and parsed
+from the same bytes with ``allow_pickle=False``, so what was verified is what
+is used and nothing in a bundle is ever unpickled or executed.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from model_store.archive import is_archive, read_archive
+from model_store.calibration import Calibrator
+from model_store.digest import canonical_json, sha256_bytes
+from model_store.errors import BundleFormatError, GoldenMismatchError, InputError, IntegrityError, NotFoundError
+from model_store.manifest import MANIFEST_FILE, Manifest, parse_manifest
+from model_store.scoring import Scorer, Scores
+
+__all__ = ["GOLDEN_TOLERANCE", "Bundle", "load_bundle", "write_bundle"]
+
+# |ours - reference| <= GOLDEN_TOLERANCE * max(1, |reference|): relative for large
+# values, absolute near zero where a decision is a difference of O(1) kernel sums.
+GOLDEN_TOLERANCE = 1e-9
+
+_ARRAYS = ("support_vectors.npy", "dual_coef.npy", "reference_quantiles.npy")
+
+
+class Bundle:
+    """A verified bundle, ready to score. Build it with ``load_bundle``."""
+
+    def __init__(self, document: dict[str, Any], manifest: Manifest, arrays: dict[str, np.ndarray], source: str):
+        self.document = document
+        self.manifest = manifest
+        self.source = source
+        self.digest = sha256_bytes(canonical_json(document))
+        self._scorer = _build_scorer(manifest, arrays, source)
+
+    @property
+    def name(self) -> str:
+        return self.manifest.name
+
+    @property
+    def version(self) -> str:
+        return self.manifest.version
+
+    @property
+    def feature_names(self) -> list[str]:
+        return self.manifest.feature_names
+
+    @property
+    def classes(self) -> list:
+        return list(self.manifest.classifier.classes)
+
+    @property
+    def support_vectors(self) -> np.ndarray:
+        """(n_sv, f) support vectors in scaled space (read-only view)."""
+        view = self._scorer.support_vectors.view()
+        view.flags.writeable = False
+        return view
+
+    @property
+    def scorer(self) -> Scorer:
+        return self._scorer
+
+    def score(self, X) -> Scores:
+        """Score ``X`` of shape (n, f): raw units, manifest feature order, finite values."""
+        raw = np.asarray(X, dtype=np.float64)
+        if raw.ndim != 2 or raw.shape[1] != self._scorer.n_features:
+            raise InputError(
+                f"expected a 2-D array of shape (n, {self._scorer.n_features}) in the order "
+                f"{self.feature_names}; got shape {raw.shape}"
+            )
+        if not np.isfinite(raw).all():
+            row, column = np.argwhere(~np.isfinite(raw))[0]
+            raise InputError(
+                f"row {row}, feature {self.feature_names[column]!r}: {raw[row, column]} is not finite; "
+                "refuse such rows before scoring"
+            )
+        return self._scorer.score(raw)
+
+    def self_test(self) -> None:
+        """Score the golden vectors and compare with what scikit-learn answered at export."""
+        golden = self.manifest.golden
+        scores = self._scorer.score(np.asarray(golden.inputs, dtype=np.float64).reshape(-1, self._scorer.n_features))
+        for row, (got, want) in enumerate(zip(scores.labels.tolist(), golden.labels)):
+            if got != want:
+                raise GoldenMismatchError(
+                    f"{self.source}: golden vector {row}: label {got!r}, expected {want!r}; "
+                    "the bundle does not reproduce the exported model"
+                )
+        _compare(self.source, "decision", scores.decision, golden.decisions)
+        if golden.pairwise_decisions is not None:
+            _compare(self.source, "pairwise decision", scores.pairwise_decision, golden.pairwise_decisions)
+        if golden.probabilities is not None:
+            _compare(self.source, "probability", scores.probabilities, golden.probabilities)
+
+
+def load_bundle(path: str | os.PathLike) -> Bundle:
+    """Load a bundle directory or archive, checking every file's SHA-256 against the manifest."""
+    path = Path(path)
+    if not path.exists():
+        raise NotFoundError(f"{path}: no such bundle; pass a bundle directory or its .tar file")
+    if is_archive(path):
+        contents = read_archive(path)
+        files = {name: contents.get(name) for name in _listed(contents[MANIFEST_FILE], path)}
+        manifest_bytes = contents[MANIFEST_FILE]
+    else:
+        manifest_bytes = _read(path / MANIFEST_FILE, path)
+        files = {name: _read(path / name, path) for name in _listed(manifest_bytes, path)}
+    document = _parse_json(manifest_bytes, path)
+    manifest = parse_manifest(document, source=str(path / MANIFEST_FILE))
+    arrays = {}
+    for name, entry in manifest.files.items():
+        data = files[name]
+        if data is None:
+            raise IntegrityError(f"{path}: {name} is listed in the manifest but missing; the bundle is incomplete")
+        actual = sha256_bytes(data)
+        if actual != entry.sha256:
+            raise IntegrityError(
+                f"{path}/{name}: SHA-256 is {actual}, the manifest says {entry.sha256}; "
+                "the file was altered or damaged, re-export or re-publish the bundle"
+            )
+        arrays[name] = _parse_array(data, name, entry, path)
+    return Bundle(document, manifest, arrays, str(path))
+
+
+def write_bundle(out_dir: Path, document: dict[str, Any], arrays: dict[str, np.ndarray]) -> Path:
+    """Write arrays and the manifest (``files`` filled in here) to ``out_dir`` atomically.
+
+    The bundle is assembled in a temporary sibling directory and renamed into
+    place, so ``out_dir`` either holds a complete bundle or does not exist.
+    """
+    out_dir = Path(out_dir)
+    if out_dir.exists():
+        raise InputError(f"{out_dir}: already exists; choose a new --out directory or remove it first")
+    out_dir.parent.mkdir(parents=True, exist_ok=True)
+    staging = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", dir=out_dir.parent))
+    try:
+        entries = {}
+        for name, array in sorted(arrays.items()):
+            buffer = io.BytesIO()
+            np.save(buffer, np.ascontiguousarray(array, dtype=np.float64), allow_pickle=False)
+            data = buffer.getvalue()
+            (staging / name).write_bytes(data)
+            entries[name] = {"sha256": sha256_bytes(data), "bytes": len(data), "dtype": "<f8", "shape": list(array.shape)}
+        complete = {**document, "files": entries}
+        parse_manifest(complete, source="exported manifest")
+        text = json.dumps(complete, indent=2, sort_keys=True, ensure_ascii=False, allow_nan=False)
+        (staging / MANIFEST_FILE).write_text(text + "\n", encoding="utf-8")
+        os.rename(staging, out_dir)
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    return out_dir
+
+
+def _listed(manifest_bytes: bytes, path: Path) -> list[str]:
+    files = _parse_json(manifest_bytes, path).get("files")
+    if not isinstance(files, dict) or sorted(files) != sorted(_ARRAYS):
+        raise BundleFormatError(f"{path}: manifest must list exactly the files {list(_ARRAYS)}")
+    return list(files)
+
+
+def _read(file: Path, bundle: Path) -> bytes | None:
+    try:
+        return file.read_bytes()
+    except FileNotFoundError:
+        if file.name == MANIFEST_FILE:
+            raise BundleFormatError(f"{bundle}: no {MANIFEST_FILE}; this is not a bundle directory") from None
+        return None
+    except OSError as exc:
+        raise BundleFormatError(f"{file}: cannot read: {exc.strerror}") from exc
+
+
+def _parse_json(data: bytes, path: Path) -> dict[str, Any]:
+    try:
+        document = json.loads(data.decode("utf-8"), parse_constant=_no_constants)
+    except (UnicodeDecodeError, ValueError) as exc:
+        raise BundleFormatError(f"{path}/{MANIFEST_FILE}: not valid JSON: {exc}") from exc
+    if not isinstance(document, dict):
+        raise BundleFormatError(f"{path}/{MANIFEST_FILE}: expected a JSON object at the top level")
+    return document
+
+
+def _no_constants(name: str):
+    raise ValueError(f"{name} is not allowed in a manifest")
+
+
+def _parse_array(data: bytes, name: str, entry, path: Path) -> np.ndarray:
+    try:
+        array = np.load(io.BytesIO(data), allow_pickle=False)
+    except ValueError as exc:
+        raise BundleFormatError(f"{path}/{name}: not a plain numeric .npy array: {exc}") from exc
+    if array.dtype != np.float64 or list(array.shape) != entry.shape:
+        raise BundleFormatError(
+            f"{path}/{name}: expected float64 of shape {entry.shape}, got {array.dtype} of shape {list(array.shape)}"
+        )
+    if not np.isfinite(array).all():
+        raise BundleFormatError(f"{path}/{name}: holds NaN or infinite values")
+    return array
+
+
+def _build_scorer(manifest: Manifest, arrays: dict[str, np.ndarray], source: str) -> Scorer:
+    classifier = manifest.classifier
+    n_features = len(manifest.features)
+    n_support = sum(classifier.support_per_class)
+    support_vectors = arrays["support_vectors.npy"]
+    dual_coef = arrays["dual_coef.npy"]
+    quantiles = arrays["reference_quantiles.npy"]
+    expected = {
+        "support_vectors.npy": (n_support, n_features),
+        "dual_coef.npy": (manifest.n_classes - 1, n_support),
+    }
+    for name, shape in expected.items():
+        if arrays[name].shape != shape:
+            raise BundleFormatError(f"{source}/{name}: expected shape {shape}, got {arrays[name].shape}")
+    if quantiles.ndim != 1 or len(quantiles) < 2 or np.any(np.diff(quantiles) < 0):
+        raise BundleFormatError(f"{source}/reference_quantiles.npy: expected at least 2 non-decreasing values")
+    scale = np.asarray(manifest.scaler.scale)
+    if np.any(scale == 0):
+        raise BundleFormatError(f"{source}/{MANIFEST_FILE}: scaler.scale holds a zero; it must be nonzero")
+    calibrator = Calibrator(manifest.calibration, manifest.n_classes) if manifest.is_calibrated else None
+    return Scorer(
+        classes=list(classifier.classes),
+        center=np.asarray(manifest.scaler.center),
+        scale=scale,
+        gamma=manifest.kernel.gamma,
+        support_vectors=support_vectors,
+        support_per_class=classifier.support_per_class,
+        dual_coef=dual_coef,
+        intercepts=np.asarray(classifier.intercepts),
+        allowed_low=np.array([feature.allowed[0] for feature in manifest.features]),
+        allowed_high=np.array([feature.allowed[1] for feature in manifest.features]),
+        reference_quantiles=quantiles,
+        calibrator=calibrator,
+        break_ties=classifier.break_ties,
+        calibrate_pairwise=classifier.decision_function_shape == "ovo" and manifest.n_classes > 2,
+    )
+
+
+def _compare(source: str, what: str, got: np.ndarray, want) -> None:
+    want = np.asarray(want, dtype=np.float64)
+    got = np.asarray(got, dtype=np.float64).reshape(want.shape)
+    excess = np.abs(got - want) - GOLDEN_TOLERANCE * np.maximum(1.0, np.abs(want))
+    if np.any(excess > 0):
+        index = np.unravel_index(np.argmax(excess), excess.shape)
+        raise GoldenMismatchError(
+            f"{source}: golden vector {index[0]}: {what} {got[index]!r}, expected {want[index]!r} "
+            f"(tolerance {GOLDEN_TOLERANCE:g} x max(1, |expected|)); the bundle does not reproduce the exported model"
+        )

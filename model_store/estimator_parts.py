@@ -1,0 +1,193 @@
+"""Take a fitted scikit-learn estimator apart into the plain data a bundle holds.
+
+Accepted shapes (anything else raises ``ModelFileError``, which the CLI maps to exit 2):
+
+    SVC | NuSVC                                   kernel='rbf', fitted, dense
+    Pipeline([scaler, SVC | NuSVC])               scaler: Standard, MinMax, Robust or MaxAbs
+    CalibratedClassifierCV(one of the above)      exactly one calibrated classifier
+    Pipeline([scaler, CalibratedClassifierCV(SVC | NuSVC)])
+
+This module imports scikit-learn; the serving path never imports it.
+"""
+
+from __future__ import annotations
+
+import copy
+from dataclasses import dataclass, field
+
+import numpy as np
+from sklearn.calibration import CalibratedClassifierCV
+from sklearn.exceptions import NotFittedError
+from sklearn.pipeline import Pipeline
+from sklearn.preprocessing import MaxAbsScaler, MinMaxScaler, RobustScaler, StandardScaler
+from sklearn.svm import SVC, NuSVC
+from sklearn.utils.validation import check_is_fitted
+
+from model_store.errors import ModelFileError
+
+__all__ = ["ModelParts", "take_apart"]
+
+
+@dataclass
+class ModelParts:
+    """The pieces of a fitted model; arrays are float64, scaled space unless noted."""
+
+    estimator: object  # outermost fitted object: its predict / predict_proba are the reference
+    svc: SVC | NuSVC
+    scaler: object | None  # the fitted scikit-learn scaler, None when there is none
+    scaler_kind: str
+    center: np.ndarray  # (f,) raw units
+    scale: np.ndarray  # (f,) raw units per scaled unit
+    calibration: dict
+    feature_names: list[str] | None
+    classes: list
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def n_features(self) -> int:
+        return len(self.center)
+
+    def decisions(self, raw: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+        """scikit-learn's ovr-shaped decision and (multiclass) one-vs-one decision for raw rows."""
+        scaled = raw if self.scaler is None else self.scaler.transform(raw)
+        ovr = copy.copy(self.svc)
+        ovr.decision_function_shape = "ovr"
+        decision = ovr.decision_function(scaled)
+        if len(self.classes) == 2:
+            return decision, None
+        ovo = copy.copy(self.svc)
+        ovo.decision_function_shape = "ovo"
+        return decision, ovo.decision_function(scaled)
+
+
+def take_apart(model: object) -> ModelParts:
+    """Split a fitted estimator into scaler, SVC and calibration; refuse anything else."""
+    estimator = model
+    calibration = {"method": "none"}
+    scaler = None
+    notes: list[str] = []
+    feature_names = _feature_names(model)
+    if isinstance(model, CalibratedClassifierCV):
+        inner, calibration = _calibrated(model)
+        model = _unfreeze(inner)
+    if isinstance(model, Pipeline):
+        scaler, model = _pipeline(model)
+        if isinstance(model, CalibratedClassifierCV):
+            model, calibration = _calibrated(model)
+            model = _unfreeze(model)
+            if isinstance(model, Pipeline):
+                raise ModelFileError("a Pipeline inside a calibrator inside a Pipeline is not supported; flatten it")
+    model = _unfreeze(model)
+    if not isinstance(model, (SVC, NuSVC)):
+        raise ModelFileError(
+            f"expected an SVC or NuSVC (bare, in a Pipeline with one scaler, or calibrated); got {type(model).__name__}"
+        )
+    svc = model
+    _check_svc(svc)
+    if getattr(svc, "probability", False) and calibration["method"] == "none":
+        notes.append(
+            "probability=True: libsvm's internal Platt probabilities are not carried into the bundle; "
+            "wrap the model in CalibratedClassifierCV(ensemble=False) to export probabilities"
+        )
+    classes = _labels(svc.classes_)
+    kind, center, scale = _scaler_parts(scaler, svc.n_features_in_)
+    return ModelParts(estimator, svc, scaler, kind, center, scale, calibration, feature_names, classes, notes)
+
+
+def _feature_names(model) -> list[str] | None:
+    names = getattr(model, "feature_names_in_", None)
+    return [str(name) for name in names] if names is not None else None
+
+
+def _pipeline(pipeline: Pipeline):
+    steps = [step for _, step in pipeline.steps if step not in (None, "passthrough")]
+    if len(steps) == 1:
+        return None, steps[0]
+    if len(steps) == 2 and isinstance(steps[0], (StandardScaler, MinMaxScaler, RobustScaler, MaxAbsScaler)):
+        return steps[0], steps[1]
+    names = [type(step).__name__ for step in steps]
+    raise ModelFileError(
+        f"pipeline steps {names} are not supported; expected at most one per-feature scaler "
+        "(StandardScaler, MinMaxScaler, RobustScaler, MaxAbsScaler) followed by an SVC or NuSVC"
+    )
+
+
+def _calibrated(model: CalibratedClassifierCV):
+    try:
+        check_is_fitted(model, "calibrated_classifiers_")
+    except NotFittedError as exc:
+        raise ModelFileError("the CalibratedClassifierCV is not fitted; fit it before exporting") from exc
+    calibrated = model.calibrated_classifiers_
+    if len(calibrated) != 1:
+        raise ModelFileError(
+            f"the calibrator averages {len(calibrated)} models (ensemble=True); refit it with ensemble=False "
+            "so that one SVC and one calibration describe the model"
+        )
+    single = calibrated[0]
+    method = single.method
+    if method == "sigmoid":
+        spec = {"method": "sigmoid", "sigmoid": [{"a": float(c.a_), "b": float(c.b_)} for c in single.calibrators]}
+    elif method == "isotonic":
+        spec = {
+            "method": "isotonic",
+            "isotonic": [
+                {"x_thresholds": c.X_thresholds_.astype(float).tolist(), "y_thresholds": c.y_thresholds_.astype(float).tolist()}
+                for c in single.calibrators
+            ],
+        }
+    elif method == "temperature":
+        spec = {"method": "temperature", "beta": float(single.calibrators[0].beta_)}
+    else:
+        raise ModelFileError(f"calibration method {method!r} is not supported; use sigmoid, isotonic or temperature")
+    return single.estimator, spec
+
+
+def _unfreeze(model):
+    # FrozenEstimator (a prefit model handed to a calibrator) keeps the real one in .estimator.
+    if type(model).__name__ == "FrozenEstimator":
+        return model.estimator
+    return model
+
+
+def _check_svc(svc) -> None:
+    try:
+        check_is_fitted(svc, "support_vectors_")
+    except NotFittedError as exc:
+        raise ModelFileError(f"the {type(svc).__name__} is not fitted; fit it before exporting") from exc
+    if svc.kernel != "rbf":
+        raise ModelFileError(f"kernel is {svc.kernel!r}; rbfgate exports RBF-kernel models only (kernel='rbf')")
+    if getattr(svc, "_sparse", False):
+        raise ModelFileError("the model was fitted on sparse data; refit it on a dense array to export")
+    if len(svc.classes_) < 2:
+        raise ModelFileError("the model has fewer than two classes")
+
+
+def _labels(classes: np.ndarray) -> list:
+    if classes.dtype.kind in "iu":
+        return [int(label) for label in classes]
+    if classes.dtype.kind in "UO" and all(isinstance(label, str) for label in classes):
+        return [str(label) for label in classes]
+    raise ModelFileError(
+        f"class labels of type {classes.dtype} are not supported; use integer or string labels "
+        "so that they keep their type through JSON"
+    )
+
+
+def _scaler_parts(scaler, n_features: int) -> tuple[str, np.ndarray, np.ndarray]:
+    ones, zeros = np.ones(n_features), np.zeros(n_features)
+    if scaler is None:
+        return "none", zeros, ones
+    if isinstance(scaler, StandardScaler):
+        center = scaler.mean_ if scaler.with_mean else zeros
+        scale = scaler.scale_ if scaler.with_std else ones
+        return "standard", np.asarray(center, float), np.asarray(scale, float)
+    if isinstance(scaler, MinMaxScaler):
+        if scaler.clip:
+            raise ModelFileError("MinMaxScaler(clip=True) is not an affine map; refit with clip=False")
+        # sklearn computes raw * scale_ + min_, i.e. (raw - (-min_ / scale_)) / (1 / scale_).
+        return "minmax", -scaler.min_ / scaler.scale_, 1.0 / scaler.scale_
+    if isinstance(scaler, RobustScaler):
+        center = scaler.center_ if scaler.with_centering else zeros
+        scale = scaler.scale_ if scaler.with_scaling else ones
+        return "robust", np.asarray(center, float), np.asarray(scale, float)
+    return "maxabs", zeros, np.asarray(scaler.scale_, float)

@@ -1,0 +1,211 @@
+"""The bundle manifest: a typed, validated view of ``manifest.json``.
+
+The manifest is plain JSON, so an auditor can read it with any tool. Parsing
+it here checks every field once, at the boundary; the scorer then trusts it.
+Large arrays (support vectors, coefficients, reference quantiles) live in
+``.npy`` files listed under ``files`` with their SHA-256, dtype and shape.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, StrictInt, StrictStr, ValidationError, model_validator
+
+from model_store.errors import BundleFormatError
+from model_store.naming import check_name
+
+__all__ = [
+    "FORMAT",
+    "Calibration",
+    "ClassifierSpec",
+    "FeatureSpec",
+    "FileEntry",
+    "GoldenVectors",
+    "KernelSpec",
+    "Manifest",
+    "ScalerSpec",
+    "parse_manifest",
+    "read_manifest",
+]
+
+FORMAT = "rbfgate-bundle/1"
+MANIFEST_FILE = "manifest.json"
+SIGNATURE_FILE = "signature.json"
+
+Label = StrictInt | StrictStr
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class FeatureStats(_Strict):
+    """Training statistics of one feature, raw units."""
+
+    min: float
+    max: float
+    mean: float
+    std: float
+
+
+class FeatureSpec(_Strict):
+    name: str = Field(min_length=1, max_length=200)
+    unit: str | None = None
+    description: str | None = None
+    allowed: tuple[float, float]
+    training: FeatureStats
+
+    @model_validator(mode="after")
+    def _range_ordered(self) -> "FeatureSpec":
+        low, high = self.allowed
+        if not low <= high:
+            raise ValueError(f"feature {self.name!r}: allowed range [{low}, {high}] has low > high")
+        return self
+
+
+class ScalerSpec(_Strict):
+    """Per-feature affine map to the kernel's space: ``scaled = (raw - center) / scale``."""
+
+    kind: Literal["none", "standard", "minmax", "robust", "maxabs"]
+    center: list[float]
+    scale: list[float]
+
+
+class KernelSpec(_Strict):
+    kind: Literal["rbf"] = "rbf"
+    gamma: float = Field(gt=0)
+    sigma: float = Field(gt=0)
+
+
+class ClassifierSpec(_Strict):
+    estimator: Literal["SVC", "NuSVC"]
+    classes: list[StrictInt] | list[StrictStr]
+    support_per_class: list[int]
+    intercepts: list[float]
+    break_ties: bool = False
+    decision_function_shape: Literal["ovr", "ovo"] = "ovr"
+
+
+class SigmoidParams(_Strict):
+    """Platt sigmoid ``p = 1 / (1 + exp(a * decision + b))``."""
+
+    a: float
+    b: float
+
+
+class IsotonicParams(_Strict):
+    """Piecewise-linear map through ``(x_thresholds, y_thresholds)``, clipped to its ends."""
+
+    x_thresholds: list[float]
+    y_thresholds: list[float]
+
+
+class Calibration(_Strict):
+    """How decisions become probabilities (scikit-learn CalibratedClassifierCV, ensemble=False).
+
+    sigmoid and isotonic hold one map per calibrated decision column (one for
+    binary, one per class otherwise); temperature holds the inverse temperature
+    ``beta`` applied as ``softmax(beta * logits)``.
+    """
+
+    method: Literal["none", "sigmoid", "isotonic", "temperature"]
+    sigmoid: list[SigmoidParams] | None = None
+    isotonic: list[IsotonicParams] | None = None
+    beta: float | None = None
+
+
+class FileEntry(_Strict):
+    sha256: str = Field(pattern=r"^[0-9a-f]{64}$")
+    bytes: int = Field(ge=0)
+    dtype: str
+    shape: list[int]
+
+
+class GoldenVectors(_Strict):
+    """Probe rows (raw units) and what scikit-learn answered for them at export."""
+
+    inputs: list[list[float]]
+    labels: list[Label]
+    decisions: list[float] | list[list[float]]
+    pairwise_decisions: list[list[float]] | None = None
+    probabilities: list[list[float]] | None = None
+
+
+class Manifest(_Strict):
+    format: Literal["rbfgate-bundle/1"]
+    name: str
+    version: str
+    created: str
+    creator: str
+    features: list[FeatureSpec]
+    scaler: ScalerSpec
+    kernel: KernelSpec
+    classifier: ClassifierSpec
+    calibration: Calibration
+    training: dict[str, Any]
+    reference_distance: dict[str, Any]
+    golden: GoldenVectors
+    files: dict[str, FileEntry]
+
+    @model_validator(mode="after")
+    def _consistent(self) -> "Manifest":
+        check_name(self.name, what="model name")
+        check_name(self.version, what="model version")
+        n_features = len(self.features)
+        if len(self.scaler.center) != n_features or len(self.scaler.scale) != n_features:
+            raise ValueError(f"scaler has {len(self.scaler.center)} centers for {n_features} features")
+        n_classes = len(self.classifier.classes)
+        if n_classes < 2:
+            raise ValueError("a classifier needs at least two classes")
+        if len(self.classifier.support_per_class) != n_classes:
+            raise ValueError("support_per_class must have one count per class")
+        if len(self.classifier.intercepts) != n_classes * (n_classes - 1) // 2:
+            raise ValueError("intercepts must have one value per pair of classes")
+        names = [feature.name for feature in self.features]
+        if len(set(names)) != len(names):
+            raise ValueError("feature names must be unique")
+        return self
+
+    @property
+    def feature_names(self) -> list[str]:
+        return [feature.name for feature in self.features]
+
+    @property
+    def n_classes(self) -> int:
+        return len(self.classifier.classes)
+
+    @property
+    def is_calibrated(self) -> bool:
+        return self.calibration.method != "none"
+
+
+def parse_manifest(document: Any, *, source: str = MANIFEST_FILE) -> Manifest:
+    """Validate a parsed manifest document; raise ``BundleFormatError`` naming the field."""
+    try:
+        return Manifest.model_validate(document)
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        where = ".".join(str(part) for part in first["loc"]) or "(top level)"
+        raise BundleFormatError(
+            f"{source}: field {where}: {first['msg']} ({exc.error_count()} problem(s)); "
+            "re-export the bundle with this version of rbfgate"
+        ) from exc
+
+
+def read_manifest(path: Path) -> tuple[dict[str, Any], Manifest]:
+    """Read and validate ``path``; return the raw document (for the digest) and the model."""
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+        document = json.loads(text, parse_constant=_refuse_constant)
+    except FileNotFoundError as exc:
+        raise BundleFormatError(f"{path}: no manifest; a bundle directory holds {MANIFEST_FILE}") from exc
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        raise BundleFormatError(f"{path}: not a readable JSON manifest: {exc}") from exc
+    return document, parse_manifest(document, source=str(path))
+
+
+def _refuse_constant(name: str) -> float:
+    raise ValueError(f"{name} is not allowed in a manifest")

@@ -1,0 +1,162 @@
+"""The refusal policy: which records are scored and why the others are not.
+
+The scorer never refuses; callers (the CLI, the swap preview, the HTTP
+service) run records through ``check_records`` first. A record is refused
+when any feature is missing, null, not a number (a boolean, a string, a
+nested value), NaN or infinite, outside its allowed range, or when it holds
+a feature the bundle does not know. Every problem names the feature, the
+value, a machine-readable reason and the allowed range.
+
+Values come in two flavours: JSON values (``from_json``), where only real
+numbers count, and CSV text (``from_text``), where the text must parse as a
+finite number.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from model_store.manifest import FeatureSpec
+
+__all__ = [
+    "REASONS",
+    "CheckedBatch",
+    "Problem",
+    "check_records",
+    "from_json",
+    "from_text",
+]
+
+REASONS = ("missing", "null", "not_a_number", "not_finite", "out_of_range", "unknown_feature")
+
+# A converter returns the float, or the reason the value cannot be scored.
+Converter = Callable[[Any], "float | str"]
+
+
+@dataclass(frozen=True)
+class Problem:
+    feature: str
+    value: Any
+    reason: str
+    allowed: tuple[float, float] | None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "feature": self.feature,
+            "value": _json_safe(self.value),
+            "reason": self.reason,
+            "allowed": list(self.allowed) if self.allowed is not None else None,
+        }
+
+    def describe(self) -> str:
+        """One human-readable phrase, as used in the CLI's ``problems`` column."""
+        if self.reason == "out_of_range":
+            return f"{self.feature}={self.value} outside [{self.allowed[0]:g}, {self.allowed[1]:g}]"
+        if self.reason == "unknown_feature":
+            return f"{self.feature}: not a feature of this model"
+        shown = "" if self.reason in ("missing", "null") else f"={self.value!r}"
+        return f"{self.feature}{shown}: {self.reason.replace('_', ' ')}"
+
+
+@dataclass
+class CheckedBatch:
+    """Records split into scoreable rows and refusals.
+
+    values:    (n_accepted, f) float64 raw units in manifest feature order
+    accepted:  (n_accepted,) indices of those records in the input
+    problems:  input index -> its problems, for every refused record
+    """
+
+    values: np.ndarray
+    accepted: np.ndarray
+    problems: dict[int, list[Problem]] = field(default_factory=dict)
+
+
+def from_json(value: Any) -> float | str:
+    """A JSON value: an int or float (not a boolean) that is finite."""
+    if value is None:
+        return "null"
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        return "not_a_number"
+    try:
+        number = float(value)
+    except OverflowError:  # an integer too large for a float
+        return "not_finite"
+    return number if math.isfinite(number) else "not_finite"
+
+
+def from_text(value: Any) -> float | str:
+    """A CSV field: empty is missing, otherwise it must parse as a finite number."""
+    text = value.strip() if isinstance(value, str) else value
+    if text is None or text == "":
+        return "missing"
+    try:
+        number = float(text)
+    except (TypeError, ValueError):
+        return "not_a_number"
+    return number if math.isfinite(number) else "not_finite"
+
+
+def check_records(
+    features: Sequence[FeatureSpec],
+    records: Sequence[Mapping[str, Any]],
+    convert: Converter = from_json,
+    *,
+    allow_extra: bool = False,
+) -> CheckedBatch:
+    """Validate ``records`` against the bundle's features; ``allow_extra`` ignores unknown keys."""
+    names = [feature.name for feature in features]
+    known = set(names)
+    bounds = [feature.allowed for feature in features]
+    rows: list[list[float]] = []
+    accepted: list[int] = []
+    problems: dict[int, list[Problem]] = {}
+    for index, record in enumerate(records):
+        row, found = _check_one(record, names, bounds, convert)
+        if not allow_extra:
+            found.extend(
+                Problem(str(key), value, "unknown_feature", None) for key, value in record.items() if key not in known
+            )
+        if found:
+            problems[index] = found
+        else:
+            rows.append(row)
+            accepted.append(index)
+    values = np.asarray(rows, dtype=np.float64).reshape(len(rows), len(names))
+    return CheckedBatch(values, np.asarray(accepted, dtype=np.int64), problems)
+
+
+def _check_one(record, names, bounds, convert) -> tuple[list[float], list[Problem]]:
+    row: list[float] = []
+    found: list[Problem] = []
+    for name, (low, high) in zip(names, bounds):
+        if name not in record:
+            found.append(Problem(name, None, "missing", (low, high)))
+            continue
+        raw = record[name]
+        number = convert(raw)
+        if isinstance(number, str):
+            found.append(Problem(name, raw, number, (low, high)))
+        elif not low <= number <= high:
+            found.append(Problem(name, number, "out_of_range", (low, high)))
+        else:
+            row.append(number)
+    return row, found
+
+
+def _json_safe(value: Any) -> Any:
+    """Echo a refused value back without breaking JSON (no NaN, no nesting, bounded text)."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return str(value)
+    if isinstance(value, (dict, list)):
+        return "(nested value)"
+    if isinstance(value, str) and len(value) > 64:
+        return value[:64] + "..."
+    if isinstance(value, int) and not isinstance(value, bool) and abs(value) > 2**63:
+        return "(integer too large)"
+    return value

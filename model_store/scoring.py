@@ -1,0 +1,245 @@
+"""The numpy scorer: scikit-learn's RBF SVC/NuSVC decision, labels and probabilities.
+
+For a row ``x`` (raw units) the scorer computes, in order:
+
+1. ``z = (x - center) / scale``                      the bundle's per-feature affine scaler;
+2. ``d2_j = |z|^2 + |s_j|^2 - 2 z.s_j``, clamped at 0  one BLAS product per chunk of rows;
+3. ``K_j = exp(-gamma d2_j)``                          the RBF kernel;
+4. ``P = K @ A + b``                                   one column per pair of classes (i < j),
+   where ``A`` rearranges scikit-learn's ``dual_coef_`` into libsvm's one-vs-one layout;
+5. labels by libsvm's vote (pair (i, j) votes i when its decision is > 0, ties go to the
+   lowest class index), the binary decision as ``P[:, 0]``, the multiclass decision as
+   scikit-learn's ovr-shaped ``votes + sum / (3 (|sum| + 1))``;
+6. probabilities through the bundle's calibration.
+
+Rows are processed in chunks so that the kernel block stays under
+``KERNEL_BLOCK_BYTES`` whatever the batch size. The scorer never refuses a
+row; it reports the range check and the nearest support vector so that
+callers (CLI, service) can apply their refusal policy.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from model_store.calibration import Calibrator
+
+__all__ = ["KERNEL_BLOCK_BYTES", "Scorer", "Scores"]
+
+KERNEL_BLOCK_BYTES = 64 * 1024 * 1024
+
+
+@dataclass(frozen=True)
+class Scores:
+    """Scores of n rows against a bundle with k classes and f features.
+
+    labels:              (n,) class labels (the manifest's type: int or str)
+    label_index:         (n,) int, index of the label in the manifest's classes
+    decision:            (n,) float binary, (n, k) float multiclass (scikit-learn's ovr shape)
+    pairwise_decision:   (n, k(k-1)/2) libsvm one-vs-one decisions, None when binary
+    probabilities:       (n, k) float, None when the bundle is not calibrated
+    nearest_distance:    (n,) Euclidean distance to the nearest support vector, scaled space
+    nearest_similarity:  (n,) exp(-gamma * nearest_distance^2), in (0, 1]
+    nearest_index:       (n,) int, row of that support vector in the bundle
+    nearest_label:       (n,) class label of that support vector
+    nearest_percentile:  (n,) percentile (0-100) of the distance among the reference rows
+    range_excess:        (n, f) raw units outside the allowed range: 0 inside,
+                         value - high above it, value - low (negative) below it
+    """
+
+    labels: np.ndarray
+    label_index: np.ndarray
+    decision: np.ndarray
+    pairwise_decision: np.ndarray | None
+    probabilities: np.ndarray | None
+    nearest_distance: np.ndarray
+    nearest_similarity: np.ndarray
+    nearest_index: np.ndarray
+    nearest_label: np.ndarray
+    nearest_percentile: np.ndarray
+    range_excess: np.ndarray
+
+    @property
+    def out_of_range(self) -> np.ndarray:
+        """(n, f) bool, True where a feature lies outside its allowed range."""
+        return self.range_excess != 0
+
+    @property
+    def in_range(self) -> np.ndarray:
+        """(n,) bool, True where every feature lies inside its allowed range."""
+        return ~self.out_of_range.any(axis=1)
+
+
+class Scorer:
+    """Immutable scoring state built once from a bundle's arrays.
+
+    center, scale:        (f,) raw -> scaled affine map
+    support_vectors:      (n_sv, f) scaled space, grouped by class in class order
+    dual_coef:            (k - 1, n_sv) scikit-learn's ``dual_coef_``
+    intercepts:           (k(k-1)/2,) scikit-learn's ``intercept_``
+    reference_quantiles:  (q,) non-decreasing quantiles of the reference nearest distance
+    """
+
+    def __init__(
+        self,
+        *,
+        classes: list,
+        center: np.ndarray,
+        scale: np.ndarray,
+        gamma: float,
+        support_vectors: np.ndarray,
+        support_per_class: list[int],
+        dual_coef: np.ndarray,
+        intercepts: np.ndarray,
+        allowed_low: np.ndarray,
+        allowed_high: np.ndarray,
+        reference_quantiles: np.ndarray,
+        calibrator: Calibrator | None,
+        break_ties: bool = False,
+        calibrate_pairwise: bool = False,
+    ) -> None:
+        self.classes = np.asarray(classes, dtype=object if isinstance(classes[0], str) else np.int64)
+        self.n_classes = len(classes)
+        self.pairs = [(i, j) for i in range(self.n_classes) for j in range(i + 1, self.n_classes)]
+        self.center = np.ascontiguousarray(center, dtype=np.float64)
+        self.scale = np.ascontiguousarray(scale, dtype=np.float64)
+        self.gamma = float(gamma)
+        self.support_vectors = np.ascontiguousarray(support_vectors, dtype=np.float64)
+        # -gamma d2 = 2 gamma z.s - gamma |z|^2 - gamma |s|^2: fold the factors into S once.
+        self._support_twice_gamma_t = np.ascontiguousarray((2.0 * self.gamma) * self.support_vectors.T)
+        self._support_gamma_sq = self.gamma * np.einsum("ij,ij->i", self.support_vectors, self.support_vectors)
+        boundaries = np.concatenate([[0], np.cumsum(support_per_class)])
+        self.support_class = np.repeat(np.arange(self.n_classes), support_per_class)
+        self._pair_coef = _pairwise_coefficients(np.asarray(dual_coef, np.float64), boundaries, self.pairs)
+        self.intercepts = np.asarray(intercepts, dtype=np.float64)
+        self.allowed_low = np.asarray(allowed_low, dtype=np.float64)
+        self.allowed_high = np.asarray(allowed_high, dtype=np.float64)
+        self.reference_quantiles = np.asarray(reference_quantiles, dtype=np.float64)
+        self.calibrator = calibrator
+        self.break_ties = break_ties
+        self.calibrate_pairwise = calibrate_pairwise
+        n_support = max(1, len(self.support_vectors))
+        self.rows_per_chunk = max(1, KERNEL_BLOCK_BYTES // (8 * n_support))
+
+    @property
+    def n_features(self) -> int:
+        return len(self.center)
+
+    def score(self, raw: np.ndarray) -> Scores:
+        """Score ``raw`` (n, f) float64, finite, in manifest feature order and raw units."""
+        n_rows = raw.shape[0]
+        n_pairs = len(self.pairs)
+        pairwise = np.empty((n_rows, n_pairs))
+        nearest_index = np.empty(n_rows, dtype=np.int64)
+        scaled = (raw - self.center) / self.scale
+        for start in range(0, n_rows, self.rows_per_chunk):
+            stop = min(start + self.rows_per_chunk, n_rows)
+            self._score_chunk(scaled[start:stop], pairwise[start:stop], nearest_index[start:stop])
+        return self._finish(raw, scaled, pairwise, nearest_index)
+
+    def _score_chunk(self, scaled: np.ndarray, pairwise_out: np.ndarray, nearest_out: np.ndarray) -> None:
+        block = scaled @ self._support_twice_gamma_t
+        block -= (self.gamma * np.einsum("ij,ij->i", scaled, scaled))[:, np.newaxis]
+        block -= self._support_gamma_sq
+        np.minimum(block, 0.0, out=block)  # d2 >= 0; rounding can make it slightly negative
+        np.argmax(block, axis=1, out=nearest_out)
+        np.exp(block, out=block)
+        np.matmul(block, self._pair_coef, out=pairwise_out)
+        pairwise_out += self.intercepts
+
+    def _finish(self, raw, scaled, pairwise, nearest_index) -> Scores:
+        binary = self.n_classes == 2
+        if binary:
+            decision = pairwise[:, 0].copy()
+            # libsvm's decision is -decision here; it votes class 0 when its value is > 0.
+            label_index = (decision >= 0).astype(np.int64)
+            calibration_input = decision
+        else:
+            decision = _ovr_decision(pairwise, self.pairs, self.n_classes)
+            if self.break_ties:
+                label_index = np.argmax(decision, axis=1)
+            else:
+                label_index = _libsvm_vote(pairwise, self.pairs, self.n_classes)
+            calibration_input = pairwise if self.calibrate_pairwise else decision
+        probabilities = None
+        if self.calibrator is not None:
+            probabilities = self.calibrator.probabilities(calibration_input)
+            # A calibrated scikit-learn model predicts the most probable class.
+            label_index = np.argmax(probabilities, axis=1)
+        # The BLAS form loses precision near a support vector; recompute the winner exactly.
+        difference = scaled - self.support_vectors[nearest_index]
+        nearest_distance = np.sqrt(np.einsum("ij,ij->i", difference, difference))
+        return Scores(
+            labels=self.classes[label_index],
+            label_index=label_index,
+            decision=decision,
+            pairwise_decision=None if binary else pairwise,
+            probabilities=probabilities,
+            nearest_distance=nearest_distance,
+            nearest_similarity=np.exp(-self.gamma * nearest_distance**2),
+            nearest_index=nearest_index,
+            nearest_label=self.classes[self.support_class[nearest_index]],
+            nearest_percentile=distance_percentile(nearest_distance, self.reference_quantiles),
+            range_excess=range_excess(raw, self.allowed_low, self.allowed_high),
+        )
+
+
+def range_excess(raw: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
+    """(n, f) signed amount outside [low, high]: 0 inside, value - high above, value - low below."""
+    above = np.maximum(raw - high, 0.0)
+    below = np.minimum(raw - low, 0.0)
+    return above + below
+
+
+def distance_percentile(distance: np.ndarray, quantiles: np.ndarray) -> np.ndarray:
+    """Percentile (0-100) of each distance, interpolated in evenly spaced reference quantiles.
+
+    Ties in the quantiles (many reference rows at distance 0, say) resolve to
+    the highest quantile that does not exceed the distance.
+    """
+    steps = len(quantiles) - 1
+    upper = np.searchsorted(quantiles, distance, side="right")
+    lower = np.clip(upper - 1, 0, steps)
+    upper_clipped = np.clip(upper, 0, steps)
+    span = quantiles[upper_clipped] - quantiles[lower]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        fraction = np.where(span > 0, (distance - quantiles[lower]) / span, 0.0)
+    position = np.where(upper == 0, 0.0, np.where(upper > steps, steps, lower + fraction))
+    return 100.0 * position / steps
+
+
+def _pairwise_coefficients(dual_coef: np.ndarray, boundaries: np.ndarray, pairs) -> np.ndarray:
+    """(n_sv, n_pairs): column (i, j) holds dual_coef_[j - 1] on class i's support
+    vectors and dual_coef_[i] on class j's, zero elsewhere (libsvm's one-vs-one layout)."""
+    coef = np.zeros((dual_coef.shape[1], len(pairs)))
+    for column, (i, j) in enumerate(pairs):
+        rows_i = slice(boundaries[i], boundaries[i + 1])
+        rows_j = slice(boundaries[j], boundaries[j + 1])
+        coef[rows_i, column] = dual_coef[j - 1, rows_i]
+        coef[rows_j, column] = dual_coef[i, rows_j]
+    return coef
+
+
+def _libsvm_vote(pairwise: np.ndarray, pairs, n_classes: int) -> np.ndarray:
+    votes = np.zeros((len(pairwise), n_classes), dtype=np.int64)
+    for column, (i, j) in enumerate(pairs):
+        wins_i = pairwise[:, column] > 0
+        votes[:, i] += wins_i
+        votes[:, j] += ~wins_i
+    return np.argmax(votes, axis=1)  # first maximum: libsvm gives ties to the lowest index
+
+
+def _ovr_decision(pairwise: np.ndarray, pairs, n_classes: int) -> np.ndarray:
+    """scikit-learn's ``_ovr_decision_function(dec < 0, -dec, n_classes)``, same operation order."""
+    votes = np.zeros((len(pairwise), n_classes))
+    confidence = np.zeros((len(pairwise), n_classes))
+    for column, (i, j) in enumerate(pairs):
+        value = pairwise[:, column]
+        confidence[:, i] += value
+        confidence[:, j] -= value
+        wins_i = value >= 0
+        votes[wins_i, i] += 1
+        votes[~wins_i, j] += 1
+    return votes + confidence / (3 * (np.abs(confidence) + 1))
