@@ -38,6 +38,7 @@ __all__ = ["GOLDEN_TOLERANCE", "Bundle", "load_bundle", "write_bundle"]
 GOLDEN_TOLERANCE = 1e-9
 
 _ARRAYS = ("support_vectors.npy", "dual_coef.npy", "reference_quantiles.npy")
+_NPY_MAGIC = b"\x93NUMPY"
 
 
 class Bundle:
@@ -135,6 +136,10 @@ def load_bundle(path: str | os.PathLike) -> Bundle:
                 f"{path}/{name}: SHA-256 is {actual}, the manifest says {entry.sha256}; "
                 "the file was altered or damaged, re-export or re-publish the bundle"
             )
+        if len(data) != entry.bytes:
+            raise BundleFormatError(
+                f"{path}/{name}: {len(data)} bytes, the manifest says {entry.bytes}; re-export the bundle"
+            )
         arrays[name] = _parse_array(data, name, entry, path)
     return Bundle(document, manifest, arrays, str(path))
 
@@ -189,7 +194,7 @@ def _read(file: Path, bundle: Path) -> bytes | None:
 
 def _parse_json(data: bytes, path: Path) -> dict[str, Any]:
     try:
-        document = json.loads(data.decode("utf-8"), parse_constant=_no_constants)
+        document = json.loads(data.decode("utf-8"), parse_constant=_no_constants, parse_float=_finite_float)
     except (UnicodeDecodeError, ValueError) as exc:
         raise BundleFormatError(f"{path}/{MANIFEST_FILE}: not valid JSON: {exc}") from exc
     if not isinstance(document, dict):
@@ -201,10 +206,21 @@ def _no_constants(name: str):
     raise ValueError(f"{name} is not allowed in a manifest")
 
 
+def _finite_float(text: str) -> float:
+    # json turns an overflowing literal such as 1e999 into inf, which parse_constant never sees.
+    value = float(text)
+    if not np.isfinite(value):
+        raise ValueError(f"{text} is not a finite number")
+    return value
+
+
 def _parse_array(data: bytes, name: str, entry, path: Path) -> np.ndarray:
+    # np.load would open zip bytes as an .npz archive; only the .npy format is part of a bundle.
+    if not data.startswith(_NPY_MAGIC):
+        raise BundleFormatError(f"{path}/{name}: not a .npy file (it does not start with the .npy magic string)")
     try:
         array = np.load(io.BytesIO(data), allow_pickle=False)
-    except ValueError as exc:
+    except (ValueError, EOFError, OSError) as exc:
         raise BundleFormatError(f"{path}/{name}: not a plain numeric .npy array: {exc}") from exc
     if array.dtype != np.float64 or list(array.shape) != entry.shape:
         raise BundleFormatError(

@@ -9,7 +9,8 @@ single calibrated classifier (``ensemble=False``) with numpy only:
 - temperature: ``softmax(beta * logits)``, where a binary decision ``f``
   becomes the two logits ``(-f, f)``.
 
-For sigmoid and isotonic with more than two classes, the per-class values
+For sigmoid and isotonic, calibration input column c feeds class c's map
+(scikit-learn's pairing, even for one-vs-one columns). With more than two classes, the per-class values
 are normalised to sum to one (uniform where every class got zero), exactly as
 scikit-learn does; in every method values in (1, 1 + 1e-5] are set to 1.
 """
@@ -50,7 +51,10 @@ class Calibrator:
         n_rows = columns.shape[0]
         proba = np.zeros((n_rows, self.n_classes))
         binary = self.n_classes == 2
-        for column in range(columns.shape[1]):
+        # scikit-learn zips columns with its calibrators (one per class): with
+        # decision_function_shape='ovo' and 4+ classes it calibrates only the first
+        # n_classes pairwise columns, and so do we.
+        for column in range(min(columns.shape[1], len(self._sigmoid) + len(self._isotonic))):
             target = column + 1 if binary else column
             proba[:, target] = self._map_column(column, columns[:, column])
         if binary:

@@ -13,6 +13,9 @@ This module imports scikit-learn; the serving path never imports it.
 from __future__ import annotations
 
 import copy
+import warnings
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -25,7 +28,19 @@ from sklearn.utils.validation import check_is_fitted
 
 from model_store.errors import ModelFileError
 
-__all__ = ["ModelParts", "take_apart"]
+__all__ = ["ModelParts", "plain_arrays_accepted", "take_apart"]
+
+
+@contextmanager
+def plain_arrays_accepted() -> Iterator[None]:
+    """Silence scikit-learn's warning when a model fitted on named columns gets a plain array.
+
+    The exporter always passes columns in the model's own feature order, so the
+    warning would only be noise.
+    """
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="X does not have valid feature names")
+        yield
 
 
 @dataclass
@@ -73,6 +88,8 @@ def take_apart(model: object) -> ModelParts:
     if isinstance(model, Pipeline):
         scaler, model = _pipeline(model)
         if isinstance(model, CalibratedClassifierCV):
+            if calibration["method"] != "none":
+                raise ModelFileError("the model is calibrated twice (a calibrator inside a calibrator); keep one")
             model, calibration = _calibrated(model)
             model = _unfreeze(model)
             if isinstance(model, Pipeline):
@@ -84,6 +101,12 @@ def take_apart(model: object) -> ModelParts:
         )
     svc = model
     _check_svc(svc)
+    if svc.break_ties and svc.decision_function_shape == "ovo" and calibration["method"] == "none":
+        # scikit-learn's own predict raises here, so there is no reference to reproduce.
+        raise ModelFileError(
+            "break_ties=True with decision_function_shape='ovo' cannot predict in scikit-learn; "
+            "refit with break_ties=False or decision_function_shape='ovr'"
+        )
     if getattr(svc, "probability", False) and calibration["method"] == "none":
         notes.append(
             "probability=True: libsvm's internal Platt probabilities are not carried into the bundle; "
@@ -177,6 +200,10 @@ def _scaler_parts(scaler, n_features: int) -> tuple[str, np.ndarray, np.ndarray]
     ones, zeros = np.ones(n_features), np.zeros(n_features)
     if scaler is None:
         return "none", zeros, ones
+    try:
+        check_is_fitted(scaler)
+    except NotFittedError as exc:
+        raise ModelFileError(f"the pipeline's {type(scaler).__name__} is not fitted; fit the pipeline before exporting") from exc
     if isinstance(scaler, StandardScaler):
         center = scaler.mean_ if scaler.with_mean else zeros
         scale = scaler.scale_ if scaler.with_std else ones

@@ -9,6 +9,7 @@ Large arrays (support vectors, coefficients, reference quantiles) live in
 from __future__ import annotations
 
 import json
+import math
 from pathlib import Path
 from typing import Any, Literal
 
@@ -75,9 +76,19 @@ class ScalerSpec(_Strict):
 
 
 class KernelSpec(_Strict):
+    """RBF width, stored both ways: ``gamma = 1 / (2 sigma^2)``; the scorer uses gamma."""
+
     kind: Literal["rbf"] = "rbf"
     gamma: float = Field(gt=0)
     sigma: float = Field(gt=0)
+
+    @model_validator(mode="after")
+    def _same_width(self) -> "KernelSpec":
+        # Both are shown to auditors; they must describe one kernel.
+        implied = 1.0 / math.sqrt(2.0 * self.gamma)
+        if abs(self.sigma - implied) > 1e-9 * implied:
+            raise ValueError(f"sigma {self.sigma} does not match gamma {self.gamma} (expected 1/sqrt(2 gamma) = {implied})")
+        return self
 
 
 class ClassifierSpec(_Strict):
@@ -115,6 +126,26 @@ class Calibration(_Strict):
     sigmoid: list[SigmoidParams] | None = None
     isotonic: list[IsotonicParams] | None = None
     beta: float | None = None
+
+    @model_validator(mode="after")
+    def _parameters_present(self) -> "Calibration":
+        if self.method == "temperature" and not (self.beta is not None and self.beta > 0):
+            raise ValueError("temperature calibration needs a positive beta")
+        if self.method == "sigmoid" and not self.sigmoid:
+            raise ValueError("sigmoid calibration needs at least one (a, b) pair")
+        if self.method == "isotonic":
+            if not self.isotonic:
+                raise ValueError("isotonic calibration needs at least one threshold map")
+            for index, mapping in enumerate(self.isotonic):
+                x, y = mapping.x_thresholds, mapping.y_thresholds
+                if not x or len(x) != len(y) or any(b < a for a, b in zip(x, x[1:])):
+                    raise ValueError(f"isotonic map {index}: x_thresholds must be non-decreasing and as long as y_thresholds")
+        return self
+
+    @property
+    def maps(self) -> int:
+        """Number of per-column maps (sigmoid or isotonic), 0 for the other methods."""
+        return len(self.sigmoid or self.isotonic or [])
 
 
 class FileEntry(_Strict):
@@ -167,7 +198,43 @@ class Manifest(_Strict):
         names = [feature.name for feature in self.features]
         if len(set(names)) != len(names):
             raise ValueError("feature names must be unique")
+        if min(self.classifier.support_per_class) < 0 or sum(self.classifier.support_per_class) < 1:
+            raise ValueError("support_per_class must be non-negative counts with at least one support vector")
+        # scikit-learn fits one calibrator for two classes, else one per class.
+        expected_maps = 1 if n_classes == 2 else n_classes
+        if self.calibration.method in ("sigmoid", "isotonic") and self.calibration.maps != expected_maps:
+            raise ValueError(
+                f"{self.calibration.method} calibration has {self.calibration.maps} maps, expected {expected_maps}"
+            )
+        self._check_golden(n_features, n_classes)
         return self
+
+    def _check_golden(self, n_features: int, n_classes: int) -> None:
+        golden = self.golden
+        rows = len(golden.inputs)
+        if rows == 0 or any(len(row) != n_features for row in golden.inputs):
+            raise ValueError(f"golden.inputs must be one or more rows of {n_features} values")
+        decision_width = None if n_classes == 2 else n_classes
+        pairwise_width = n_classes * (n_classes - 1) // 2
+        shapes = {
+            "labels": (golden.labels, None),
+            "decisions": (golden.decisions, decision_width),
+            "pairwise_decisions": (golden.pairwise_decisions, pairwise_width),
+            "probabilities": (golden.probabilities, n_classes),
+        }
+        for field_name, (values, width) in shapes.items():
+            if values is None:
+                continue
+            if len(values) != rows or any(_width(value) != width for value in values):
+                raise ValueError(f"golden.{field_name} must have {rows} rows of width {width or 1}")
+        if n_classes == 2 and golden.pairwise_decisions is not None:
+            raise ValueError("golden.pairwise_decisions is for more than two classes only")
+        if (golden.probabilities is not None) != self.is_calibrated:
+            raise ValueError("golden.probabilities must be present exactly when the bundle is calibrated")
+        classes = self.classifier.classes
+        for label in golden.labels:
+            if label not in classes or type(label) is not type(classes[0]):
+                raise ValueError(f"golden label {label!r} is not one of the classes {classes}")
 
     @property
     def feature_names(self) -> list[str]:
@@ -180,6 +247,10 @@ class Manifest(_Strict):
     @property
     def is_calibrated(self) -> bool:
         return self.calibration.method != "none"
+
+
+def _width(value: Any) -> int | None:
+    return len(value) if isinstance(value, list) else None
 
 
 def parse_manifest(document: Any, *, source: str = MANIFEST_FILE) -> Manifest:
@@ -199,7 +270,7 @@ def read_manifest(path: Path) -> tuple[dict[str, Any], Manifest]:
     """Read and validate ``path``; return the raw document (for the digest) and the model."""
     try:
         text = Path(path).read_text(encoding="utf-8")
-        document = json.loads(text, parse_constant=_refuse_constant)
+        document = json.loads(text, parse_constant=_refuse_constant, parse_float=_finite_float)
     except FileNotFoundError as exc:
         raise BundleFormatError(f"{path}: no manifest; a bundle directory holds {MANIFEST_FILE}") from exc
     except (OSError, UnicodeDecodeError, ValueError) as exc:
@@ -209,3 +280,11 @@ def read_manifest(path: Path) -> tuple[dict[str, Any], Manifest]:
 
 def _refuse_constant(name: str) -> float:
     raise ValueError(f"{name} is not allowed in a manifest")
+
+
+def _finite_float(text: str) -> float:
+    # json turns an overflowing literal such as 1e999 into inf, which parse_constant never sees.
+    value = float(text)
+    if not math.isfinite(value):
+        raise ValueError(f"{text} is not a finite number")
+    return value

@@ -4,7 +4,8 @@ The scorer never refuses; callers (the CLI, the swap preview, the HTTP
 service) run records through ``check_records`` first. A record is refused
 when any feature is missing, null, not a number (a boolean, a string, a
 nested value), NaN or infinite, outside its allowed range, or when it holds
-a feature the bundle does not know. Every problem names the feature, the
+a feature the bundle does not know (``malformed_row`` is the CSV reader's
+own reason for a row with more fields than its header). Every problem names the feature, the
 value, a machine-readable reason and the allowed range.
 
 Values come in two flavours: JSON values (``from_json``), where only real
@@ -32,7 +33,7 @@ __all__ = [
     "from_text",
 ]
 
-REASONS = ("missing", "null", "not_a_number", "not_finite", "out_of_range", "unknown_feature")
+REASONS = ("missing", "null", "not_a_number", "not_finite", "out_of_range", "unknown_feature", "malformed_row")
 
 # A converter returns the float, or the reason the value cannot be scored.
 Converter = Callable[[Any], "float | str"]
@@ -57,6 +58,8 @@ class Problem:
         """One human-readable phrase, as used in the CLI's ``problems`` column."""
         if self.reason == "out_of_range":
             return f"{self.feature}={self.value} outside [{self.allowed[0]:g}, {self.allowed[1]:g}]"
+        if self.reason == "malformed_row":
+            return f"the row has {self.value} fields, more than the header"
         if self.reason == "unknown_feature":
             return f"{self.feature}: not a feature of this model"
         shown = "" if self.reason in ("missing", "null") else f"={self.value!r}"

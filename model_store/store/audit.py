@@ -1,0 +1,123 @@
+"""Verifying a history trail and naming the first bad entry.
+
+The walk goes through the lines in file order, expecting seq 1, 2, 3, ...
+each linking to the hash of the one before. At the first line that breaks
+this, the diagnosis uses two facts: an entry whose own hash does not match
+its content was edited; and an authentic entry is *referenced*, either by
+the next entry's ``prev_hash`` or by the active pointer's head, so an entry
+nobody references was inserted (or replaced, when it took an existing
+entry's place). A sequence number that jumps ahead marks a deletion when
+the skipped number never appears, or a reordering when it appears later.
+Finally the pointer's head must be the last entry's hash, else the trail
+was truncated (the head is not in it) or has entries after the head.
+"""
+
+from __future__ import annotations
+
+from model_store.errors import HistoryError
+from model_store.store.history import GENESIS, HistoryLine
+from model_store.store.pointer import Pointer
+
+__all__ = ["check_chain", "check_head", "head_position"]
+
+_RESTORE = "restore history.jsonl from a backup and investigate who changed it"
+
+
+def check_chain(lines: list[HistoryLine], model: str, head: str | None) -> None:
+    """Raise ``HistoryError`` naming the first entry where the hash chain breaks."""
+    referenced = {item.entry["prev_hash"] for item in lines}
+    if head is not None:
+        referenced.add(head)
+    expected_seq, expected_prev = 1, GENESIS
+    for index, item in enumerate(lines):
+        if not item.hash_ok:
+            raise HistoryError(
+                f"history of {model}: entry seq {item.seq} (line {item.line}) was edited: its content no longer "
+                f"matches its hash; {_RESTORE}"
+            )
+        if item.seq == expected_seq and item.entry["prev_hash"] == expected_prev:
+            expected_seq, expected_prev = item.seq + 1, item.entry["hash"]
+            continue
+        raise HistoryError(f"history of {model}: {_diagnose(lines, index, expected_seq, referenced, head)}; {_RESTORE}")
+
+
+def _diagnose(lines: list[HistoryLine], index: int, expected_seq: int, referenced: set[str], head: str | None) -> str:
+    item = lines[index]
+    if index > 0:
+        before = lines[index - 1]
+        if before.entry["hash"] not in referenced:
+            if item.entry["prev_hash"] == before.entry["prev_hash"]:
+                return (
+                    f"entry seq {before.seq} (line {before.line}) was inserted: no later entry links to it, "
+                    f"and entry seq {item.seq} (line {item.line}) links to the same predecessor"
+                )
+            if item.seq == expected_seq:
+                return (
+                    f"entry seq {before.seq} (line {before.line}) was replaced: its content was changed and its "
+                    f"hash recomputed, and entry seq {item.seq} records a different hash for it"
+                )
+    is_last = index == len(lines) - 1
+    if item.entry["hash"] not in referenced and (not is_last or head is not None):
+        return f"entry seq {item.seq} (line {item.line}) was inserted: no later entry and no active pointer links to it"
+    if item.seq > expected_seq:
+        later = next((other for other in lines[index + 1 :] if other.seq == expected_seq), None)
+        if later is not None:
+            return (
+                f"entry seq {item.seq} (line {item.line}) is out of order: entry seq {expected_seq} comes after it "
+                f"at line {later.line}; the entries were reordered"
+            )
+        return (
+            f"entry seq {expected_seq} is missing: line {item.line} holds seq {item.seq} where seq {expected_seq} "
+            "belongs; the entry was deleted"
+        )
+    if item.seq < expected_seq:
+        first = next((other for other in lines[:index] if other.seq == item.seq), None)
+        if first is not None:
+            return (
+                f"entry seq {item.seq} appears again at line {item.line} (first at line {first.line}); "
+                "an entry was copied or inserted"
+            )
+        return f"entry seq {item.seq} (line {item.line}) is out of order: seq {expected_seq} belongs there"
+    return (
+        f"entry seq {item.seq} (line {item.line}) does not link to entry seq {item.seq - 1}: its prev_hash is "
+        f"{item.entry['prev_hash'][:16]}..., an entry before it was changed"
+    )
+
+
+def head_position(lines: list[HistoryLine], head: str) -> int | None:
+    """Index of the entry whose hash is ``head`` (-1 for GENESIS, an empty trail), or None."""
+    if head == GENESIS:
+        return -1
+    for index, item in enumerate(lines):
+        if item.entry["hash"] == head:
+            return index
+    return None
+
+
+def check_head(lines: list[HistoryLine], pointer: Pointer | None, model: str) -> None:
+    """Raise ``HistoryError`` unless the pointer's head is the trail's last entry."""
+    if pointer is None:
+        if lines:
+            raise HistoryError(
+                f"history of {model}: the trail has {len(lines)} entries but active.json, which records its "
+                "last hash, is missing; the pointer was deleted or the first publish was interrupted "
+                "(the next change to this model completes it)"
+            )
+        return
+    last = lines[-1].entry["hash"] if lines else GENESIS
+    if pointer.history_head == last:
+        return
+    position = head_position(lines, pointer.history_head)
+    if position is None:
+        ends = f"ends at seq {lines[-1].seq}" if lines else "is empty"
+        raise HistoryError(
+            f"history of {model}: the trail {ends}, but the active pointer records its last entry as seq "
+            f"{pointer.history_seq} (hash {pointer.history_head[:16]}...); entries were removed from the end "
+            f"(truncated) or the trail was rewritten; {_RESTORE}"
+        )
+    first_extra = lines[position + 1]
+    raise HistoryError(
+        f"history of {model}: entries from seq {first_extra.seq} (line {first_extra.line}) on come after the last "
+        f"entry recorded in the active pointer (seq {pointer.history_seq}); they were appended by hand or left by "
+        "an interrupted command (the next change to this model completes it)"
+    )

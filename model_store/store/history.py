@@ -1,0 +1,175 @@
+"""The history trail: one JSON object per line, chained by SHA-256.
+
+Every entry holds exactly these fields:
+
+    seq        1, 2, 3, ... in file order
+    time       RFC 3339 UTC, whole seconds, e.g. "2026-12-01T21:40:00Z"
+    actor      who ran the command
+    action     one of ACTIONS
+    version    the version concerned (null for store-level actions)
+    digest     that version's bundle digest, or null when unknown
+    reason     the operator's reason (required for activate and rollback), or an explanation
+    prev_hash  the previous entry's ``hash``; GENESIS for the first entry
+    hash       SHA-256 (FIPS 180-4) of the canonical JSON of the entry without ``hash``
+
+Changing any byte of an entry changes its hash, and the next entry records
+the old one, so an edit anywhere breaks the chain at that point. The active
+pointer records the hash of the last entry, which catches a cut-off tail.
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+from model_store.digest import canonical_json, sha256_bytes
+from model_store.errors import HistoryError, InputError, StoreError
+from model_store.store.durable import append_bytes
+
+__all__ = [
+    "ACTIONS",
+    "FIELDS",
+    "GENESIS",
+    "HistoryLine",
+    "append_entries",
+    "check_text",
+    "entry_hash",
+    "format_time",
+    "make_entry",
+    "read_trail",
+]
+
+GENESIS = "0" * 64
+FIELDS = ("seq", "time", "actor", "action", "version", "digest", "reason", "prev_hash", "hash")
+ACTIONS = (
+    "publish",          # a version was stored
+    "add-signature",    # a trusted signature was added beside an already published version
+    "activate",         # the active pointer moved to a version
+    "rollback",         # the active pointer moved back to the previously active version
+    "prune",            # a version was removed by retention
+    "refused-publish",  # a publish was refused (conflicting digest, bad signature, golden mismatch)
+    "refused-activate", # an activation was refused because the stored bundle failed verification
+    "refused-rollback", # a rollback was refused because its target failed verification
+    "recover",          # a change interrupted by a crash was completed by the next command
+)
+_MAX_TEXT = 1000
+
+
+class HistoryLine:
+    """One parsed line: its 1-based line number, the entry, and whether its hash matches its content."""
+
+    __slots__ = ("entry", "hash_ok", "line")
+
+    def __init__(self, line: int, entry: dict[str, Any]):
+        self.line = line
+        self.entry = entry
+        self.hash_ok = entry_hash(entry) == entry["hash"]
+
+    @property
+    def seq(self) -> int:
+        return self.entry["seq"]
+
+
+def format_time(moment: datetime) -> str:
+    """RFC 3339 UTC with whole seconds and the ``Z`` suffix."""
+    return moment.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def entry_hash(entry: dict[str, Any]) -> str:
+    """SHA-256 of the canonical JSON of ``entry`` without its ``hash`` field."""
+    return sha256_bytes(canonical_json({key: value for key, value in entry.items() if key != "hash"}))
+
+
+def check_text(value: str | None, *, what: str, required: bool) -> str | None:
+    """Validate an actor or reason: one line of printable text, at most 1000 characters."""
+    if value is None or not str(value).strip():
+        if required:
+            raise InputError(f"{what} is empty; give a short explanation, it is kept in the history for auditors")
+        return None
+    value = str(value).strip()
+    if len(value) > _MAX_TEXT:
+        raise InputError(f"{what} is {len(value)} characters long; the limit is {_MAX_TEXT}")
+    if any(not character.isprintable() for character in value):
+        raise InputError(f"{what} {value[:40]!r} holds a line break or control character; use one line of text")
+    return value
+
+
+def make_entry(
+    previous: dict[str, Any] | None,
+    *,
+    time: str,
+    actor: str,
+    action: str,
+    version: str | None,
+    digest: str | None,
+    reason: str | None,
+) -> dict[str, Any]:
+    """The entry that follows ``previous`` (None for the first), with its hash filled in."""
+    if action not in ACTIONS:
+        raise ValueError(f"unknown history action {action!r}")
+    entry = {
+        "seq": 1 if previous is None else previous["seq"] + 1,
+        "time": time,
+        "actor": actor,
+        "action": action,
+        "version": version,
+        "digest": digest,
+        "reason": reason,
+        "prev_hash": GENESIS if previous is None else previous["hash"],
+    }
+    entry["hash"] = entry_hash(entry)
+    return entry
+
+
+def append_entries(path: Path, entries: list[dict[str, Any]]) -> None:
+    """Append complete lines for ``entries`` in one write."""
+    data = b"".join(json.dumps(entry, sort_keys=True, ensure_ascii=False).encode("utf-8") + b"\n" for entry in entries)
+    append_bytes(path, data)
+
+
+def read_trail(path: Path, model: str, *, allow_partial_tail: bool = False) -> tuple[list[HistoryLine], bool]:
+    """Parse every line of the trail; return the lines and whether an unterminated last line was dropped.
+
+    A last line without its newline is what a writer killed mid-append
+    leaves; it is dropped only when ``allow_partial_tail`` (the recovering
+    writer), otherwise it is reported like any other damaged line.
+    """
+    try:
+        data = Path(path).read_bytes()
+    except FileNotFoundError:
+        return [], False
+    except OSError as exc:
+        raise StoreError(f"{path}: cannot read the history: {exc.strerror}") from exc
+    pieces = data.split(b"\n")
+    partial = pieces.pop()  # empty when the file ends with a newline
+    dropped = bool(partial) and allow_partial_tail
+    if partial and not allow_partial_tail:
+        pieces.append(partial)
+    return [HistoryLine(number, _parse(piece, number, path, model)) for number, piece in enumerate(pieces, 1)], dropped
+
+
+def _parse(raw: bytes, number: int, path: Path, model: str) -> dict[str, Any]:
+    where = f"history of {model}, line {number}"
+    try:
+        entry = json.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError) as exc:
+        raise HistoryError(
+            f"{where}: not a JSON entry ({exc}); the trail {path} was edited or damaged, restore it from a backup"
+        ) from exc
+    if not isinstance(entry, dict) or sorted(entry) != sorted(FIELDS):
+        found = sorted(entry) if isinstance(entry, dict) else type(entry).__name__
+        raise HistoryError(
+            f"{where}: expected an entry with the fields {list(FIELDS)}, found {found}; the trail was edited"
+        )
+    if type(entry["seq"]) is not int or entry["seq"] < 1:
+        raise HistoryError(f"{where}: seq {entry['seq']!r} is not a positive integer; the trail was edited")
+    for key in ("hash", "prev_hash"):
+        value = entry[key]
+        if not isinstance(value, str) or len(value) != 64 or any(c not in "0123456789abcdef" for c in value):
+            raise HistoryError(f"{where}: {key} {value!r} is not a SHA-256 hex digest; the trail was edited")
+    for key in ("time", "actor", "action", "version", "digest", "reason"):
+        if entry[key] is not None and not isinstance(entry[key], str):
+            raise HistoryError(f"{where}: {key} {entry[key]!r} should be text or null; the trail was edited")
+    return entry

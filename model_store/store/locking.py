@@ -1,0 +1,79 @@
+"""The store lock: one ``flock`` on ``ROOT/lock`` serialises every change.
+
+``flock`` locks belong to an open file description, so two processes, or
+two threads that each open the file, exclude each other; the kernel drops
+the lock when the holder dies, so a killed operator never leaves the store
+locked. Writers take it exclusively; auditors reading the history take it
+shared so they never see a trail and a pointer from two different moments.
+A read-only store can still be locked shared (``flock`` needs no write
+access), and a reader that cannot open the file at all reads unlocked.
+"""
+
+from __future__ import annotations
+
+import errno
+import fcntl
+import os
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+from model_store.errors import LockTimeoutError, StoreError
+
+__all__ = ["exclusive_lock", "shared_lock"]
+
+_POLL_SECONDS = 0.02
+
+
+@contextmanager
+def exclusive_lock(path: Path, timeout: float, *, sleep: Callable[[float], None] = time.sleep) -> Iterator[None]:
+    """Hold the store lock exclusively; raise ``StoreError`` if the store cannot be written."""
+    try:
+        descriptor = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    except OSError as exc:
+        raise StoreError(
+            f"{path.parent}: cannot change this store: opening its lock file failed ({_describe(exc)}); "
+            "the store is read-only or belongs to another user, use a writable --store"
+        ) from exc
+    try:
+        _acquire(descriptor, fcntl.LOCK_EX, path, timeout, sleep)
+        yield
+    finally:
+        os.close(descriptor)  # closing the descriptor releases the lock
+
+
+@contextmanager
+def shared_lock(path: Path, timeout: float, *, sleep: Callable[[float], None] = time.sleep) -> Iterator[None]:
+    """Hold the store lock shared, or nothing when the lock file cannot be opened for reading."""
+    try:
+        descriptor = os.open(path, os.O_RDONLY)
+    except OSError:
+        yield
+        return
+    try:
+        _acquire(descriptor, fcntl.LOCK_SH, path, timeout, sleep)
+        yield
+    finally:
+        os.close(descriptor)
+
+
+def _acquire(descriptor: int, mode: int, path: Path, timeout: float, sleep) -> None:
+    deadline = time.monotonic() + timeout
+    while True:
+        try:
+            fcntl.flock(descriptor, mode | fcntl.LOCK_NB)
+            return
+        except OSError as exc:
+            if exc.errno not in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
+                raise StoreError(f"{path}: cannot lock the store: {_describe(exc)}") from exc
+        if time.monotonic() >= deadline:
+            raise LockTimeoutError(
+                f"{path.parent}: another rbfgate command held the store lock for more than {timeout:g} s; "
+                "wait for it to finish and try again"
+            )
+        sleep(_POLL_SECONDS)
+
+
+def _describe(exc: OSError) -> str:
+    return exc.strerror or type(exc).__name__

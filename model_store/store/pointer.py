@@ -1,0 +1,79 @@
+"""The active pointer of a model: which version is live, and where the trail ended.
+
+``active.json`` is small on purpose: every service replica reads it every
+second. It is replaced atomically (write, fsync, rename), so a reader sees
+the old pointer or the new one. Besides the active version it records the
+hash and sequence number of the trail's last entry; a trail that ends
+earlier than that was truncated.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+from model_store.errors import StoreError
+from model_store.store.durable import atomic_write
+
+__all__ = ["ActiveRecord", "Pointer", "read_pointer", "write_pointer"]
+
+
+@dataclass(frozen=True)
+class ActiveRecord:
+    """The active version of a model as the service sees it."""
+
+    version: str
+    digest: str
+    activated_at: str
+    history_head: str
+
+
+@dataclass(frozen=True)
+class Pointer:
+    """The whole pointer file; ``version`` is None until a version is first activated."""
+
+    version: str | None
+    digest: str | None
+    activated_at: str | None
+    history_head: str
+    history_seq: int
+
+    def active_record(self) -> ActiveRecord | None:
+        if self.version is None:
+            return None
+        return ActiveRecord(self.version, self.digest, self.activated_at, self.history_head)
+
+    def moved_head(self, head: str, seq: int) -> "Pointer":
+        return Pointer(self.version, self.digest, self.activated_at, head, seq)
+
+
+def read_pointer(path: Path) -> Pointer | None:
+    """The pointer in ``path``, or None when the model has none yet."""
+    try:
+        data = Path(path).read_bytes()
+    except FileNotFoundError:
+        return None
+    except OSError as exc:
+        raise StoreError(f"{path}: cannot read the active pointer: {exc.strerror}") from exc
+    try:
+        document = json.loads(data)
+        pointer = Pointer(
+            version=document["version"],
+            digest=document["digest"],
+            activated_at=document["activated_at"],
+            history_head=document["history_head"],
+            history_seq=document["history_seq"],
+        )
+    except (ValueError, TypeError, KeyError) as exc:
+        raise StoreError(
+            f"{path}: the active pointer is not valid ({exc!r}); it was edited by hand, restore it from a backup"
+        ) from exc
+    if not isinstance(pointer.history_head, str) or type(pointer.history_seq) is not int:
+        raise StoreError(f"{path}: the active pointer's history fields are malformed; restore it from a backup")
+    return pointer
+
+
+def write_pointer(path: Path, pointer: Pointer) -> None:
+    text = json.dumps(asdict(pointer), indent=2, sort_keys=True)
+    atomic_write(path, (text + "\n").encode("utf-8"))

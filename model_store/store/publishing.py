@@ -1,0 +1,128 @@
+"""Copying a verified bundle into the store: staging, the version record, the final rename.
+
+A version is assembled in ``STORE/staging/<random>/`` (``published.json``
+plus ``bundle/``), every file and directory fsynced, re-read and checked
+against the digest that was verified, and only then renamed to
+``models/NAME/versions/VERSION``. A publisher killed at any moment leaves at
+most a staging directory, which no reader looks at and the next change to
+the store removes.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+from collections.abc import Callable
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+from model_store.archive import is_archive, read_archive
+from model_store.bundle import Bundle, load_bundle
+from model_store.errors import IntegrityError, RbfgateError, StoreError
+from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE
+from model_store.store.durable import fsync_directory, fsync_tree, temporary_name
+
+__all__ = ["PublishOutcome", "VersionRecord", "bundle_members", "clear_staging", "read_record", "stage_version"]
+
+# Progress hook: called with "staging <file>", "staged", "stored", "recorded" as publishing advances.
+StepHook = Callable[[str], None]
+
+
+@dataclass(frozen=True)
+class PublishOutcome:
+    name: str
+    version: str
+    digest: str
+    already_present: bool
+
+
+@dataclass(frozen=True)
+class VersionRecord:
+    """``published.json``: what was stored, when and by whom; ``publish_seq`` orders versions."""
+
+    name: str
+    version: str
+    digest: str
+    created: str
+    published_at: str
+    published_by: str
+    publish_seq: int
+
+
+def read_record(path: Path) -> VersionRecord:
+    try:
+        document = json.loads(Path(path).read_text(encoding="utf-8"))
+        return VersionRecord(**document)
+    except FileNotFoundError:
+        raise
+    except OSError as exc:
+        raise StoreError(f"{path}: cannot read the version record: {exc.strerror}") from exc
+    except (ValueError, TypeError) as exc:
+        raise StoreError(f"{path}: the version record is malformed ({exc}); restore it from a backup") from exc
+
+
+def bundle_members(source: Path, bundle: Bundle) -> dict[str, bytes]:
+    """The bytes to store: the manifest, the files it lists, and the signature when there is one."""
+    source = Path(source)
+    if is_archive(source):
+        return read_archive(source)
+    names = [MANIFEST_FILE, *bundle.manifest.files]
+    members = {name: _read(source / name) for name in names}
+    signature = source / SIGNATURE_FILE
+    if signature.is_file():
+        members[SIGNATURE_FILE] = _read(signature)
+    return members
+
+
+def stage_version(
+    staging_root: Path, record: VersionRecord, members: dict[str, bytes], step: StepHook
+) -> Path:
+    """Write the version into a fresh staging directory, fsync it, and check it still has ``record.digest``."""
+    staging_root.mkdir(exist_ok=True)
+    staged = staging_root / temporary_name(f"{record.name}-{record.version}")
+    bundle_dir = staged / "bundle"
+    bundle_dir.mkdir(parents=True)
+    for name, data in members.items():
+        step(f"staging {name}")
+        (bundle_dir / name).write_bytes(data)
+    (staged / "published.json").write_text(json.dumps(asdict(record), indent=2, sort_keys=True) + "\n", "utf-8")
+    fsync_tree(staged)
+    try:
+        copy = load_bundle(bundle_dir)
+    except RbfgateError as exc:
+        raise IntegrityError(
+            f"the copy of {record.name} {record.version} in the store does not verify ({exc}); "
+            "the bundle changed while it was being published, publish it again"
+        ) from exc
+    if copy.digest != record.digest:
+        raise IntegrityError(
+            f"{record.name} {record.version}: the bundle's digest changed from {record.digest[:16]}... to "
+            f"{copy.digest[:16]}... while it was being published; publish it again once it is stable"
+        )
+    step("staged")
+    return staged
+
+
+def clear_staging(staging_root: Path) -> list[str]:
+    """Remove what interrupted publishers and pruners left; call only while holding the store lock."""
+    try:
+        leftovers = sorted(os.listdir(staging_root))
+    except FileNotFoundError:
+        return []
+    for name in leftovers:
+        path = staging_root / name
+        if path.is_dir() and not path.is_symlink():
+            shutil.rmtree(path)
+        else:
+            path.unlink()
+    if leftovers:
+        fsync_directory(staging_root)
+    return leftovers
+
+
+def _read(path: Path) -> bytes:
+    try:
+        return path.read_bytes()
+    except OSError as exc:
+        raise IntegrityError(f"{path}: cannot be read while publishing ({exc.strerror}); the bundle changed") from exc

@@ -1,0 +1,173 @@
+"""Train an RBF SVC on a CSV file and export it as a bundle.
+
+Steps: stratified train/holdout split; StandardScaler + SVC(kernel='rbf');
+unless both the kernel width and C are given, a log-spaced grid search with
+stratified k-fold cross-validation on the training split; optional
+calibration (CalibratedClassifierCV, ensemble=False); metrics on the holdout
+split; export with the training split as the reference rows.
+
+This module imports scikit-learn; the serving path never imports it.
+"""
+
+from __future__ import annotations
+
+import itertools
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from sklearn.calibration import CalibratedClassifierCV
+from sklearn.model_selection import StratifiedKFold, cross_val_score, train_test_split
+from sklearn.pipeline import Pipeline
+from sklearn.preprocessing import StandardScaler
+from sklearn.svm import SVC
+from tqdm import tqdm
+
+from model_store.bundle import Bundle
+from model_store.digest import sha256_file
+from model_store.errors import CsvError, InputError
+from model_store.estimator_parts import take_apart
+from model_store.exporter import DEFAULT_MARGIN, ExportRequest, export_bundle
+from model_store.metrics import classification_metrics
+from model_store.tables import Table, read_table
+
+__all__ = ["CALIBRATIONS", "MIN_ROWS_PER_CLASS", "TrainRequest", "train_bundle"]
+
+CALIBRATIONS = ("sigmoid", "isotonic", "temperature", "none")
+MIN_ROWS_PER_CLASS = 6
+_C_GRID = np.logspace(-1, 3, 5)  # 0.1 ... 1000
+_GAMMA_FACTORS = np.logspace(-2, 1, 4)  # times 1 / n_features, the width of gamma='scale' on standardised data
+_MAX_FOLDS = 5
+
+
+@dataclass
+class TrainRequest:
+    data: Path
+    target: str
+    name: str
+    version: str
+    out: Path
+    sigma: float | None = None
+    gamma: float | None = None
+    C: float | None = None
+    calibration: str = "sigmoid"
+    test_size: float = 0.25
+    seed: int = 0
+    margin: float = DEFAULT_MARGIN
+    feature_info: dict[str, dict] = field(default_factory=dict)
+    progress: bool | None = None  # None: show a progress bar only on a terminal
+
+
+def train_bundle(request: TrainRequest) -> Bundle:
+    """Fit, evaluate on the holdout split and export; return the verified bundle."""
+    gamma = _requested_gamma(request)
+    if request.C is not None and not request.C > 0:
+        raise InputError(f"--C {request.C} must be positive")
+    if not 0 < request.test_size < 1:
+        raise InputError(f"--test-size {request.test_size} must be a fraction between 0 and 1")
+    table = read_table(request.data, target=request.target)
+    labels = np.asarray(table.target)
+    _check_classes(table, labels, request)
+    X_train, X_test, y_train, y_test = train_test_split(
+        table.values, labels, test_size=request.test_size, stratify=labels, random_state=request.seed
+    )
+    folds = StratifiedKFold(n_splits=_fold_count(y_train), shuffle=True, random_state=request.seed)
+    search = _search(X_train, y_train, folds, gamma, request)
+    pipeline = Pipeline([("scale", StandardScaler()), ("svc", SVC(kernel="rbf", C=search["C"], gamma=search["gamma"]))])
+    if request.calibration == "none":
+        model = pipeline.fit(X_train, y_train)
+    else:
+        model = CalibratedClassifierCV(pipeline, method=request.calibration, ensemble=False, cv=folds)
+        model.fit(X_train, y_train)
+    parts = take_apart(model)
+    holdout = classification_metrics(parts, X_test, y_test.tolist())  # plain arrays: the model never saw names
+    classes, counts = np.unique(y_train.astype(str), return_counts=True)
+    export = ExportRequest(
+        parts=parts,
+        features=table.features,
+        reference=X_train,
+        reference_labels=None,
+        reference_file=str(request.data),
+        reference_sha256=sha256_file(request.data),
+        name=request.name,
+        version=request.version,
+        out=request.out,
+        margin=request.margin,
+        feature_info=request.feature_info,
+        reference_role="training split (the holdout rows are excluded)",
+        training={
+            "split": {"test_size": request.test_size, "seed": request.seed, "stratified": True,
+                      "training_rows": int(len(y_train)), "holdout_rows": int(len(y_test))},
+            "class_counts": {str(label): int(count) for label, count in zip(classes, counts)},
+            "search": search["record"],
+            "calibration_method": request.calibration,
+            "holdout_metrics": holdout,
+        },
+    )
+    return export_bundle(export)
+
+
+def _requested_gamma(request: TrainRequest) -> float | None:
+    if request.sigma is not None and request.gamma is not None:
+        raise InputError("give either --sigma or --gamma, not both (gamma = 1 / (2 sigma^2))")
+    if request.sigma is not None:
+        if not request.sigma > 0:
+            raise InputError(f"--sigma {request.sigma} must be positive")
+        return 1.0 / (2.0 * request.sigma**2)
+    if request.gamma is not None and not request.gamma > 0:
+        raise InputError(f"--gamma {request.gamma} must be positive")
+    return request.gamma
+
+
+def _check_classes(table: Table, labels: np.ndarray, request: TrainRequest) -> None:
+    classes, counts = np.unique(labels, return_counts=True)
+    classes = classes.tolist()
+    if len(classes) < 2:
+        raise CsvError(table.path, f"has only one class ({classes[0]!r}); a classifier needs at least two", column=request.target)
+    for label, count in zip(classes, counts.tolist()):
+        if count < MIN_ROWS_PER_CLASS:
+            first = int(np.flatnonzero(labels == label)[0]) + 1
+            raise CsvError(
+                table.path,
+                f"class {label!r} has {count} rows (first at row {first}); at least {MIN_ROWS_PER_CLASS} per class "
+                "are needed for a stratified split and cross-validation",
+                column=request.target,
+            )
+
+
+def _fold_count(y_train: np.ndarray) -> int:
+    smallest = int(np.unique(y_train, return_counts=True)[1].min())
+    return max(2, min(_MAX_FOLDS, smallest))
+
+
+def _search(X, y, folds, gamma: float | None, request: TrainRequest) -> dict[str, Any]:
+    n_features = X.shape[1]
+    gammas = [gamma] if gamma is not None else list(_GAMMA_FACTORS / n_features)
+    costs = [request.C] if request.C is not None else list(_C_GRID)
+    candidates = list(itertools.product(costs, gammas))
+    if len(candidates) == 1:
+        C, chosen = candidates[0]
+        return {"C": C, "gamma": chosen, "record": {"grid": None, "C": C, "gamma": chosen}}
+    results = []
+    for C, candidate_gamma in tqdm(candidates, desc="grid search", unit="fit", disable=_quiet(request)):
+        model = Pipeline([("scale", StandardScaler()), ("svc", SVC(kernel="rbf", C=C, gamma=candidate_gamma))])
+        scores = cross_val_score(model, X, y, cv=folds, scoring="balanced_accuracy")
+        results.append({"C": float(C), "gamma": float(candidate_gamma), "mean": float(scores.mean()), "std": float(scores.std())})
+    best = max(results, key=lambda result: (result["mean"], -result["C"]))  # ties: the smoother, smaller C
+    return {
+        "C": best["C"],
+        "gamma": best["gamma"],
+        "record": {
+            "scoring": "balanced_accuracy",
+            "folds": folds.get_n_splits(),
+            "grid": {"C": [float(c) for c in costs], "gamma": [float(g) for g in gammas]},
+            "results": results,
+            "C": best["C"],
+            "gamma": best["gamma"],
+        },
+    }
+
+
+def _quiet(request: TrainRequest) -> bool | None:
+    return None if request.progress is None else not request.progress

@@ -1,0 +1,143 @@
+"""Prometheus metrics of one service (prometheus-client, text exposition format).
+
+With one worker the metrics live in a registry owned by the app. With several
+workers, ``rbfgate serve`` points ``PROMETHEUS_MULTIPROC_DIR`` at a fresh
+temporary directory before the workers start; each worker then writes its
+values to files there and ``/metrics`` on any worker aggregates all of them
+(prometheus-client's multiprocess mode). Gauges use the ``livemax`` mode: a
+version shows as active while any live worker serves it.
+
+Label values come only from names the service has checked (model names and
+versions from the store, feature names from the manifest, fixed outcomes and
+route templates), never from raw request text, so a caller cannot inflate the
+number of series.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterable
+
+import numpy as np
+from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, Counter, Gauge, Histogram, generate_latest
+from prometheus_client import multiprocess
+
+__all__ = ["DISTANCE_BUCKETS", "ServiceMetrics"]
+
+_LATENCY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
+# Distances live in the scaled space, where one unit is about one training
+# standard deviation for a standard scaler; doubling steps cover near and far.
+DISTANCE_BUCKETS = (0.125, 0.25, 0.5, 1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.0)
+_PERCENTILE_BUCKETS = (10.0, 25.0, 50.0, 75.0, 90.0, 95.0, 99.0, 100.0)
+_METHODS = frozenset({"GET", "POST", "PUT", "PATCH", "DELETE", "HEAD", "OPTIONS"})
+
+
+class ServiceMetrics:
+    """All metrics of one app. ``multiprocess_dir`` switches on multiprocess mode."""
+
+    def __init__(self, multiprocess_dir: str | None = None) -> None:
+        self.multiprocess_dir = multiprocess_dir
+        self._registry = CollectorRegistry()
+        registry = self._registry
+        self.http_requests = Counter(
+            "rbfgate_http_requests", "HTTP requests by route template, method and status.",
+            ["route", "method", "status"], registry=registry,
+        )
+        self.latency = Histogram(
+            "rbfgate_http_request_duration_seconds", "Time from request start to response end, by route template.",
+            ["route"], buckets=_LATENCY_BUCKETS, registry=registry,
+        )
+        self.score_requests = Counter(
+            "rbfgate_score_requests", "Scoring requests by model, version and outcome (scored, partial, refused).",
+            ["model", "version", "outcome"], registry=registry,
+        )
+        self.records = Counter(
+            "rbfgate_records", "Records by model, version and status (scored, refused).",
+            ["model", "version", "status"], registry=registry,
+        )
+        self.refusals = Counter(
+            "rbfgate_refusals", "Refusal problems by model, version, feature and reason.",
+            ["model", "version", "feature", "reason"], registry=registry,
+        )
+        self.distance = Histogram(
+            "rbfgate_nearest_support_distance", "Distance of scored records to the nearest support vector (scaled space).",
+            ["model", "version"], buckets=DISTANCE_BUCKETS, registry=registry,
+        )
+        self.percentile = Histogram(
+            "rbfgate_nearest_support_percentile",
+            "Percentile of that distance among the bundle's reference rows (0-100); a drift signal.",
+            ["model", "version"], buckets=_PERCENTILE_BUCKETS, registry=registry,
+        )
+        self.active = Gauge(
+            "rbfgate_active_version_info", "1 for the version each model is served with.",
+            ["model", "version", "digest"], registry=registry, multiprocess_mode="livemax",
+        )
+        self.load_failing = Gauge(
+            "rbfgate_load_failing", "1 while the store's active version of a model fails to load and an older one serves.",
+            ["model", "version"], registry=registry, multiprocess_mode="livemax",
+        )
+        self.switches = Counter(
+            "rbfgate_version_switches", "Version switches carried out by the workers.", ["model"], registry=registry,
+        )
+        self.load_failures = Counter(
+            "rbfgate_load_failures", "Bundles that failed their checks when a worker tried to load them.",
+            ["model", "version"], registry=registry,
+        )
+
+    def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
+        method = method if method in _METHODS else "other"
+        self.http_requests.labels(route, method, str(status)).inc()
+        self.latency.labels(route).observe(seconds)
+
+    def observe_scoring(
+        self,
+        model: str,
+        version: str,
+        *,
+        scored: int,
+        refused: int,
+        problems: Iterable[tuple[str, str]],
+        distances: np.ndarray,
+        percentiles: np.ndarray,
+    ) -> None:
+        """One scoring request: counts, (feature, reason) of each problem, (n,) distances and percentiles."""
+        outcome = "refused" if scored == 0 else ("partial" if refused else "scored")
+        self.score_requests.labels(model, version, outcome).inc()
+        if scored:
+            self.records.labels(model, version, "scored").inc(scored)
+        if refused:
+            self.records.labels(model, version, "refused").inc(refused)
+        for feature, reason in problems:
+            self.refusals.labels(model, version, feature, reason).inc()
+        distance_child = self.distance.labels(model, version)
+        percentile_child = self.percentile.labels(model, version)
+        for distance, percentile in zip(distances.tolist(), percentiles.tolist()):
+            distance_child.observe(distance)
+            percentile_child.observe(percentile)
+
+    def switched(self, model: str, old: tuple[str, str] | None, new: tuple[str, str]) -> None:
+        """A worker now serves ``new`` (version, digest) instead of ``old``."""
+        if old is not None:
+            self.active.labels(model, *old).set(0)
+        self.active.labels(model, *new).set(1)
+        self.switches.labels(model).inc()
+
+    def load_failed(self, model: str, version: str) -> None:
+        self.load_failures.labels(model, version).inc()
+        self.load_failing.labels(model, version).set(1)
+
+    def load_recovered(self, model: str, version: str) -> None:
+        self.load_failing.labels(model, version).set(0)
+
+    def render(self) -> tuple[bytes, str]:
+        """The exposition text and its content type."""
+        if self.multiprocess_dir is None:
+            return generate_latest(self._registry), CONTENT_TYPE_LATEST
+        registry = CollectorRegistry()
+        multiprocess.MultiProcessCollector(registry, path=self.multiprocess_dir)
+        return generate_latest(registry), CONTENT_TYPE_LATEST
+
+    def worker_exited(self) -> None:
+        """Drop this worker's live gauges (multiprocess mode only)."""
+        if self.multiprocess_dir is not None:
+            multiprocess.mark_process_dead(os.getpid(), path=self.multiprocess_dir)

@@ -1,0 +1,238 @@
+"""The models one worker serves, following the store's active pointers.
+
+The registry holds an immutable table ``{model name: LoadedModel}``. A request
+reads the table once and keeps the ``LoadedModel`` it found, so it finishes on
+the version it started with whatever happens meanwhile. A switch loads the new
+version with ``Store.load_verified`` (checksums, golden vectors, signature
+policy) and only then replaces the table in one reference assignment; a
+bundle that fails is never served, the previous version keeps serving, and the
+failure is kept for /readyz and the metrics.
+
+A background thread polls the store's pointers every ``poll_seconds``
+(``Store.active`` is one small read per model), so every worker, and every
+replica on the same store, follows an activation within one interval.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+from collections import OrderedDict
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from types import MappingProxyType
+
+from model_store.bundle import Bundle
+from model_store.errors import NotFoundError, RbfgateError
+from model_store.naming import check_name
+from service.metrics import ServiceMetrics
+
+__all__ = ["LoadFailure", "LoadedModel", "ModelRegistry"]
+
+_log = logging.getLogger("rbfgate.service")
+
+# A version that failed is tried again after this long, in case the failure
+# was transient (a file briefly unreadable); a bad bundle stays bad.
+_RETRY_FAILED_SECONDS = 30.0
+_PINNED_CAPACITY = 8
+
+
+@dataclass(frozen=True)
+class LoadedModel:
+    """One verified bundle, as served."""
+
+    name: str
+    version: str
+    digest: str
+    bundle: Bundle
+    loaded_at: str
+
+
+@dataclass(frozen=True)
+class LoadFailure:
+    """The store's active version of a model could not be loaded."""
+
+    name: str
+    version: str
+    digest: str
+    error: str
+    detail: str
+    at: str
+    monotonic: float
+
+    def to_dict(self) -> dict[str, str]:
+        return {"version": self.version, "digest": self.digest, "error": self.error, "detail": self.detail, "at": self.at}
+
+
+class ModelRegistry:
+    """Per-worker table of loaded models; ``store`` is a ``model_store.store.Store``."""
+
+    def __init__(
+        self,
+        store,
+        metrics: ServiceMetrics,
+        *,
+        on_event: Callable[[dict], None] | None = None,
+        clock: Callable[[], float] = time.monotonic,
+    ) -> None:
+        self._store = store
+        self._metrics = metrics
+        self._on_event = on_event or (lambda event: None)
+        self._clock = clock
+        self._table: Mapping[str, LoadedModel] = MappingProxyType({})
+        self._pointers: Mapping[str, tuple[str, str]] = MappingProxyType({})
+        self._failures: Mapping[str, LoadFailure] = MappingProxyType({})
+        self._poll_error: str | None = None
+        self._started = False
+        self._refresh_lock = threading.RLock()
+        self._pinned: OrderedDict[tuple[str, str], LoadedModel] = OrderedDict()
+        self._pinned_lock = threading.Lock()
+
+    # ---- reading (any thread, lock-free: the mappings are replaced, never changed)
+
+    def serving(self, name: str) -> LoadedModel | None:
+        return self._table.get(name)
+
+    def table(self) -> Mapping[str, LoadedModel]:
+        return self._table
+
+    def readiness(self) -> tuple[bool, dict]:
+        """(ready, report): ready when every model with an active pointer has a loaded version."""
+        table, pointers, failures = self._table, self._pointers, self._failures
+        models = []
+        for name in sorted(pointers):
+            loaded = table.get(name)
+            failure = failures.get(name)
+            models.append({
+                "model": name,
+                "active": {"version": pointers[name][0], "digest": pointers[name][1]},
+                "serving": None if loaded is None else {"version": loaded.version, "digest": loaded.digest},
+                "failure": None if failure is None else failure.to_dict(),
+            })
+        ready = self._started and all(entry["serving"] is not None for entry in models)
+        degraded = bool(failures) or self._poll_error is not None
+        status = "ready" if ready and not degraded else ("degraded" if ready else "not_ready")
+        return ready, {"status": status, "store_error": self._poll_error, "models": models}
+
+    # ---- following the store
+
+    def refresh_all(self) -> None:
+        """Bring every model in line with the store's active pointers."""
+        with self._refresh_lock:
+            try:
+                names = self._store.models()
+            except RbfgateError as exc:
+                self._note_poll_error(exc)
+                return
+            for name in names:
+                self.refresh(name)
+            for gone in set(self._table) - set(names):
+                self._drop(gone)
+            self._poll_error = None
+            self._started = True
+
+    def refresh(self, name: str, *, force: bool = False) -> LoadedModel | None:
+        """Follow ``name``'s active pointer; return what this worker now serves for it."""
+        with self._refresh_lock:
+            try:
+                record = self._store.active(name)
+            except NotFoundError:
+                record = None
+            except RbfgateError as exc:
+                self._note_poll_error(exc)
+                return self._table.get(name)
+            if record is None:
+                self._drop(name)
+                return None
+            target = (record.version, record.digest)
+            self._pointers = MappingProxyType({**self._pointers, name: target})
+            current = self._table.get(name)
+            if current is not None and (current.version, current.digest) == target:
+                self._clear_failure(name)
+                return current
+            failure = self._failures.get(name)
+            if (
+                not force
+                and failure is not None
+                and (failure.version, failure.digest) == target
+                and self._clock() - failure.monotonic < _RETRY_FAILED_SECONDS
+            ):
+                return current
+            return self._switch(name, record.version, record.digest, current)
+
+    def _switch(self, name: str, version: str, digest: str, current: LoadedModel | None) -> LoadedModel | None:
+        try:
+            bundle = self._store.load_verified(name, version)
+            if bundle.digest != digest:
+                raise _DigestMoved(
+                    f"the store's pointer names digest {digest} but version {version} has digest {bundle.digest}"
+                )
+        except Exception as exc:  # noqa: BLE001 - whatever a bundle does, the old version keeps serving
+            self._record_failure(name, version, digest, exc)
+            return current
+        loaded = LoadedModel(name, version, digest, bundle, _now())
+        self._table = MappingProxyType({**self._table, name: loaded})  # the switch: one assignment
+        self._clear_failure(name)
+        old = None if current is None else (current.version, current.digest)
+        self._metrics.switched(name, old, (version, digest))
+        self._on_event({"event": "switch", "model": name, "version": version, "digest": digest,
+                        "previous": None if current is None else current.version})
+        return loaded
+
+    def _record_failure(self, name: str, version: str, digest: str, exc: Exception) -> None:
+        if not isinstance(exc, (RbfgateError, _DigestMoved)):
+            _log.exception("unexpected error loading %s %s", name, version)
+        failure = LoadFailure(name, version, digest, type(exc).__name__, str(exc), _now(), self._clock())
+        self._failures = MappingProxyType({**self._failures, name: failure})
+        self._metrics.load_failed(name, version)
+        self._on_event({"event": "load_failed", "model": name, "version": version, "digest": digest,
+                        "error": failure.error, "detail": failure.detail})
+
+    def _clear_failure(self, name: str) -> None:
+        failure = self._failures.get(name)
+        if failure is not None:
+            self._failures = MappingProxyType({key: value for key, value in self._failures.items() if key != name})
+            self._metrics.load_recovered(name, failure.version)
+
+    def _drop(self, name: str) -> None:
+        self._table = MappingProxyType({key: value for key, value in self._table.items() if key != name})
+        self._pointers = MappingProxyType({key: value for key, value in self._pointers.items() if key != name})
+        self._clear_failure(name)
+
+    def _note_poll_error(self, exc: RbfgateError) -> None:
+        if self._poll_error != str(exc):
+            _log.error("cannot read the store's active pointers, serving what is loaded: %s", exc)
+        self._poll_error = str(exc)
+
+    # ---- pinned versions
+
+    def pinned(self, name: str, version: str) -> LoadedModel:
+        """A published version, loaded and verified on first use and kept in a small LRU cache."""
+        check_name(name, what="model name")
+        check_name(version, what="model version")
+        self._store.bundle_dir(name, version)  # NotFoundError once pruned, even if cached
+        current = self._table.get(name)
+        if current is not None and current.version == version:
+            return current
+        key = (name, version)
+        with self._pinned_lock:
+            cached = self._pinned.get(key)
+            if cached is not None:
+                self._pinned.move_to_end(key)
+                return cached
+            bundle = self._store.load_verified(name, version)
+            loaded = LoadedModel(name, version, bundle.digest, bundle, _now())
+            self._pinned[key] = loaded
+            while len(self._pinned) > _PINNED_CAPACITY:
+                self._pinned.popitem(last=False)
+            return loaded
+
+
+class _DigestMoved(Exception):
+    """The pointer and the bundle disagree on the digest (a publish race or a damaged store)."""
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")

@@ -1,0 +1,43 @@
+"""The JSON Schema (draft 2020-12) of one record a bundle accepts.
+
+Each feature is a required property of type ``number`` with ``minimum`` and
+``maximum`` set to its allowed range (both inclusive, as in the refusal
+policy); ``additionalProperties: false`` mirrors the refusal of unknown
+features. JSON Schema's ``number`` excludes booleans and strings, and JSON has
+no NaN or Infinity, so a record is valid under this schema exactly when the
+refusal policy accepts it.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from model_store.manifest import Manifest
+
+__all__ = ["DIALECT", "record_schema"]
+
+DIALECT = "https://json-schema.org/draft/2020-12/schema"
+
+
+def record_schema(manifest: Manifest, digest: str) -> dict[str, Any]:
+    """The schema of one record for ``manifest`` (whose bundle digest is ``digest``)."""
+    properties: dict[str, Any] = {}
+    for feature in manifest.features:
+        low, high = feature.allowed
+        described = [part for part in (feature.description, f"unit: {feature.unit}" if feature.unit else None) if part]
+        prop: dict[str, Any] = {"type": "number", "minimum": low, "maximum": high}
+        if described:
+            prop["description"] = "; ".join(described)
+        properties[feature.name] = prop
+    return {
+        "$schema": DIALECT,
+        "title": f"one record for {manifest.name} {manifest.version}",
+        "description": (
+            f"bundle sha256 {digest}; send records as {{\"records\": [record, ...]}} to "
+            f"POST /score/{manifest.name}/versions/{manifest.version}"
+        ),
+        "type": "object",
+        "properties": properties,
+        "required": manifest.feature_names,
+        "additionalProperties": False,
+    }

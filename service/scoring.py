@@ -1,0 +1,149 @@
+"""Scoring a request body: shape checks, the refusal policy, the scorer, the response.
+
+    body      {"records": [{feature: number, ...}, ...]}     1 to max_records records
+    results   one per record, in request order:
+              {"status": "scored", "label", "decision", "probability", "nearest_support"}
+              {"status": "refused", "problems": [{"feature", "value", "reason", "allowed"}]}
+
+``decision`` is a number for a binary model (scikit-learn's
+``decision_function``, positive for the second class) and an object
+class -> number for a multiclass one (its ovr-shaped decision). ``probability``
+is an object class -> probability, or null when the bundle is uncalibrated.
+Class labels become JSON object keys as strings (JSON keys are strings).
+
+Records are checked with ``model_store.refusal.check_records`` (the one
+refusal policy, shared with the CLI and the swap preview), and only accepted
+rows reach the scorer.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from model_store.refusal import CheckedBatch, check_records, from_json
+from model_store.scoring import Scores
+from service.problems import ServiceProblem
+from service.registry import LoadedModel
+
+__all__ = ["ScoredBatch", "read_records", "score_records"]
+
+
+@dataclass(frozen=True)
+class ScoredBatch:
+    """The outcome of one request: ``results`` in request order, plus what metrics and logs need."""
+
+    results: list[dict[str, Any]]
+    checked: CheckedBatch
+    scores: Scores | None
+
+    @property
+    def scored(self) -> int:
+        return len(self.checked.accepted)
+
+    @property
+    def refused(self) -> int:
+        return len(self.checked.problems)
+
+    def problem_pairs(self, known_features: set[str]) -> list[tuple[str, str]]:
+        """(feature, reason) of every problem; unknown feature names are not echoed into metrics."""
+        return [
+            (problem.feature if problem.feature in known_features else "(unknown)", problem.reason)
+            for problems in self.checked.problems.values()
+            for problem in problems
+        ]
+
+
+def read_records(document: Any, max_records: int) -> list[dict[str, Any]]:
+    """The records of a parsed body; 422 for a wrong shape, 413 for too many records."""
+    if not isinstance(document, dict):
+        raise _shape("/", f"the body must be a JSON object {{\"records\": [...]}}, not {_kind(document)}")
+    unknown = sorted(set(document) - {"records"})
+    if unknown:
+        raise _shape(f"/{unknown[0][:64]}", "unknown member; the body holds only \"records\"")
+    if "records" not in document:
+        raise _shape("/records", "missing; send {\"records\": [{feature: number, ...}]}")
+    records = document["records"]
+    if not isinstance(records, list):
+        raise _shape("/records", f"must be a list of records, not {_kind(records)}")
+    if not records:
+        raise _shape("/records", "is empty; send at least one record")
+    if len(records) > max_records:
+        raise ServiceProblem(
+            413,
+            "too-many-records",
+            "Too many records in one request",
+            f"the request holds {len(records)} records; the limit is {max_records}; split it into smaller requests",
+            extra={"limit_records": max_records},
+        )
+    for index, record in enumerate(records):
+        if not isinstance(record, dict):
+            raise _shape(f"/records/{index}", f"each record must be an object {{feature: number}}, not {_kind(record)}")
+    return records
+
+
+def score_records(model: LoadedModel, records: list[dict[str, Any]]) -> ScoredBatch:
+    """Check ``records`` against the model's features, score the accepted ones, build the results."""
+    bundle = model.bundle
+    checked = check_records(bundle.manifest.features, records, from_json)
+    scores = bundle.score(checked.values) if len(checked.accepted) else None
+    position = {int(index): row for row, index in enumerate(checked.accepted.tolist())}
+    classes = [str(label) for label in bundle.classes]
+    scored = _scored_results(scores, classes) if scores is not None else []
+    results = []
+    for index in range(len(records)):
+        if index in position:
+            results.append(scored[position[index]])
+        else:
+            results.append({"status": "refused", "problems": [problem.to_dict() for problem in checked.problems[index]]})
+    return ScoredBatch(results, checked, scores)
+
+
+def _scored_results(scores: Scores, classes: list[str]) -> list[dict[str, Any]]:
+    labels = scores.labels.tolist()
+    decisions = scores.decision.tolist()
+    probabilities = None if scores.probabilities is None else scores.probabilities.tolist()
+    nearest = zip(
+        scores.nearest_distance.tolist(),
+        scores.nearest_similarity.tolist(),
+        scores.nearest_label.tolist(),
+        scores.nearest_index.tolist(),
+        scores.nearest_percentile.tolist(),
+    )
+    results = []
+    for row, (distance, similarity, label, index, percentile) in enumerate(nearest):
+        decision = decisions[row]
+        results.append({
+            "status": "scored",
+            "label": labels[row],
+            "decision": dict(zip(classes, decision)) if isinstance(decision, list) else decision,
+            "probability": None if probabilities is None else dict(zip(classes, probabilities[row])),
+            "nearest_support": {
+                "distance": distance,
+                "similarity": similarity,
+                "label": label,
+                "index": index,
+                "percentile": percentile,
+            },
+        })
+    return results
+
+
+def _shape(pointer: str, detail: str) -> ServiceProblem:
+    return ServiceProblem(
+        422,
+        "invalid-request",
+        "The request body does not have the expected shape",
+        f"{pointer}: {detail}",
+        extra={"problems": [{"pointer": pointer, "detail": detail}]},
+    )
+
+
+def _kind(value: Any) -> str:
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "a boolean"
+    return {dict: "an object", list: "a list", str: "a string", int: "a number", float: "a number"}.get(type(value), "a value")

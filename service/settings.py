@@ -1,0 +1,140 @@
+"""Service settings: one frozen value built from the command line or the environment.
+
+``rbfgate serve`` builds ``Settings`` from its arguments and, because uvicorn
+starts each worker as a fresh process, hands them to the workers as
+environment variables (``to_environ``) that ``from_environ`` reads back.
+Every value is checked here, at the boundary, so the rest of the service
+trusts it.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+
+from model_store.errors import InputError
+
+__all__ = [
+    "DEFAULT_HOST",
+    "DEFAULT_MAX_BODY_BYTES",
+    "DEFAULT_MAX_RECORDS",
+    "DEFAULT_POLL_SECONDS",
+    "DEFAULT_PORT",
+    "ENVIRON_KEYS",
+    "Settings",
+]
+
+DEFAULT_HOST = "127.0.0.1"
+DEFAULT_PORT = 8000
+DEFAULT_MAX_RECORDS = 1000
+DEFAULT_MAX_BODY_BYTES = 1024 * 1024
+DEFAULT_POLL_SECONDS = 1.0
+DEFAULT_SAMPLE_SIZE = 256
+
+# Environment variable -> Settings field. The store root shares the variable
+# the store commands already read, so `RBFGATE_STORE=... rbfgate serve` works.
+ENVIRON_KEYS = {
+    "RBFGATE_STORE": "store_root",
+    "RBFGATE_SERVE_TOKENS": "tokens_file",
+    "RBFGATE_SERVE_MAX_RECORDS": "max_records",
+    "RBFGATE_SERVE_MAX_BODY_BYTES": "max_body_bytes",
+    "RBFGATE_SERVE_POLL_SECONDS": "poll_seconds",
+    "RBFGATE_SERVE_SAMPLE_SIZE": "sample_size",
+    "RBFGATE_SERVE_LOG_INPUTS": "log_inputs",
+}
+
+
+@dataclass(frozen=True)
+class Settings:
+    """What one service process needs to know.
+
+    store_root:      the store directory (``model_store.store.Store``)
+    tokens_file:     the tokens file, or None to run without tokens (see service.auth)
+    max_records:     most records one scoring request may hold
+    max_body_bytes:  largest request body read, in bytes
+    poll_seconds:    seconds between two reads of the store's active pointers
+    sample_size:     recently scored records kept per model for the swap preview
+    log_inputs:      write feature values into the request log (off by default)
+    """
+
+    store_root: Path
+    tokens_file: Path | None = None
+    host: str = DEFAULT_HOST
+    port: int = DEFAULT_PORT
+    workers: int = 1
+    max_records: int = DEFAULT_MAX_RECORDS
+    max_body_bytes: int = DEFAULT_MAX_BODY_BYTES
+    poll_seconds: float = DEFAULT_POLL_SECONDS
+    sample_size: int = DEFAULT_SAMPLE_SIZE
+    log_inputs: bool = False
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "store_root", Path(self.store_root))
+        if self.tokens_file is not None:
+            object.__setattr__(self, "tokens_file", Path(self.tokens_file))
+        _at_least("--workers", self.workers, 1)
+        _at_least("--max-records", self.max_records, 1)
+        _at_least("--max-body-bytes", self.max_body_bytes, 64)
+        _at_least("--sample-size", self.sample_size, 0)
+        if not 0 <= self.port <= 65535:
+            raise InputError(f"--port must be between 0 and 65535; got {self.port}")
+        if not (isinstance(self.poll_seconds, (int, float)) and math.isfinite(self.poll_seconds)):
+            raise InputError(f"--poll-interval must be a number of seconds; got {self.poll_seconds!r}")
+        if not 0.05 <= self.poll_seconds <= 3600:
+            raise InputError(f"--poll-interval must be between 0.05 and 3600 seconds; got {self.poll_seconds}")
+
+    def to_environ(self) -> dict[str, str]:
+        """The environment variables from which ``from_environ`` rebuilds these settings."""
+        return {
+            "RBFGATE_STORE": str(self.store_root),
+            "RBFGATE_SERVE_MAX_RECORDS": str(self.max_records),
+            "RBFGATE_SERVE_MAX_BODY_BYTES": str(self.max_body_bytes),
+            "RBFGATE_SERVE_POLL_SECONDS": repr(float(self.poll_seconds)),
+            "RBFGATE_SERVE_SAMPLE_SIZE": str(self.sample_size),
+            "RBFGATE_SERVE_LOG_INPUTS": "1" if self.log_inputs else "0",
+            "RBFGATE_SERVE_TOKENS": "" if self.tokens_file is None else str(self.tokens_file),
+        }
+
+    @classmethod
+    def from_environ(cls, environ: Mapping[str, str]) -> "Settings":
+        """Settings from ``environ`` (``os.environ`` in a worker, a dict in tests)."""
+        store = environ.get("RBFGATE_STORE", "")
+        if not store:
+            raise InputError("RBFGATE_STORE is not set; start the service with `rbfgate serve --store DIR`")
+        tokens = environ.get("RBFGATE_SERVE_TOKENS", "")
+        return cls(
+            store_root=Path(store),
+            tokens_file=Path(tokens) if tokens else None,
+            max_records=_integer(environ, "RBFGATE_SERVE_MAX_RECORDS", DEFAULT_MAX_RECORDS),
+            max_body_bytes=_integer(environ, "RBFGATE_SERVE_MAX_BODY_BYTES", DEFAULT_MAX_BODY_BYTES),
+            poll_seconds=_number(environ, "RBFGATE_SERVE_POLL_SECONDS", DEFAULT_POLL_SECONDS),
+            sample_size=_integer(environ, "RBFGATE_SERVE_SAMPLE_SIZE", DEFAULT_SAMPLE_SIZE),
+            log_inputs=environ.get("RBFGATE_SERVE_LOG_INPUTS", "0") == "1",
+        )
+
+
+def _at_least(option: str, value: int, low: int) -> None:
+    if isinstance(value, bool) or not isinstance(value, int) or value < low:
+        raise InputError(f"{option} must be a whole number >= {low}; got {value!r}")
+
+
+def _integer(environ: Mapping[str, str], key: str, default: int) -> int:
+    text = environ.get(key, "")
+    if not text:
+        return default
+    try:
+        return int(text)
+    except ValueError:
+        raise InputError(f"{key}={text!r} is not a whole number") from None
+
+
+def _number(environ: Mapping[str, str], key: str, default: float) -> float:
+    text = environ.get(key, "")
+    if not text:
+        return default
+    try:
+        return float(text)
+    except ValueError:
+        raise InputError(f"{key}={text!r} is not a number of seconds") from None

@@ -1,0 +1,127 @@
+"""``rbfgate train``: a real fit on the demo data, and every bad CSV named by row and column (exit 2)."""
+
+from __future__ import annotations
+
+import csv
+
+import numpy as np
+import pytest
+from sklearn.model_selection import train_test_split
+
+from model_store import load_bundle
+from model_store.cli import main
+from model_store.demo import FEATURES, TARGET, generate
+
+
+def _write(path, header, rows):
+    with open(path, "w", newline="") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(header)
+        writer.writerows(rows)
+    return path
+
+
+@pytest.fixture
+def demo_csv(tmp_path):
+    values, labels = generate(300, seed=3)
+    return _write(tmp_path / "pallets.csv", [*FEATURES, TARGET], [[*row, label] for row, label in zip(values.tolist(), labels)])
+
+
+def _train(data, out, *extra):
+    return main(["train", str(data), "--target", TARGET, "--name", "pallets", "--version", "2", "--out", str(out), *extra])
+
+
+def test_train_with_given_width_and_c_records_holdout_metrics(tmp_path, demo_csv):
+    assert _train(demo_csv, tmp_path / "b", "--sigma", "1.5", "--C", "10", "--calibration", "isotonic") == 0
+    manifest = load_bundle(tmp_path / "b").manifest
+    assert manifest.kernel.gamma == pytest.approx(1 / (2 * 1.5**2), rel=1e-15)  # gamma = 1/(2 sigma^2)
+    metrics = manifest.training["holdout_metrics"]
+    assert metrics["rows"] == 75  # 25 % of 300, the default --test-size
+    assert {"accuracy", "balanced_accuracy", "macro_f1", "log_loss", "brier_score", "confusion_matrix"} <= set(metrics)
+    assert np.sum(metrics["confusion_matrix"]["counts"]) == 75
+    assert manifest.calibration.method == "isotonic"
+
+
+def test_train_holdout_accuracy_matches_an_independent_recomputation(tmp_path, demo_csv):
+    """The holdout is the stratified split scikit-learn makes with the same seed; score it ourselves."""
+    assert _train(demo_csv, tmp_path / "b", "--gamma", "0.2", "--C", "5", "--calibration", "none", "--seed", "4") == 0
+    bundle = load_bundle(tmp_path / "b")
+    values, labels = generate(300, seed=3)
+    _, X_test, _, y_test = train_test_split(values, np.asarray(labels), test_size=0.25, stratify=labels, random_state=4)
+    expected = float(np.mean(bundle.score(X_test).labels == y_test))
+    assert bundle.manifest.training["holdout_metrics"]["accuracy"] == pytest.approx(expected, abs=1e-12)
+
+
+def test_train_searches_a_grid_when_width_and_c_are_not_given(tmp_path, demo_csv):
+    assert _train(demo_csv, tmp_path / "b", "--calibration", "none") == 0
+    search = load_bundle(tmp_path / "b").manifest.training["search"]
+    assert len(search["results"]) == len(search["grid"]["C"]) * len(search["grid"]["gamma"])
+    best = max(result["mean"] for result in search["results"])
+    chosen = [r for r in search["results"] if r["C"] == search["C"] and r["gamma"] == search["gamma"]]
+    assert chosen[0]["mean"] == best
+
+
+def test_train_refuses_a_missing_target_column(tmp_path, demo_csv, capsys):
+    code = main(["train", str(demo_csv), "--target", "verdict", "--name", "p", "--version", "1", "--out", str(tmp_path / "b")])
+    assert code == 2
+    assert "target column 'verdict' not found" in capsys.readouterr().err
+    assert not (tmp_path / "b").exists()
+
+
+def test_train_names_row_and_column_of_a_non_numeric_value(tmp_path, capsys):
+    values, labels = generate(100, seed=1)
+    rows = [[*row, label] for row, label in zip(values.tolist(), labels)]
+    rows[41][2] = "humid"
+    path = _write(tmp_path / "bad.csv", [*FEATURES, TARGET], rows)
+    assert _train(path, tmp_path / "b") == 2
+    err = capsys.readouterr().err
+    assert "row 42" in err and "'humidity_pct'" in err and "'humid'" in err
+
+
+def test_train_names_row_and_column_of_a_missing_value(tmp_path, capsys):
+    values, labels = generate(100, seed=1)
+    rows = [[*row, label] for row, label in zip(values.tolist(), labels)]
+    rows[9][0] = ""
+    path = _write(tmp_path / "bad.csv", [*FEATURES, TARGET], rows)
+    assert _train(path, tmp_path / "b") == 2
+    err = capsys.readouterr().err
+    assert "row 10" in err and "'core_temp_c'" in err and "(empty)" in err
+
+
+def test_train_refuses_a_single_class(tmp_path, capsys):
+    values, _ = generate(50, seed=1)
+    path = _write(tmp_path / "one.csv", [*FEATURES, TARGET], [[*row, "release"] for row in values.tolist()])
+    assert _train(path, tmp_path / "b") == 2
+    assert "only one class" in capsys.readouterr().err
+
+
+def test_train_refuses_too_few_rows_of_a_class(tmp_path, capsys):
+    values, _ = generate(40, seed=1)
+    labels = ["release"] * 37 + ["hold"] * 3
+    path = _write(tmp_path / "few.csv", [*FEATURES, TARGET], [[*row, label] for row, label in zip(values.tolist(), labels)])
+    assert _train(path, tmp_path / "b") == 2
+    err = capsys.readouterr().err
+    assert "class 'hold' has 3 rows" in err and "row 38" in err and f"'{TARGET}'" in err
+
+
+def test_train_refuses_sigma_and_gamma_together(tmp_path, demo_csv, capsys):
+    with pytest.raises(SystemExit) as exit_info:
+        _train(demo_csv, tmp_path / "b", "--sigma", "1", "--gamma", "1")
+    assert exit_info.value.code == 2  # argparse's usage error
+
+
+def test_train_refuses_a_non_positive_sigma(tmp_path, demo_csv, capsys):
+    assert _train(demo_csv, tmp_path / "b", "--sigma", "0") == 2
+    assert "--sigma 0.0 must be positive" in capsys.readouterr().err
+
+
+def test_train_refuses_an_empty_file(tmp_path, capsys):
+    path = tmp_path / "empty.csv"
+    path.write_text("")
+    assert _train(path, tmp_path / "b") == 2
+    assert "empty" in capsys.readouterr().err
+
+
+def test_train_refuses_a_missing_file(tmp_path, capsys):
+    assert _train(tmp_path / "nope.csv", tmp_path / "b") == 2
+    assert "no such file" in capsys.readouterr().err
