@@ -47,7 +47,7 @@ class Calibrator:
         return proba
 
     def _per_column(self, decision: np.ndarray) -> np.ndarray:
-        columns = decision.reshape(len(decision), -1)
+        columns = decision[:, np.newaxis] if decision.ndim == 1 else decision  # reshape(n, -1) fails for n = 0
         n_rows = columns.shape[0]
         proba = np.zeros((n_rows, self.n_classes))
         binary = self.n_classes == 2

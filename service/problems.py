@@ -87,7 +87,7 @@ _ERROR_STATUS: tuple[tuple[type[RbfgateError], int, str, str], ...] = (
     (NotFoundError, 404, "not-found", "No such model or version"),
     (LockTimeoutError, 503, "store-busy", "The store is busy"),
     (StoreError, 503, "store-unavailable", "The store cannot be used"),
-    (CheckFailedError, 409, "check-failed", "The bundle or history failed a check"),
+    (CheckFailedError, 409, "check-failed", "A check refused the request"),
     (InputError, 422, "invalid-request", "The request cannot be carried out as given"),
 )
 

@@ -25,7 +25,7 @@ from datetime import datetime, timezone
 from types import MappingProxyType
 
 from model_store.bundle import Bundle
-from model_store.errors import NotFoundError, RbfgateError
+from model_store.errors import InvalidNameError, NotFoundError, RbfgateError
 from model_store.naming import check_name
 from service.metrics import ServiceMetrics
 
@@ -98,6 +98,9 @@ class ModelRegistry:
     def table(self) -> Mapping[str, LoadedModel]:
         return self._table
 
+    def failure(self, name: str) -> LoadFailure | None:
+        return self._failures.get(name)
+
     def readiness(self) -> tuple[bool, dict]:
         """(ready, report): ready when every model with an active pointer has a loaded version."""
         table, pointers, failures = self._table, self._pointers, self._failures
@@ -138,7 +141,7 @@ class ModelRegistry:
         with self._refresh_lock:
             try:
                 record = self._store.active(name)
-            except NotFoundError:
+            except (NotFoundError, InvalidNameError):
                 record = None
             except RbfgateError as exc:
                 self._note_poll_error(exc)

@@ -37,7 +37,7 @@ DEFAULT_SAMPLE_SIZE = 256
 # the store commands already read, so `RBFGATE_STORE=... rbfgate serve` works.
 ENVIRON_KEYS = {
     "RBFGATE_STORE": "store_root",
-    "RBFGATE_SERVE_TOKENS": "tokens_file",
+    "RBFGATE_TOKENS": "tokens_file",
     "RBFGATE_SERVE_MAX_RECORDS": "max_records",
     "RBFGATE_SERVE_MAX_BODY_BYTES": "max_body_bytes",
     "RBFGATE_SERVE_POLL_SECONDS": "poll_seconds",
@@ -94,7 +94,7 @@ class Settings:
             "RBFGATE_SERVE_POLL_SECONDS": repr(float(self.poll_seconds)),
             "RBFGATE_SERVE_SAMPLE_SIZE": str(self.sample_size),
             "RBFGATE_SERVE_LOG_INPUTS": "1" if self.log_inputs else "0",
-            "RBFGATE_SERVE_TOKENS": "" if self.tokens_file is None else str(self.tokens_file),
+            "RBFGATE_TOKENS": "" if self.tokens_file is None else str(self.tokens_file),
         }
 
     @classmethod
@@ -103,7 +103,7 @@ class Settings:
         store = environ.get("RBFGATE_STORE", "")
         if not store:
             raise InputError("RBFGATE_STORE is not set; start the service with `rbfgate serve --store DIR`")
-        tokens = environ.get("RBFGATE_SERVE_TOKENS", "")
+        tokens = environ.get("RBFGATE_TOKENS", "")
         return cls(
             store_root=Path(store),
             tokens_file=Path(tokens) if tokens else None,

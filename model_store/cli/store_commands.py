@@ -1,7 +1,270 @@
-"""Store commands (publish, versions, activate, rollback, history, preview, prune, keygen, sign)."""
+"""Store commands: publish, versions, activate, rollback, history, preview, prune, keygen, sign, trust.
+
+Every command that reads or changes a store takes ``--store DIR``; without
+it the store is ``$RBFGATE_STORE``, else ``$XDG_DATA_HOME/rbfgate/store``,
+else ``~/.local/share/rbfgate/store``. Commands that change a store take
+``--actor NAME`` (default: the operating-system user), which the history
+records. ``publish`` and ``trust add`` create the store when the directory
+is missing or empty; every other command needs an existing store.
+"""
 
 from __future__ import annotations
 
+import argparse
+import functools
+import json
+import os
+import pwd
+import sys
+from collections.abc import Mapping
+from datetime import datetime, timezone
+from pathlib import Path
 
-def register(subparsers) -> None:
-    """Add the store commands to the ``rbfgate`` parser."""
+from model_store.errors import CsvError, HistoryError, StoreError
+from model_store.store import Store, resolve_store_root
+from model_store.store.history import format_time
+from model_store.store.preview import preview
+from model_store.store.signer import generate_key_files, sign_bundle
+from model_store.store.signing import parse_public_key
+from model_store.tables import open_csv
+
+__all__ = ["default_actor", "read_preview_inputs", "register"]
+
+
+def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
+    """Add the store commands; ``environ`` (default ``os.environ``) supplies RBFGATE_STORE, HOME and USER."""
+    environ = os.environ if environ is None else environ
+
+    def add(name: str, handler, help_text: str, *, store: bool = True, actor: bool = False):
+        parser = subparsers.add_parser(name, help=help_text, description=help_text)
+        if store:
+            parser.add_argument("--store", metavar="DIR", help="store directory (default: $RBFGATE_STORE, "
+                                "else $XDG_DATA_HOME/rbfgate/store, else ~/.local/share/rbfgate/store)")
+        if actor:
+            parser.add_argument("--actor", metavar="NAME", help="who is acting, for the history (default: the OS user)")
+        parser.set_defaults(handler=functools.partial(_guarded, handler, environ=environ))
+        return parser
+
+    parser = add("publish", _publish, "verify a bundle and store it as an immutable version", actor=True)
+    parser.add_argument("bundle", metavar="BUNDLE", help="bundle directory or its single-file .tar")
+    parser = add("versions", _versions, "list every stored version, its digest and times, and which is active")
+    parser.add_argument("name", metavar="NAME")
+    parser = add("activate", _activate, "re-verify a stored version and make it the active one", actor=True)
+    parser.add_argument("name", metavar="NAME")
+    parser.add_argument("version", metavar="VERSION")
+    parser.add_argument("--reason", metavar="TEXT", required=True, help="why (kept in the history)")
+    parser = add("rollback", _rollback, "return to the version that was active before the current one", actor=True)
+    parser.add_argument("name", metavar="NAME")
+    parser.add_argument("--reason", metavar="TEXT", required=True, help="why (kept in the history)")
+    parser = add("history", _history, "print the history of a model; --verify checks its hash chain")
+    parser.add_argument("name", metavar="NAME")
+    parser.add_argument("--verify", action="store_true", help="check the hash chain and the active pointer's head")
+    parser.add_argument("--json", action="store_true", help="print JSON instead of text")
+    parser = add("preview", _preview, "compare a candidate version with the active one; changes nothing")
+    parser.add_argument("name", metavar="NAME")
+    parser.add_argument("version", metavar="VERSION")
+    parser.add_argument("--inputs", metavar="CSV", help="recent inputs to compare on, one record per row")
+    parser = add("prune", _prune, "remove old versions, never the active one or the rollback target", actor=True)
+    parser.add_argument("name", metavar="NAME")
+    parser.add_argument("--keep", metavar="N", type=_count, required=True, help="how many newest versions to keep")
+    parser = add("keygen", _keygen, "create an Ed25519 key pair PREFIX.key (secret) and PREFIX.pub", store=False)
+    parser.add_argument("--out", metavar="PREFIX", required=True, help="path prefix of the two key files")
+    parser = add("sign", _sign, "verify a bundle and sign its digest (signature.json beside the manifest)", store=False)
+    parser.add_argument("bundle", metavar="BUNDLE", help="bundle directory or its single-file .tar")
+    parser.add_argument("--key", metavar="PRIVATE_KEY", required=True, help="the .key file from 'rbfgate keygen'")
+    _register_trust(subparsers.add_parser(
+        "trust", help="manage the public keys a store accepts signatures from",
+        description="Manage the public keys a store accepts signatures from. With at least one trusted key, "
+                    "publish and activate refuse unsigned and badly signed bundles.",
+    ), environ)
+
+
+def _register_trust(parser, environ) -> None:
+    actions = parser.add_subparsers(dest="trust_command", metavar="ACTION", required=True)
+    for name, handler, help_text in (
+        ("add", _trust_add, "trust a public key (a .pub file from 'rbfgate keygen', or 64 hex characters)"),
+        ("list", _trust_list, "list the trusted keys"),
+        ("remove", _trust_remove, "stop trusting a key (by its key id)"),
+    ):
+        sub = actions.add_parser(name, help=help_text, description=help_text)
+        sub.add_argument("--store", metavar="DIR", help="store directory (default as for the other store commands)")
+        if name != "list":
+            sub.add_argument("--actor", metavar="NAME", help="who is acting (default: the OS user)")
+        sub.set_defaults(handler=functools.partial(_guarded, handler, environ=environ))
+        if name == "add":
+            sub.add_argument("public_key", metavar="PUBLIC_KEY")
+            sub.add_argument("--label", metavar="TEXT", help="whose key this is, shown by 'trust list'")
+        elif name == "remove":
+            sub.add_argument("key_id", metavar="KEY_ID")
+
+
+def default_actor(environ: Mapping[str, str]) -> str:
+    """``$USER``, else ``$LOGNAME``, else the password-database name of the process's user."""
+    for variable in ("USER", "LOGNAME"):
+        if environ.get(variable, "").strip():
+            return environ[variable].strip()
+    try:
+        return pwd.getpwuid(os.getuid()).pw_name
+    except KeyError:
+        return f"uid-{os.getuid()}"
+
+
+def read_preview_inputs(path: Path) -> tuple[list[dict[str, object]], list[int]]:
+    """CSV rows as JSON-like records (numbers parsed, empty cells left out) and their data-row numbers."""
+    header, rows, handle = open_csv(path)
+    records, numbers = [], []
+    try:
+        for number, fields in enumerate(rows, start=1):
+            if not any(field.strip() for field in fields):
+                continue  # a blank line carries no record
+            if len(fields) != len(header):
+                raise CsvError(str(path), f"has {len(fields)} fields, the header has {len(header)}", row=number)
+            records.append({name: _cell(value) for name, value in zip(header, fields) if value.strip()})
+            numbers.append(number)
+    finally:
+        handle.close()
+    return records, numbers
+
+
+def _cell(text: str) -> object:
+    try:
+        return float(text)
+    except ValueError:
+        return text.strip()  # the refusal policy reports it as not a number
+
+
+def _count(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"{value} is negative; give 0 or more")
+    return value
+
+
+def _guarded(handler, args, *, environ) -> int:
+    try:
+        return handler(args, environ)
+    except OSError as exc:  # anything the store modules did not already explain
+        raise StoreError(f"{exc.filename or 'file system'}: {exc.strerror or exc}") from exc
+
+
+def _store(args, environ, *, create: bool = False) -> Store:
+    return Store(resolve_store_root(args.store, environ), create=create)
+
+
+def _actor(args, environ) -> str:
+    return args.actor if args.actor is not None else default_actor(environ)
+
+
+def _publish(args, environ) -> int:
+    store = _store(args, environ, create=True)
+    outcome = store.publish(Path(args.bundle), actor=_actor(args, environ))
+    if outcome.already_present:
+        print(f"{outcome.name} {outcome.version} is already published with digest {outcome.digest}; nothing changed")
+    else:
+        print(f"published {outcome.name} {outcome.version} (digest {outcome.digest}) to {store.root}")
+    return 0
+
+
+def _versions(args, environ) -> int:
+    rows = [("VERSION", "DIGEST", "CREATED", "PUBLISHED", "ACTIVE")]
+    for info in _store(args, environ).versions(args.name):
+        rows.append((info.version, info.digest, info.created, info.published_at, "active" if info.active else ""))
+    widths = [max(len(row[column]) for row in rows) for column in range(5)]
+    for row in rows:
+        print("  ".join(value.ljust(width) for value, width in zip(row, widths)).rstrip())
+    return 0
+
+
+def _activate(args, environ) -> int:
+    entry = _store(args, environ).activate(args.name, args.version, reason=args.reason, actor=_actor(args, environ))
+    print(f"activated {args.name} {entry['version']} (digest {entry['digest']}); history entry seq {entry['seq']}")
+    return 0
+
+
+def _rollback(args, environ) -> int:
+    entry = _store(args, environ).rollback(args.name, reason=args.reason, actor=_actor(args, environ))
+    print(f"rolled {args.name} back to {entry['version']} (digest {entry['digest']}); history entry seq {entry['seq']}")
+    return 0
+
+
+def _history(args, environ) -> int:
+    store = _store(args, environ)
+    entries = store.history(args.name)
+    problem, count = None, None
+    if args.verify:
+        try:
+            count = store.verify_history(args.name)
+        except HistoryError as exc:
+            problem = str(exc)
+    if args.json:
+        document = {"model": args.name, "entries": entries}
+        if args.verify:
+            document["verification"] = {"ok": problem is None, "entries": count, "problem": problem}
+        print(json.dumps(document, indent=2, ensure_ascii=False))
+    else:
+        for entry in entries:
+            digest = f"{entry['digest'][:16]}..." if entry["digest"] else "-"
+            print(f"seq {entry['seq']}  {entry['time']}  {entry['action']}  {entry['version'] or '-'}  "
+                  f"digest {digest}  by {entry['actor']}  reason: {entry['reason'] or '-'}")
+        if args.verify and problem is None:
+            print(f"verified: {count} entries, the hash chain is intact and its last entry matches the active pointer")
+    if problem is not None:
+        print(f"rbfgate history: verification failed: {problem}", file=sys.stderr)
+        return 1
+    return 0
+
+
+def _preview(args, environ) -> int:
+    store = _store(args, environ)
+    records, numbers = read_preview_inputs(Path(args.inputs)) if args.inputs else ([], [])
+    print(preview(store, args.name, args.version, records, record_rows=numbers).render_text())
+    return 0
+
+
+def _prune(args, environ) -> int:
+    removed = _store(args, environ).prune(args.name, keep=args.keep, actor=_actor(args, environ))
+    print(f"removed from {args.name}: {', '.join(removed)}" if removed else f"nothing to remove from {args.name}")
+    return 0
+
+
+def _keygen(args, environ) -> int:
+    keys = generate_key_files(Path(args.out))
+    print(f"wrote {keys.private_path} (secret: keep it private) and {keys.public_path}; key id {keys.key_id}")
+    print(f"trust it in a store with: rbfgate trust add {keys.public_path} --store DIR")
+    return 0
+
+
+def _sign(args, environ) -> int:
+    document = sign_bundle(Path(args.bundle), Path(args.key), format_time(datetime.now(timezone.utc)))
+    print(f"signed {args.bundle}: digest {document['digest']}, key id {document['key_id']}")
+    return 0
+
+
+def _trust_add(args, environ) -> int:
+    public_key = parse_public_key(args.public_key)
+    key = _store(args, environ, create=True).add_trusted_key(
+        public_key, label=args.label or "", actor=_actor(args, environ)
+    )
+    print(f"trusted key {key.key_id} ({key.label or 'no label'}); this store now requires signed bundles")
+    return 0
+
+
+def _trust_list(args, environ) -> int:
+    keys = _store(args, environ).trusted_keys()
+    if not keys:
+        print("no trusted keys: this store does not require signatures")
+    for key in keys:
+        print(f"{key.key_id}  {key.public_key}  added {key.added_at} by {key.added_by}  {key.label}".rstrip())
+    return 0
+
+
+def _trust_remove(args, environ) -> int:
+    store = _store(args, environ)
+    key = store.remove_trusted_key(args.key_id, actor=_actor(args, environ))
+    remaining = store.trusted_keys()
+    print(f"removed trusted key {key.key_id}" + ("" if remaining else "; no trusted keys remain, so signatures are no "
+                                                  "longer required"))
+    return 0

@@ -18,7 +18,7 @@ from model_store.errors import HistoryError
 from model_store.store.history import GENESIS, HistoryLine
 from model_store.store.pointer import Pointer
 
-__all__ = ["check_chain", "check_head", "head_position"]
+__all__ = ["check_active", "check_chain", "check_head", "head_position"]
 
 _RESTORE = "restore history.jsonl from a backup and investigate who changed it"
 
@@ -121,3 +121,15 @@ def check_head(lines: list[HistoryLine], pointer: Pointer | None, model: str) ->
         f"entry recorded in the active pointer (seq {pointer.history_seq}); they were appended by hand or left by "
         "an interrupted command (the next change to this model completes it)"
     )
+
+
+def check_active(pointer: Pointer | None, stack: list[tuple[str, str]], model: str) -> None:
+    """Raise ``HistoryError`` unless the pointer names the version the trail's activations lead to."""
+    expected = stack[-1] if stack else (None, None)
+    found = (pointer.version, pointer.digest) if pointer is not None else (None, None)
+    if found != expected:
+        raise HistoryError(
+            f"history of {model}: the active pointer names version {found[0]} (digest {str(found[1])[:16]}...), "
+            f"but the trail's activations and rollbacks lead to {expected[0]} (digest {str(expected[1])[:16]}...); "
+            "active.json was edited by hand, restore it from a backup so that it matches the trail"
+        )

@@ -19,11 +19,19 @@ from pathlib import Path
 
 from model_store.archive import is_archive, read_archive
 from model_store.bundle import Bundle, load_bundle
-from model_store.errors import IntegrityError, RbfgateError, StoreError
+from model_store.errors import IntegrityError, NotFoundError, RbfgateError, StoreError
 from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE
 from model_store.store.durable import fsync_directory, fsync_tree, temporary_name
 
-__all__ = ["PublishOutcome", "VersionRecord", "bundle_members", "clear_staging", "read_record", "stage_version"]
+__all__ = [
+    "PublishOutcome",
+    "VersionRecord",
+    "bundle_members",
+    "clear_staging",
+    "discard_version",
+    "read_record",
+    "stage_version",
+]
 
 # Progress hook: called with "staging <file>", "staged", "stored", "recorded" as publishing advances.
 StepHook = Callable[[str], None]
@@ -51,11 +59,12 @@ class VersionRecord:
 
 
 def read_record(path: Path) -> VersionRecord:
+    """The version record; ``NotFoundError`` when the version is gone (pruned meanwhile)."""
     try:
         document = json.loads(Path(path).read_text(encoding="utf-8"))
         return VersionRecord(**document)
     except FileNotFoundError:
-        raise
+        raise NotFoundError(f"{path}: no version record; the version was removed or was not stored by rbfgate") from None
     except OSError as exc:
         raise StoreError(f"{path}: cannot read the version record: {exc.strerror}") from exc
     except (ValueError, TypeError) as exc:
@@ -119,6 +128,15 @@ def clear_staging(staging_root: Path) -> list[str]:
     if leftovers:
         fsync_directory(staging_root)
     return leftovers
+
+
+def discard_version(version_dir: Path, staging_root: Path) -> None:
+    """Take a version out of the store with one rename (readers see it or not), then delete it."""
+    staging_root.mkdir(exist_ok=True)
+    doomed = staging_root / temporary_name(f"pruned-{version_dir.name}")
+    os.rename(version_dir, doomed)
+    fsync_directory(version_dir.parent)
+    shutil.rmtree(doomed)
 
 
 def _read(path: Path) -> bytes:

@@ -1,0 +1,234 @@
+"""Changing a store: publish, activate, rollback, prune, and the trusted-key setting.
+
+Each change holds the store lock from its first read to its last write, so
+concurrent operators are serialised and nothing is lost or interleaved.
+Before changing a model it completes any change a crash interrupted
+(``recovery.recover``) and refuses to continue on a tampered trail.
+Refusals of checks (a conflicting digest, a bad signature, a stored bundle
+that no longer verifies) are written to the history before they are raised.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, NoReturn
+
+from model_store.bundle import load_bundle
+from model_store.errors import CheckFailedError, InputError, NotFoundError, SignatureError, VersionConflictError
+from model_store.manifest import SIGNATURE_FILE
+from model_store.naming import check_name
+from model_store.store.durable import atomic_write, fsync_directory
+from model_store.store.history import check_text
+from model_store.store.layout import read_settings, write_settings
+from model_store.store.publishing import (
+    PublishOutcome,
+    VersionRecord,
+    bundle_members,
+    clear_staging,
+    discard_version,
+    read_record,
+    stage_version,
+)
+from model_store.store.recovery import commit, recover
+from model_store.store.signing import TrustedKey, check_bundle_signature, key_id
+from model_store.store.state import ModelState
+
+if TYPE_CHECKING:
+    from model_store.store.store import Store
+
+__all__ = ["activate", "add_trusted_key", "prune", "publish", "remove_trusted_key", "rollback"]
+
+
+def publish(store: "Store", source: Path, *, actor: str) -> PublishOutcome:
+    """Verify ``source`` (directory or single file), then store it as an immutable version."""
+    actor = check_text(actor, what="actor", required=True)
+    bundle = load_bundle(source)
+    bundle.self_test()
+    members = bundle_members(source, bundle)
+    name, version, digest = bundle.name, bundle.version, bundle.digest
+    layout = store.layout
+    with store.locked():
+        layout.versions(name).mkdir(parents=True, exist_ok=True)
+        state = _begin(store, name, actor)
+        if layout.version(name, version).is_dir():
+            stored = read_record(layout.record(name, version))
+            if stored.digest != digest:
+                _refuse(store, state, "refused-publish", version, digest, None, VersionConflictError(
+                    f"{name} {version} is already published with digest {stored.digest[:16]}..., this bundle has "
+                    f"{digest[:16]}...; published versions never change, export it under a new version"
+                ), actor=actor)
+            _add_missing_signature(store, state, version, digest, members.get(SIGNATURE_FILE), actor)
+            return PublishOutcome(name, version, digest, already_present=True)
+        earlier = state.published_digest(version)
+        if earlier is not None and earlier != digest:
+            _refuse(store, state, "refused-publish", version, digest, None, VersionConflictError(
+                f"{name} {version} was published before with digest {earlier[:16]}... (and pruned since); "
+                "a version name is never reused for other content, export it under a new version"
+            ), actor=actor)
+        try:
+            check_bundle_signature(members.get(SIGNATURE_FILE), digest, store.trusted_keys(), str(source))
+        except SignatureError as exc:
+            _refuse(store, state, "refused-publish", version, digest, None, exc, actor=actor)
+        last = state.last_entry
+        record = VersionRecord(
+            name, version, digest, bundle.manifest.created, store.now(), actor, (last["seq"] if last else 0) + 1
+        )
+        staged = stage_version(layout.staging, record, members, store.publish_step)
+        os.rename(staged, layout.version(name, version))
+        fsync_directory(layout.versions(name))
+        store.publish_step("stored")
+        commit(layout, state, [_draft(store, actor, "publish", version, digest, None)])
+        store.publish_step("recorded")
+    return PublishOutcome(name, version, digest, already_present=False)
+
+
+def activate(store: "Store", name: str, version: str, *, reason: str, actor: str) -> dict[str, Any]:
+    """Re-verify the stored bundle and make it the active version; refuse (and record it) if it fails."""
+    check_name(name, what="model name")
+    check_name(version, what="model version")
+    reason = check_text(reason, what="--reason", required=True)
+    actor = check_text(actor, what="actor", required=True)
+    with store.locked():
+        state = _begin(store, name, actor)
+        digest = _stored_digest(store, state, version)
+        try:
+            bundle = store.load_verified(name, version)
+        except CheckFailedError as exc:
+            _refuse(store, state, "refused-activate", version, digest, reason, exc, actor=actor)
+        [entry] = commit(
+            store.layout, state, [_draft(store, actor, "activate", version, bundle.digest, reason)],
+            activate=(version, bundle.digest),
+        )
+    return entry
+
+
+def rollback(store: "Store", name: str, *, reason: str, actor: str) -> dict[str, Any]:
+    """Return to the version that was active before the current one, after re-verifying it."""
+    check_name(name, what="model name")
+    reason = check_text(reason, what="--reason", required=True)
+    actor = check_text(actor, what="actor", required=True)
+    with store.locked():
+        state = _begin(store, name, actor)
+        stack = state.stack()
+        if len(stack) < 2:
+            current = f"{stack[-1][0]} is the only version ever made active" if stack else "no version is active"
+            raise CheckFailedError(
+                f"cannot roll back {name}: {current}, so there is no earlier version to return to; "
+                f"use 'rbfgate activate {name} VERSION' instead"
+            )
+        version, digest = stack[-2]
+        if not store.layout.version(name, version).is_dir():
+            _refuse(store, state, "refused-rollback", version, digest, reason, CheckFailedError(
+                f"rollback of {name} would return to {version}, which was pruned; activate a stored version instead"
+            ), actor=actor)
+        try:
+            bundle = store.load_verified(name, version)
+        except CheckFailedError as exc:
+            _refuse(store, state, "refused-rollback", version, digest, reason, exc, actor=actor)
+        [entry] = commit(
+            store.layout, state, [_draft(store, actor, "rollback", version, bundle.digest, reason)],
+            activate=(version, bundle.digest),
+        )
+    return entry
+
+
+def prune(store: "Store", name: str, *, keep: int, actor: str) -> list[str]:
+    """Remove all but the ``keep`` newest versions, never the active one or the rollback target."""
+    check_name(name, what="model name")
+    if isinstance(keep, bool) or not isinstance(keep, int) or keep < 0:
+        raise InputError(f"--keep {keep!r}: expected a whole number of versions, 0 or more")
+    actor = check_text(actor, what="actor", required=True)
+    with store.locked():
+        state = _begin(store, name, actor)
+        ordered = [info.version for info in store.versions(name)]
+        target = state.rollback_target()
+        protected = {state.active_version(), target[0] if target else None}
+        newest = set(ordered[len(ordered) - keep:]) if keep else set()
+        doomed = [version for version in ordered if version not in newest and version not in protected]
+        if not doomed:
+            return []
+        kept = [version for version in ordered if version not in doomed]
+        reason = f"retention --keep {keep}: kept {', '.join(kept) or 'nothing'} (the newest, the active version " \
+                 "and the rollback target are always kept)"
+        drafts = [
+            _draft(store, actor, "prune", version, read_record(store.layout.record(name, version)).digest, reason)
+            for version in doomed
+        ]
+        commit(store.layout, state, drafts)  # the history says "pruned" before the files go (see recovery)
+        for version in doomed:
+            discard_version(store.layout.version(name, version), store.layout.staging)
+    return doomed
+
+
+def add_trusted_key(store: "Store", public_key: bytes, *, label: str, actor: str) -> TrustedKey:
+    """Trust ``public_key`` (32 raw Ed25519 bytes); from then on every bundle must be signed."""
+    if len(public_key) != 32:
+        raise InputError(f"an Ed25519 public key is 32 bytes, got {len(public_key)}")
+    label = check_text(label, what="--label", required=False) or ""
+    actor = check_text(actor, what="actor", required=True)
+    with store.locked():
+        settings = read_settings(store.layout)
+        new_id = key_id(public_key)
+        existing = [TrustedKey(**key) for key in settings.get("trusted_keys", [])]
+        for key in existing:
+            if key.key_id == new_id:
+                return key
+        key = TrustedKey(new_id, public_key.hex(), label, store.now(), actor)
+        settings["trusted_keys"] = [*(item.to_dict() for item in existing), key.to_dict()]
+        write_settings(store.layout, settings)
+    return key
+
+
+def remove_trusted_key(store: "Store", key_id_: str, *, actor: str) -> TrustedKey:
+    check_text(actor, what="actor", required=True)
+    with store.locked():
+        settings = read_settings(store.layout)
+        existing = [TrustedKey(**key) for key in settings.get("trusted_keys", [])]
+        removed = next((key for key in existing if key.key_id == key_id_), None)
+        if removed is None:
+            listed = ", ".join(key.key_id for key in existing) or "none"
+            raise NotFoundError(f"key {key_id_!r} is not trusted by this store (trusted: {listed})")
+        settings["trusted_keys"] = [key.to_dict() for key in existing if key.key_id != key_id_]
+        write_settings(store.layout, settings)
+    return removed
+
+
+def _begin(store: "Store", name: str, actor: str) -> ModelState:
+    if not store.layout.model(name).is_dir():
+        raise NotFoundError(f"no model {name!r} in the store {store.root}; models: {store.models() or 'none'}")
+    clear_staging(store.layout.staging)
+    return recover(store.layout, name, now=store.now(), actor=actor)
+
+
+def _stored_digest(store: "Store", state: ModelState, version: str) -> str:
+    if not store.layout.version(state.name, version).is_dir():
+        pruned = (state.last_event(version) or {}).get("action") == "prune"
+        raise NotFoundError(
+            f"{state.name} {version} is not in the store{' (it was pruned)' if pruned else ''}; "
+            f"'rbfgate versions {state.name}' lists the stored versions"
+        )
+    return read_record(store.layout.record(state.name, version)).digest
+
+
+def _add_missing_signature(store, state, version, digest, signature: bytes | None, actor: str) -> None:
+    """Re-publishing a signed copy of a stored unsigned version adds its signature (the digest is unchanged)."""
+    target = store.layout.bundle(state.name, version) / SIGNATURE_FILE
+    trusted = store.trusted_keys()
+    if signature is None or target.exists() or not trusted:
+        return
+    key = check_bundle_signature(signature, digest, trusted, f"{state.name} {version}")
+    atomic_write(target, signature)
+    reason = f"signature by trusted key {key.key_id} added to the stored version (its content is unchanged)"
+    commit(store.layout, state, [_draft(store, actor, "add-signature", version, digest, reason)])
+
+
+def _refuse(store, state, action, version, digest, reason, exc: CheckFailedError, *, actor: str) -> NoReturn:
+    """Record a refused attempt in the history, then raise its error."""
+    text = f"refused: {exc}" + (f" (reason given: {reason})" if reason else "")
+    commit(store.layout, state, [_draft(store, actor, action, version, digest, text)])
+    raise exc
+
+
+def _draft(store, actor, action, version, digest, reason) -> dict[str, Any]:
+    return {"time": store.now(), "actor": actor, "action": action, "version": version, "digest": digest, "reason": reason}

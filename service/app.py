@@ -1,0 +1,107 @@
+"""The FastAPI application: built from settings, a store and (optionally) a log sink.
+
+    app = create_app(Settings(store_root=Path("store")))        # in tests: TestClient(app)
+    uvicorn service.app:create_app_from_environ --factory       # what `rbfgate serve` runs
+
+On start-up (the app's lifespan) the registry loads every active model and a
+poller starts following the store; on shutdown the poller stops. Nothing on
+this path imports scikit-learn, joblib or pickle-based loading.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Mapping
+from contextlib import asynccontextmanager
+from typing import Any
+
+from fastapi import Depends, FastAPI
+from fastapi.routing import APIRoute
+from starlette.concurrency import run_in_threadpool
+
+from model_store.store import Store
+from service.access_log import AccessLogMiddleware, JsonLines
+from service.auth import ACCESS_RULES, Authenticator, access_check
+from service.context import Services
+from service.health_routes import add_health_routes
+from service.metrics import ServiceMetrics
+from service.model_routes import add_model_routes
+from service.operation_routes import add_operation_routes
+from service.poller import Poller
+from service.problems import install_problem_handlers
+from service.recent import RecentRecords
+from service.registry import ModelRegistry
+from service.score_routes import add_score_routes
+from service.settings import Settings
+
+__all__ = ["create_app", "create_app_from_environ"]
+
+MULTIPROCESS_ENVIRON_KEY = "PROMETHEUS_MULTIPROC_DIR"
+
+
+def create_app(
+    settings: Settings,
+    *,
+    store: Any | None = None,
+    environ: Mapping[str, str] | None = None,
+    write_log: Callable[[dict[str, Any]], None] | None = None,
+) -> FastAPI:
+    """Build the app. ``store`` defaults to ``Store(settings.store_root)``; ``environ`` (default
+    ``os.environ``) is read only for prometheus-client's multiprocess directory."""
+    environ = os.environ if environ is None else environ
+    write_log = write_log or JsonLines()
+    metrics = ServiceMetrics(environ.get(MULTIPROCESS_ENVIRON_KEY) or None)
+    store = store if store is not None else Store(settings.store_root)
+    authenticator = Authenticator(settings.tokens_file)
+    registry = ModelRegistry(store, metrics, on_event=write_log)
+    services = Services(
+        settings=settings,
+        store=store,
+        registry=registry,
+        authenticator=authenticator,
+        metrics=metrics,
+        recent=RecentRecords(settings.sample_size),
+        write_log=write_log,
+    )
+    poller = Poller(settings.poll_seconds, [registry.refresh_all, authenticator.refresh])
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI):
+        await run_in_threadpool(registry.refresh_all)
+        poller.start()
+        try:
+            yield
+        finally:
+            poller.stop()
+            metrics.worker_exited()
+
+    app = FastAPI(
+        title="rbfgate",
+        lifespan=lifespan,
+        docs_url=None,
+        redoc_url=None,
+        openapi_url=None,
+        redirect_slashes=False,
+        dependencies=[Depends(access_check(authenticator))],
+    )
+    for add_routes in (add_score_routes, add_model_routes, add_operation_routes, add_health_routes):
+        add_routes(app, services)
+    _check_every_route_has_a_rule(app)
+    install_problem_handlers(app)
+    app.add_middleware(AccessLogMiddleware, write=write_log, metrics=metrics)
+    app.state.services = services
+    return app
+
+
+def create_app_from_environ() -> FastAPI:
+    """The uvicorn factory: settings from the environment ``rbfgate serve`` prepared."""
+    return create_app(Settings.from_environ(os.environ))
+
+
+def _check_every_route_has_a_rule(app: FastAPI) -> None:
+    for route in app.routes:
+        if not isinstance(route, APIRoute):
+            raise RuntimeError(f"route {route!r} is not an API route; give it an access rule in service.auth")
+        for method in route.methods:
+            if (method, route.path) not in ACCESS_RULES:
+                raise RuntimeError(f"{method} {route.path} has no entry in service.auth.ACCESS_RULES")

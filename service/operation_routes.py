@@ -1,0 +1,119 @@
+"""Routes that change or preview the active version (role ``operate``).
+
+    POST /models/{model}/activate   {"version": "...", "reason": "..."}
+    POST /models/{model}/rollback   {"reason": "..."}
+    POST /models/{model}/preview    {"version": "..."}
+
+Activation and rollback go through the store (the same checks and the same
+history as the CLI, with the token's name as the actor) and answer only after
+this worker has switched, so the caller's next request here is served by the
+new version. Other workers and replicas follow within one poll interval.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import FastAPI, Request
+from pydantic import BaseModel, ConfigDict, Field, StrictStr, ValidationError
+from starlette.concurrency import run_in_threadpool
+
+from model_store.naming import check_name
+from model_store.store.preview import preview
+from service.body import parse_json, read_body
+from service.context import Services
+from service.problems import ServiceProblem, validation_problem
+
+__all__ = ["add_operation_routes"]
+
+_MAX_REASON = 1000
+
+
+class _ActivateBody(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    version: StrictStr = Field(min_length=1, max_length=64)
+    reason: StrictStr = Field(min_length=1, max_length=_MAX_REASON)
+
+
+class _RollbackBody(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    reason: StrictStr = Field(min_length=1, max_length=_MAX_REASON)
+
+
+class _PreviewBody(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    version: StrictStr = Field(min_length=1, max_length=64)
+
+
+def add_operation_routes(app: FastAPI, services: Services) -> None:
+    """Add these routes to ``app`` (directly, so every route is a plain APIRoute with its path template)."""
+    limit = services.settings.max_body_bytes
+
+    @app.post("/models/{model}/activate")
+    async def activate_version(model: str, request: Request) -> dict[str, Any]:
+        """Make a published version active (checked by the store), then switch this worker."""
+        body = _validated(_ActivateBody, await read_body(request, limit))
+        actor = _actor(request)
+
+        def run() -> dict[str, Any]:
+            check_name(model, what="model name")
+            entry = services.store.activate(model, body.version, reason=body.reason, actor=actor)
+            return _switched(services, model, entry)
+
+        return await run_in_threadpool(run)
+
+    @app.post("/models/{model}/rollback")
+    async def roll_back(model: str, request: Request) -> dict[str, Any]:
+        """Re-activate the version that was active before the current one."""
+        body = _validated(_RollbackBody, await read_body(request, limit))
+        actor = _actor(request)
+
+        def run() -> dict[str, Any]:
+            check_name(model, what="model name")
+            entry = services.store.rollback(model, reason=body.reason, actor=actor)
+            return _switched(services, model, entry)
+
+        return await run_in_threadpool(run)
+
+    @app.post("/models/{model}/preview")
+    async def preview_swap(model: str, request: Request) -> dict[str, Any]:
+        """Compare a candidate with the active version on golden vectors and recently scored records."""
+        body = _validated(_PreviewBody, await read_body(request, limit))
+
+        def run() -> dict[str, Any]:
+            check_name(model, what="model name")
+            records = services.recent.records(model)
+            report = preview(services.store, model, body.version, records or None)
+            return {"model": model, "candidate": body.version, "recent_records": len(records), "report": report.to_dict()}
+
+        return await run_in_threadpool(run)
+
+
+
+def _validated(model: type[BaseModel], body: bytes):
+    document = parse_json(body)
+    if not isinstance(document, dict):
+        raise ServiceProblem(422, "invalid-request", "The request body does not have the expected shape",
+                             "/: the body must be a JSON object", extra={"problems": [{"pointer": "/", "detail": "must be an object"}]})
+    try:
+        return model.model_validate(document)
+    except ValidationError as exc:
+        raise validation_problem(exc.errors()) from None
+
+
+def _actor(request: Request) -> str:
+    caller = getattr(request.state, "caller", None)
+    if caller is None or caller.name is None:  # the access rules make this unreachable; stay closed anyway
+        raise ServiceProblem(403, "tokens-required", "This route needs a token", "no authenticated caller")
+    return caller.name
+
+
+def _switched(services: Services, model: str, entry: dict[str, Any]) -> dict[str, Any]:
+    loaded = services.registry.refresh(model, force=True)
+    failure = services.registry.failure(model)
+    return {
+        "model": model,
+        "entry": entry,
+        "served_by_this_worker": None if loaded is None else {"version": loaded.version, "bundle_sha256": loaded.digest},
+        "load_failure": None if failure is None else failure.to_dict(),
+    }

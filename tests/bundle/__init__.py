@@ -1,0 +1,1 @@
+"""Library-level tests of the bundle: export, format, integrity, scoring (issue 2)."""
