@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import io
 import json
+import os
 import tarfile
 from pathlib import Path, PurePosixPath
 
@@ -20,7 +21,7 @@ from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE
 
 __all__ = ["MAX_MEMBER_BYTES", "is_archive", "pack_directory", "read_archive"]
 
-MAX_MEMBER_BYTES = 2 * 1024**3
+MAX_MEMBER_BYTES = 2 * 1024**3  # per entry and in total: the archive is read into memory
 _MAX_MEMBERS = 64
 
 
@@ -32,21 +33,38 @@ def is_archive(path: Path) -> bool:
 def pack_directory(bundle_dir: Path, out: Path | io.BufferedIOBase) -> None:
     """Write the bundle in ``bundle_dir`` as a deterministic tar to a path or binary stream."""
     bundle_dir = Path(bundle_dir)
-    manifest = json.loads((bundle_dir / MANIFEST_FILE).read_text(encoding="utf-8"))
-    names = [MANIFEST_FILE, *sorted(manifest.get("files", {}))]
+    try:
+        manifest = json.loads((bundle_dir / MANIFEST_FILE).read_text(encoding="utf-8"))
+        names = [MANIFEST_FILE, *sorted(manifest.get("files", {}))]
+    except (OSError, ValueError, AttributeError) as exc:
+        raise BundleFormatError(f"{bundle_dir}: no readable {MANIFEST_FILE} to pack: {exc}") from exc
+    for name in names:
+        # Listed names come from a manifest; never let one reach outside the bundle directory.
+        if PurePosixPath(name).name != name or name in ("", ".", "..") or "\\" in name:
+            raise UnsafeArchiveError(f"{bundle_dir}/{MANIFEST_FILE}: lists {name!r}, which is not a plain file name")
     if (bundle_dir / SIGNATURE_FILE).is_file():
         names.append(SIGNATURE_FILE)
-    if isinstance(out, (str, Path)):
-        with open(out, "wb") as handle:
-            _write_tar(bundle_dir, names, handle)
-    else:
+    if not isinstance(out, (str, Path)):
         _write_tar(bundle_dir, names, out)
+        return
+    # Written beside the target and renamed, so a failure never leaves a half-written archive.
+    partial = Path(out).with_name(f".{Path(out).name}.partial")
+    try:
+        with open(partial, "wb") as handle:
+            _write_tar(bundle_dir, names, handle)
+        os.replace(partial, out)
+    except BaseException:
+        partial.unlink(missing_ok=True)
+        raise
 
 
 def _write_tar(bundle_dir: Path, names: list[str], handle) -> None:
     with tarfile.open(fileobj=handle, mode="w", format=tarfile.PAX_FORMAT) as tar:
         for name in names:
-            data = (bundle_dir / name).read_bytes()
+            try:
+                data = (bundle_dir / name).read_bytes()
+            except OSError as exc:
+                raise BundleFormatError(f"{bundle_dir}/{name}: cannot read it to pack: {exc.strerror}") from exc
             info = tarfile.TarInfo(name)
             info.size = len(data)
             info.mode = 0o644
@@ -82,6 +100,7 @@ def read_archive(path: Path) -> dict[str, bytes]:
 def _checked_members(path: Path, tar: tarfile.TarFile) -> list[tarfile.TarInfo]:
     members = []
     seen: set[str] = set()
+    total = 0
     for member in tar:
         if len(members) >= _MAX_MEMBERS:
             raise UnsafeArchiveError(f"{path}: more than {_MAX_MEMBERS} entries; not a bundle archive")
@@ -103,6 +122,9 @@ def _checked_members(path: Path, tar: tarfile.TarFile) -> list[tarfile.TarInfo]:
             raise UnsafeArchiveError(f"{path}: entry {name!r} appears twice; refusing an ambiguous archive")
         if member.size > MAX_MEMBER_BYTES:
             raise UnsafeArchiveError(f"{path}: entry {name!r} is {member.size} bytes, over the {MAX_MEMBER_BYTES} limit")
+        total += member.size
+        if total > MAX_MEMBER_BYTES:
+            raise UnsafeArchiveError(f"{path}: entries add up to more than {MAX_MEMBER_BYTES} bytes; refusing to read")
         seen.add(name)
         members.append(member)
     return members

@@ -177,7 +177,7 @@ def write_bundle(out_dir: Path, document: dict[str, Any], arrays: dict[str, np.n
 def _listed(manifest_bytes: bytes, path: Path) -> list[str]:
     files = _parse_json(manifest_bytes, path).get("files")
     if not isinstance(files, dict) or sorted(files) != sorted(_ARRAYS):
-        raise BundleFormatError(f"{path}: manifest must list exactly the files {list(_ARRAYS)}")
+        raise BundleFormatError(f"{path}/{MANIFEST_FILE}: field files: must list exactly the files {list(_ARRAYS)}")
     return list(files)
 
 

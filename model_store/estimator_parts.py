@@ -203,7 +203,9 @@ def _scaler_parts(scaler, n_features: int) -> tuple[str, np.ndarray, np.ndarray]
     try:
         check_is_fitted(scaler)
     except NotFittedError as exc:
-        raise ModelFileError(f"the pipeline's {type(scaler).__name__} is not fitted; fit the pipeline before exporting") from exc
+        raise ModelFileError(
+            f"the pipeline's {type(scaler).__name__} is not fitted; fit the pipeline before exporting"
+        ) from exc
     if isinstance(scaler, StandardScaler):
         center = scaler.mean_ if scaler.with_mean else zeros
         scale = scaler.scale_ if scaler.with_std else ones

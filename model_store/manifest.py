@@ -37,6 +37,8 @@ MANIFEST_FILE = "manifest.json"
 SIGNATURE_FILE = "signature.json"
 
 Label = StrictInt | StrictStr
+# RFC 3339 date-time in UTC, as the exporter writes it (seconds, optional fraction, Z).
+_RFC3339_UTC = r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}(\.\d+)?Z$"
 
 
 class _Strict(BaseModel):
@@ -87,7 +89,9 @@ class KernelSpec(_Strict):
         # Both are shown to auditors; they must describe one kernel.
         implied = 1.0 / math.sqrt(2.0 * self.gamma)
         if abs(self.sigma - implied) > 1e-9 * implied:
-            raise ValueError(f"sigma {self.sigma} does not match gamma {self.gamma} (expected 1/sqrt(2 gamma) = {implied})")
+            raise ValueError(
+                f"sigma {self.sigma} does not match gamma {self.gamma} (expected 1/sqrt(2 gamma) = {implied})"
+            )
         return self
 
 
@@ -139,7 +143,9 @@ class Calibration(_Strict):
             for index, mapping in enumerate(self.isotonic):
                 x, y = mapping.x_thresholds, mapping.y_thresholds
                 if not x or len(x) != len(y) or any(b < a for a, b in zip(x, x[1:])):
-                    raise ValueError(f"isotonic map {index}: x_thresholds must be non-decreasing and as long as y_thresholds")
+                    raise ValueError(
+                        f"isotonic map {index}: x_thresholds must be non-decreasing and as long as y_thresholds"
+                    )
         return self
 
     @property
@@ -169,7 +175,7 @@ class Manifest(_Strict):
     format: Literal["rbfgate-bundle/1"]
     name: str
     version: str
-    created: str
+    created: str = Field(pattern=_RFC3339_UTC)
     creator: str
     features: list[FeatureSpec]
     scaler: ScalerSpec

@@ -8,7 +8,7 @@ cannot find, so a new route cannot slip in unguarded.
 Roles (``service.tokens.ROLES``):
 
     score    scores; reads model metadata and record schemas (to build requests)
-    operate  activates, rolls back and previews; reads everything
+    operate  activates, rolls back and previews; reads metadata, schemas, bundles and history
     audit    reads metadata, schemas, bundles and history
 
 Without a tokens file, scoring and metadata are open; history, bundle

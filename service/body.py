@@ -30,6 +30,8 @@ MAX_DEPTH = 32
 
 # 10**309 already overflows a float64 (max about 1.8e308, IEEE 754 binary64).
 _MAX_INTEGER_DIGITS = 309
+_INFINITIES = frozenset({math.inf, -math.inf})
+_OVERFLOW = "a number in the body does not fit a 64-bit float (largest about 1.8e308); send a finite number"
 
 
 class _Malformed(ValueError):
@@ -41,7 +43,9 @@ async def read_body(request: Request, limit: int) -> bytes:
     declared = request.headers.get("content-length")
     if declared is not None:
         if not declared.isdigit():
-            raise ServiceProblem(400, "malformed-request", "Bad Content-Length", f"Content-Length {declared[:40]!r} is not a byte count")
+            raise ServiceProblem(
+                400, "malformed-request", "Bad Content-Length", f"Content-Length {declared[:40]!r} is not a byte count"
+            )
         if int(declared) > limit:
             raise _too_large(f"the request declares {int(declared)} bytes", limit)
     chunks: list[bytes] = []
@@ -66,7 +70,6 @@ def parse_json(data: bytes) -> Any:
         document = json.loads(
             text,
             parse_constant=_refuse_constant,
-            parse_float=_checked_float,
             parse_int=_checked_int,
             object_pairs_hook=_unique_members,
         )
@@ -76,19 +79,12 @@ def parse_json(data: bytes) -> Any:
         raise _malformed(str(exc)) from None
     except RecursionError:
         raise _malformed(f"the JSON is nested too deeply; at most {MAX_DEPTH} levels are accepted") from None
-    _check_depth(document)
+    _check_structure(document)
     return document
 
 
 def _refuse_constant(name: str) -> float:
     raise _Malformed(f"{name} is not JSON (RFC 8259 has no NaN or Infinity); send a finite number")
-
-
-def _checked_float(text: str) -> float:
-    number = float(text)
-    if not math.isfinite(number):
-        raise _Malformed(f"the number {text[:40]} does not fit a 64-bit float")
-    return number
 
 
 def _checked_int(text: str) -> int:
@@ -114,15 +110,26 @@ def _unique_members(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     return document
 
 
-def _check_depth(document: Any) -> None:
-    """Walk containers only, iteratively, so a deep document cannot exhaust the stack."""
+def _check_structure(document: Any) -> None:
+    """Refuse nesting deeper than MAX_DEPTH and floats that overflowed to infinity.
+
+    Python's parser turns ``1e400`` into ``inf`` without complaint; one iterative walk
+    over the containers (no recursion, so a deep document cannot exhaust the stack)
+    finds both problems faster than a per-number parser hook would.
+    """
+    if isinstance(document, float) and document in _INFINITIES:
+        raise _malformed(_OVERFLOW)
     stack = [(document, 1)] if isinstance(document, (dict, list)) else []
     while stack:
         value, depth = stack.pop()
         if depth > MAX_DEPTH:
             raise _malformed(f"the JSON is nested too deeply; at most {MAX_DEPTH} levels are accepted")
-        children = value.values() if isinstance(value, dict) else value
-        stack.extend((child, depth + 1) for child in children if isinstance(child, (dict, list)))
+        for child in value.values() if isinstance(value, dict) else value:
+            if isinstance(child, float):
+                if child in _INFINITIES:
+                    raise _malformed(_OVERFLOW)
+            elif isinstance(child, (dict, list)):
+                stack.append((child, depth + 1))
 
 
 def _malformed(detail: str) -> ServiceProblem:

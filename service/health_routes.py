@@ -2,7 +2,7 @@
 
 /healthz answers 200 while the process runs. /readyz answers 200 when every
 model with an active version has a verified version loaded in this worker
-(``"status": "degraded"`` when an older version keeps serving because the
+(``"state": "degraded"`` when an older version keeps serving because the
 active one failed its checks, or the store could not be read on the last
 poll), and 503 problem details while some active model has nothing loaded.
 Orchestrators treat 2xx as ready (common practice, e.g. Kubernetes probes).
@@ -48,4 +48,3 @@ def add_health_routes(app: FastAPI, services: Services) -> None:
         """Prometheus text exposition of this service (all workers in multiprocess mode)."""
         content, content_type = services.metrics.render()
         return Response(content, media_type=content_type)
-

@@ -120,7 +120,6 @@ def add_model_routes(app: FastAPI, services: Services) -> None:
         return {"model": model, "entries": entries, "verification": verification}
 
 
-
 def _model_summary(services: Services, name: str) -> dict[str, Any]:
     record = services.store.active(name)
     serving = services.registry.serving(name)

@@ -89,12 +89,10 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
         return await run_in_threadpool(run)
 
 
-
 def _validated(model: type[BaseModel], body: bytes):
     document = parse_json(body)
     if not isinstance(document, dict):
-        raise ServiceProblem(422, "invalid-request", "The request body does not have the expected shape",
-                             "/: the body must be a JSON object", extra={"problems": [{"pointer": "/", "detail": "must be an object"}]})
+        raise validation_problem([{"loc": (), "msg": "the body must be a JSON object"}])
     try:
         return model.model_validate(document)
     except ValidationError as exc:

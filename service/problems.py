@@ -140,7 +140,10 @@ async def _on_validation_error(request: Request, exc: RequestValidationError) ->
 def validation_problem(errors: list[Mapping[str, Any]]) -> ServiceProblem:
     """422 for pydantic-style errors: one entry per problem, with a JSON pointer to the field."""
     problems = [
-        {"pointer": "/" + "/".join(str(part) for part in error.get("loc", ()) if part != "body"), "detail": error.get("msg", "")}
+        {
+            "pointer": "/" + "/".join(str(part) for part in error.get("loc", ()) if part != "body"),
+            "detail": error.get("msg", ""),
+        }
         for error in errors
     ]
     first = problems[0] if problems else {"pointer": "/", "detail": "invalid request"}

@@ -117,7 +117,7 @@ class ModelRegistry:
         ready = self._started and all(entry["serving"] is not None for entry in models)
         degraded = bool(failures) or self._poll_error is not None
         status = "ready" if ready and not degraded else ("degraded" if ready else "not_ready")
-        return ready, {"status": status, "store_error": self._poll_error, "models": models}
+        return ready, {"state": status, "store_error": self._poll_error, "models": models}
 
     # ---- following the store
 
@@ -129,11 +129,11 @@ class ModelRegistry:
             except RbfgateError as exc:
                 self._note_poll_error(exc)
                 return
+            self._poll_error = None  # a refresh below sets it again if a pointer cannot be read
             for name in names:
                 self.refresh(name)
-            for gone in set(self._table) - set(names):
+            for gone in (set(self._table) | set(self._pointers)) - set(names):
                 self._drop(gone)
-            self._poll_error = None
             self._started = True
 
     def refresh(self, name: str, *, force: bool = False) -> LoadedModel | None:
@@ -200,6 +200,8 @@ class ModelRegistry:
             self._metrics.load_recovered(name, failure.version)
 
     def _drop(self, name: str) -> None:
+        if name not in self._table and name not in self._pointers and name not in self._failures:
+            return
         self._table = MappingProxyType({key: value for key, value in self._table.items() if key != name})
         self._pointers = MappingProxyType({key: value for key, value in self._pointers.items() if key != name})
         self._clear_failure(name)

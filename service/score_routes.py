@@ -50,7 +50,6 @@ def add_score_routes(app: FastAPI, services: Services) -> None:
         return await run_in_threadpool(_score, services, request, body, lambda: services.registry.pinned(model, version))
 
 
-
 def _score(services: Services, request: Request, body: bytes, resolve) -> Response:
     model = resolve()  # read the table once: this request finishes on this version
     note = request_note(request)

@@ -21,7 +21,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
 
 from model_store.refusal import CheckedBatch, check_records, from_json
 from model_store.scoring import Scores
@@ -146,4 +145,5 @@ def _kind(value: Any) -> str:
         return "null"
     if isinstance(value, bool):
         return "a boolean"
-    return {dict: "an object", list: "a list", str: "a string", int: "a number", float: "a number"}.get(type(value), "a value")
+    kinds = {dict: "an object", list: "a list", str: "a string", int: "a number", float: "a number"}
+    return kinds.get(type(value), "a value")

@@ -64,7 +64,9 @@ def read_tokens(path: Path) -> list[TokenEntry]:
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
-        raise InputError(f"tokens file {path}: does not exist; create it with `rbfgate token add NAME --role ROLE --tokens {path}`") from None
+        raise InputError(
+            f"tokens file {path}: does not exist; create it with `rbfgate token add NAME --role ROLE --tokens {path}`"
+        ) from None
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(f"tokens file {path}: cannot be read ({exc}); check its permissions") from exc
     try:

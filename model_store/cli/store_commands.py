@@ -20,7 +20,7 @@ from collections.abc import Mapping
 from datetime import datetime, timezone
 from pathlib import Path
 
-from model_store.errors import CsvError, HistoryError, StoreError
+from model_store.errors import CsvError, HistoryError, NotFoundError, StoreError
 from model_store.store import Store, resolve_store_root
 from model_store.store.history import format_time
 from model_store.store.preview import preview
@@ -159,6 +159,8 @@ def _actor(args, environ) -> str:
 
 
 def _publish(args, environ) -> int:
+    if not Path(args.bundle).exists():  # before the store is created: a typo must not leave an empty store
+        raise NotFoundError(f"{args.bundle}: no such bundle; pass a bundle directory or its .tar file")
     store = _store(args, environ, create=True)
     outcome = store.publish(Path(args.bundle), actor=_actor(args, environ))
     if outcome.already_present:

@@ -31,10 +31,14 @@ def check_chain(lines: list[HistoryLine], model: str, head: str | None) -> None:
     expected_seq, expected_prev = 1, GENESIS
     for index, item in enumerate(lines):
         if not item.hash_ok:
-            raise HistoryError(
-                f"history of {model}: entry seq {item.seq} (line {item.line}) was edited: its content no longer "
-                f"matches its hash; {_RESTORE}"
-            )
+            if item.seq == expected_seq:
+                found = f"entry seq {item.seq} (line {item.line}) was edited: its content no longer matches its hash"
+            else:
+                found = (
+                    f"line {item.line} holds an entry claiming seq {item.seq} where seq {expected_seq} belongs, and "
+                    "its content does not match its hash: it was inserted (or edited)"
+                )
+            raise HistoryError(f"history of {model}: {found}; {_RESTORE}")
         if item.seq == expected_seq and item.entry["prev_hash"] == expected_prev:
             expected_seq, expected_prev = item.seq + 1, item.entry["hash"]
             continue

@@ -149,8 +149,10 @@ def prune(store: "Store", name: str, *, keep: int, actor: str) -> list[str]:
         if not doomed:
             return []
         kept = [version for version in ordered if version not in doomed]
-        reason = f"retention --keep {keep}: kept {', '.join(kept) or 'nothing'} (the newest, the active version " \
-                 "and the rollback target are always kept)"
+        reason = (
+            f"retention --keep {keep}: kept {', '.join(kept) or 'nothing'} "
+            "(the newest, the active version and the rollback target are always kept)"
+        )
         drafts = [
             _draft(store, actor, "prune", version, read_record(store.layout.record(name, version)).digest, reason)
             for version in doomed

@@ -22,7 +22,7 @@ from __future__ import annotations
 import json
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import HistoryError, InputError, StoreError
@@ -33,6 +33,7 @@ __all__ = [
     "FIELDS",
     "GENESIS",
     "HistoryLine",
+    "Trail",
     "append_entries",
     "check_text",
     "entry_hash",
@@ -55,6 +56,14 @@ ACTIONS = (
     "recover",          # a change interrupted by a crash was completed by the next command
 )
 _MAX_TEXT = 1000
+
+
+class Trail(NamedTuple):
+    """The parsed lines, and the state of the file's end (see ``read_trail``)."""
+
+    lines: list["HistoryLine"]
+    unfinished: bool
+    unterminated: bool
 
 
 class HistoryLine:
@@ -129,25 +138,30 @@ def append_entries(path: Path, entries: list[dict[str, Any]]) -> None:
     append_bytes(path, data)
 
 
-def read_trail(path: Path, model: str, *, allow_partial_tail: bool = False) -> tuple[list[HistoryLine], bool]:
-    """Parse every line of the trail; return the lines and whether an unterminated last line was dropped.
+def read_trail(path: Path, model: str) -> Trail:
+    """Parse every line of the trail.
 
     A last line without its newline is what a writer killed mid-append
-    leaves; it is dropped only when ``allow_partial_tail`` (the recovering
-    writer), otherwise it is reported like any other damaged line.
+    leaves: if it still parses as an entry it is kept (``unterminated``),
+    otherwise it is set aside as ``unfinished`` for the caller to report
+    (an auditor) or skip (a reader) or remove (the next writer).
     """
     try:
         data = Path(path).read_bytes()
     except FileNotFoundError:
-        return [], False
+        return Trail([], False, False)
     except OSError as exc:
         raise StoreError(f"{path}: cannot read the history: {exc.strerror}") from exc
     pieces = data.split(b"\n")
-    partial = pieces.pop()  # empty when the file ends with a newline
-    dropped = bool(partial) and allow_partial_tail
-    if partial and not allow_partial_tail:
-        pieces.append(partial)
-    return [HistoryLine(number, _parse(piece, number, path, model)) for number, piece in enumerate(pieces, 1)], dropped
+    tail = pieces.pop()  # empty when the file ends with a newline
+    lines = [HistoryLine(number, _parse(piece, number, path, model)) for number, piece in enumerate(pieces, 1)]
+    if not tail:
+        return Trail(lines, False, False)
+    try:
+        lines.append(HistoryLine(len(lines) + 1, _parse(tail, len(lines) + 1, path, model)))
+    except HistoryError:
+        return Trail(lines, True, False)
+    return Trail(lines, False, True)
 
 
 def _parse(raw: bytes, number: int, path: Path, model: str) -> dict[str, Any]:

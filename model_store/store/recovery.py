@@ -59,15 +59,18 @@ def commit(
 def recover(layout: StoreLayout, name: str, *, now: str, actor: str) -> ModelState:
     """Load the model's state for a change, completing any interrupted change first (lock held)."""
     history_path = layout.history(name)
-    lines, dropped = read_trail(history_path, name, allow_partial_tail=True)
+    trail = read_trail(history_path, name)
+    lines, dropped = trail.lines, trail.unfinished
     pointer = read_pointer(layout.pointer(name))
     check_chain(lines, name, pointer.history_head if pointer else None)
     position = head_position(lines, pointer.history_head if pointer else GENESIS)
     if position is None:
         check_head(lines, pointer, name)  # raises: the trail is shorter than the pointer says
-    if dropped:
+    if dropped:  # cut off the unfinished line
         data = history_path.read_bytes()
         atomic_write(history_path, data[: data.rfind(b"\n") + 1])
+    elif trail.unterminated:  # a complete last entry that lost its line end: restore it before appending
+        atomic_write(history_path, history_path.read_bytes() + b"\n")
     state = ModelState(name, lines, pointer)
     if position == len(lines) - 1:
         check_active(pointer, state.stack(), name)  # no interrupted change explains a mismatch

@@ -161,8 +161,7 @@ class Store:
         not at all; an unfinished last line left by a crashed writer is skipped.
         """
         self._require_model(name)
-        lines, _ = read_trail(self._layout.history(name), name, allow_partial_tail=True)
-        return [item.entry for item in lines]
+        return [item.entry for item in read_trail(self._layout.history(name), name).lines]
 
     def verify_history(self, name: str) -> int:
         """Check the hash chain and the pointer's head; return the number of entries, else HistoryError.
@@ -172,11 +171,14 @@ class Store:
         """
         self._require_model(name)
         with shared_lock(self._layout.lock, self.lock_timeout):
-            try:
-                lines, _ = read_trail(self._layout.history(name), name)
-            except HistoryError as exc:
-                raise HistoryError(f"{exc} (an unfinished last line is completed by the next change)") from exc
+            trail = read_trail(self._layout.history(name), name)
             pointer = read_pointer(self._layout.pointer(name))
+        lines = trail.lines
+        if trail.unfinished:
+            raise HistoryError(
+                f"history of {name}, line {len(lines) + 1}: unfinished (cut off without a line end); a writer was "
+                "killed while appending it, and the next change to this model removes it"
+            )
         check_chain(lines, name, pointer.history_head if pointer else None)
         check_head(lines, pointer, name)
         check_active(pointer, activation_stack([item.entry for item in lines]), name)

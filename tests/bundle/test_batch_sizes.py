@@ -1,9 +1,9 @@
 """Scores do not depend on how rows are batched, chunked or ordered.
 
 What is bitwise and what is not (measured with numpy 2.x on OpenBLAS 0.3, 2 cores):
-OpenBLAS picks its dgemm code path by matrix size (small-matrix kernels, gemv for one
-row, different blocking), so the same row multiplied inside a 1-row, 7-row or
-10,000-row block can differ in the last bits. Measured on iris, wine and breast cancer:
+OpenBLAS picks its dgemm code path by matrix size (small-matrix kernels, different
+blocking; numpy would even use gemv for a single row), so the same row multiplied inside
+a 1-row, 7-row or 10,000-row block can differ in the last bits. Measured on iris, wine and breast cancer:
 decisions, one-vs-one decisions and probabilities differ by at most ~2.5e-14 relative
 between batch sizes. Therefore:
 

@@ -157,7 +157,7 @@ MODEL_EDITS = {
 
 
 @pytest.mark.parametrize("edit", MODEL_EDITS)
-def test_edited_model_number_in_the_manifest_fails_the_self_test_and_changes_the_digest(cancer_standard, tmp_path, edit):
+def test_edited_model_number_fails_the_self_test_and_changes_the_digest(cancer_standard, tmp_path, edit):
     bundle, _, _ = cancer_standard
     copy = _copy(bundle, tmp_path)
     _edit_manifest(copy, MODEL_EDITS[edit])

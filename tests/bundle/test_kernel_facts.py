@@ -87,7 +87,9 @@ def test_decision_approaches_the_intercept_as_the_row_moves_away(cancer_standard
     bundle, model, X = cancer_standard
     direction = X.std(axis=0)
     start = X.mean(axis=0)
-    gaps = [abs(bundle.score((start + t * direction)[np.newaxis, :]).decision[0] - model[-1].intercept_[0]) for t in (2, 3, 5, 7, 10)]
+    intercept = model[-1].intercept_[0]
+    rows = np.array([start + t * direction for t in (2, 3, 5, 7, 10)])
+    gaps = [abs(bundle.score(row[np.newaxis, :]).decision[0] - intercept) for row in rows]
     assert gaps[0] > gaps[1] > gaps[2] > gaps[3] > gaps[4] == 0.0
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import gzip
 import io
+import json
 import os
 import shutil
 import tarfile
@@ -220,3 +221,37 @@ def test_flipped_byte_inside_an_archived_array_fails_naming_it(wine_sigmoid, tmp
     _write_tar(tmp_path / "damaged.tar", entries)
     with pytest.raises(IntegrityError, match=name):
         load_bundle(tmp_path / "damaged.tar")
+
+
+# -- packing never reads outside the bundle or leaves half an archive ------------------------------------
+
+
+def test_packing_refuses_a_manifest_listing_a_path_outside_the_bundle(wine_sigmoid, tmp_path):
+    bundle, _, _ = wine_sigmoid
+    (tmp_path / "secret.npy").write_bytes(b"not for the archive")
+    copy = tmp_path / "copy"
+    shutil.copytree(bundle.source, copy)
+    manifest = copy / "manifest.json"
+    document = json.loads(manifest.read_text(encoding="utf-8"))
+    document["files"]["../secret.npy"] = document["files"]["dual_coef.npy"]
+    manifest.write_text(json.dumps(document), encoding="utf-8")
+    with pytest.raises(UnsafeArchiveError, match="'../secret.npy', which is not a plain file name"):
+        pack_directory(copy, tmp_path / "out.tar")
+    assert not (tmp_path / "out.tar").exists()
+
+
+def test_failed_packing_leaves_no_archive_behind(wine_sigmoid, tmp_path):
+    bundle, _, _ = wine_sigmoid
+    copy = tmp_path / "copy"
+    shutil.copytree(bundle.source, copy)
+    (copy / "support_vectors.npy").unlink()  # listed, so packing fails half-way
+    with pytest.raises(BundleFormatError, match="support_vectors.npy: cannot read it to pack"):
+        pack_directory(copy, tmp_path / "out.tar")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["copy"]
+
+
+def test_packing_a_directory_without_a_manifest_is_refused(tmp_path):
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(BundleFormatError, match="no readable manifest.json"):
+        pack_directory(tmp_path / "empty", tmp_path / "out.tar")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["empty"]

@@ -23,6 +23,9 @@ from sklearn.calibration import CalibratedClassifierCV
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import MaxAbsScaler, MinMaxScaler, RobustScaler, StandardScaler
 from sklearn.svm import SVC, NuSVC
+from sklearn.utils.multiclass import _ovr_decision_function
+
+from model_store.scoring import Scorer
 
 from .reference import DATASETS, assert_close, dataset, probe_rows, sklearn_decisions
 
@@ -198,6 +201,7 @@ def test_gamma_setting_is_resolved_like_sklearn(name, gamma, bundle_factory):
     check_matches_sklearn(bundle, model, X)
 
 
+@pytest.mark.filterwarnings("ignore:The `probability` parameter was deprecated:FutureWarning")
 def test_probability_svc_without_calibrator_keeps_libsvm_labels(bundle_factory):
     # SVC(probability=True).predict is still the libsvm vote (scikit-learn SVC docs: predict
     # may disagree with argmax of predict_proba); the bundle carries no probabilities then.
@@ -217,3 +221,58 @@ def test_self_test_passes_on_every_fixture_bundle(iris_raw, cancer_standard, win
     for bundle, _, _ in (iris_raw, cancer_standard, wine_sigmoid):
         bundle.self_test()
         assert len(bundle.manifest.golden.inputs) >= 8
+
+
+# -- tie rules, on decisions that are exactly 0 ---------------------------------------------------------
+# Far from every support vector the kernel underflows to 0, so the pairwise decisions equal
+# the intercepts exactly; hand-set intercepts then put rows exactly on the ties.
+
+
+def _far_scorer(intercepts):
+    n_classes = {1: 2, 3: 3}[len(intercepts)]
+    return Scorer(
+        classes=list(range(n_classes)),
+        center=np.zeros(1),
+        scale=np.ones(1),
+        gamma=1.0,
+        support_vectors=np.zeros((n_classes, 1)),
+        support_per_class=[1] * n_classes,
+        dual_coef=np.ones((n_classes - 1, n_classes)),
+        intercepts=np.asarray(intercepts, dtype=float),
+        allowed_low=np.zeros(1),
+        allowed_high=np.ones(1),
+        reference_quantiles=np.linspace(0.0, 1.0, 101),
+        calibrator=None,
+    )
+
+
+FAR = np.array([[1e6]])
+
+
+def test_binary_decision_exactly_zero_gives_the_second_class():
+    # libsvm (svm.cpp, svm_predict_values) votes class i only when its value is > 0; scikit-learn's
+    # binary decision is minus libsvm's, so a decision of exactly 0 predicts classes_[1] (from memory).
+    scores = _far_scorer([0.0]).score(FAR)
+    assert scores.decision[0] == 0.0
+    assert scores.label_index[0] == 1
+
+
+@pytest.mark.parametrize(
+    ("intercepts", "winner"),
+    [([0.0, 0.0, 0.0], 2), ([1.0, -1.0, 1.0], 0), ([-1.0, 1.0, -1.0], 0), ([0.0, 1.0, 0.0], 0)],
+    ids=["all-zero", "cycle", "reverse-cycle", "zero-ties"],
+)
+def test_multiclass_vote_follows_libsvm_on_ties(intercepts, winner):
+    # libsvm: pair (i, j) votes i when its value is > 0, else j; the most votes wins and
+    # equal votes go to the lowest class index (from memory of svm.cpp svm_predict_values).
+    # all-zero: every pair votes j, class 2 has two votes; cycle: 1-1-1, lowest index 0.
+    assert _far_scorer(intercepts).score(FAR).label_index[0] == winner
+
+
+def test_ovr_decision_equals_scikit_learns_transformation_on_exact_zeros():
+    # Reference: sklearn.utils.multiclass._ovr_decision_function(dec < 0, -dec, n_classes),
+    # which BaseSVC.decision_function applies to libsvm's one-vs-one values.
+    for intercepts in ([0.0, 0.0, 0.0], [1.0, -1.0, 1.0], [0.0, 2.5, -0.75], [-3.0, 0.0, 4.0]):
+        dec = np.asarray([intercepts])
+        expected = _ovr_decision_function(dec < 0, -dec, 3)
+        assert np.array_equal(_far_scorer(intercepts).score(FAR).decision, expected)

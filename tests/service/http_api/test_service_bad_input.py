@@ -19,9 +19,8 @@ from hypothesis import strategies as st
 
 from service.problems import install_problem_handlers
 
-from .conftest import TestClient, assert_problem
-
-_GOOD = {"sepal_length_cm": 5.1, "sepal_width_cm": 3.5, "petal_length_cm": 1.4, "petal_width_cm": 0.2}
+from .cases import BAD_VALUES, GOOD_RECORD, MALFORMED_BODIES, NOT_FOUND, WRONG_SHAPES, assert_problem
+from .conftest import TestClient
 
 
 @pytest.fixture
@@ -33,20 +32,7 @@ def _post(client, body: bytes | str, path: str = "/score/iris"):
     return client.post(path, content=body.encode() if isinstance(body, str) else body)
 
 
-@pytest.mark.parametrize(
-    "body, mentions",
-    [
-        ('{"records": [{"sepal_length_cm": 5.1', "not valid JSON"),
-        ('{"records": [{"sepal_length_cm": NaN}]}', "NaN"),
-        ('{"records": [{"sepal_length_cm": Infinity}]}', "Infinity"),
-        ('{"records": [{"sepal_length_cm": -Infinity}]}', "Infinity"),
-        ('{"records": [{"sepal_length_cm": 1e400}]}', "64-bit float"),  # > 1.8e308, IEEE 754 binary64 max
-        ('{"records": [{"sepal_length_cm": ' + "9" * 400 + "}]}", "64-bit float"),
-        ('{"records": [{"sepal_length_cm": 5.1, "sepal_length_cm": 6.0}]}', "appears twice"),
-        ("", "empty"),
-        ("   ", "empty"),
-    ],
-)
+@pytest.mark.parametrize("body, mentions", MALFORMED_BODIES)
 def test_malformed_json_is_400(client, body, mentions):
     problem = assert_problem(_post(client, body), 400)
     assert mentions in problem["detail"]
@@ -65,20 +51,7 @@ def test_absurd_nesting_is_400_whether_shallow_or_deep(client):
         assert "nested too deeply" in assert_problem(_post(client, body), 400)["detail"]
 
 
-@pytest.mark.parametrize(
-    "document, pointer",
-    [
-        ([], "/"),
-        ("records", "/"),
-        ({}, "/records"),
-        ({"records": {"sepal_length_cm": 5.1}}, "/records"),
-        ({"records": "all of them"}, "/records"),
-        ({"records": []}, "/records"),
-        ({"records": [1.5]}, "/records/0"),
-        ({"records": [_GOOD, None]}, "/records/1"),
-        ({"records": [_GOOD], "explain": True}, "/explain"),
-    ],
-)
+@pytest.mark.parametrize("document, pointer", WRONG_SHAPES)
 def test_wrong_shape_is_422_with_a_pointer(client, document, pointer):
     problem = assert_problem(client.post("/score/iris", json=document), 422)
     assert problem["problems"][0]["pointer"] == pointer  # RFC 6901 JSON pointer to the offending member
@@ -86,26 +59,15 @@ def test_wrong_shape_is_422_with_a_pointer(client, document, pointer):
 
 def test_body_over_the_size_limit_is_413(make_client, shared_store):
     client = make_client(shared_store.root, max_body_bytes=1024)
-    body = json.dumps({"records": [_GOOD] * 40})  # about 4 KiB
+    body = json.dumps({"records": [GOOD_RECORD] * 40})  # about 4 KiB
     problem = assert_problem(client.post("/score/iris", content=body.encode()), 413)
     assert problem["limit_bytes"] == 1024
 
 
-@pytest.mark.parametrize(
-    "value, reason",
-    [
-        (None, "null"),
-        (True, "not_a_number"),  # RFC 8259 section 3: true is a literal, not a number
-        ("5.1", "not_a_number"),
-        ({"cm": 5.1}, "not_a_number"),
-        ([5.1], "not_a_number"),
-        (100.0, "out_of_range"),
-        (-3.0, "out_of_range"),
-    ],
-)
+@pytest.mark.parametrize("value, reason", BAD_VALUES)
 def test_each_bad_value_refuses_its_record(client, value, reason):
-    bad = dict(_GOOD, sepal_length_cm=value)
-    body = client.post("/score/iris", json={"records": [_GOOD, bad]}).json()
+    bad = dict(GOOD_RECORD, sepal_length_cm=value)
+    body = client.post("/score/iris", json={"records": [GOOD_RECORD, bad]}).json()
     assert [result["status"] for result in body["results"]] == ["scored", "refused"]
     [problem] = body["results"][1]["problems"]
     assert (problem["feature"], problem["reason"]) == ("sepal_length_cm", reason)
@@ -113,28 +75,15 @@ def test_each_bad_value_refuses_its_record(client, value, reason):
 
 
 def test_missing_and_unknown_features_refuse_the_record(client):
-    record = {key: value for key, value in _GOOD.items() if key != "petal_width_cm"} | {"petal_colour": 2.0}
-    body = client.post("/score/iris", json={"records": [_GOOD, record]}).json()
+    record = {key: value for key, value in GOOD_RECORD.items() if key != "petal_width_cm"} | {"petal_colour": 2.0}
+    body = client.post("/score/iris", json={"records": [GOOD_RECORD, record]}).json()
     reasons = {(p["feature"], p["reason"]) for p in body["results"][1]["problems"]}
     assert reasons == {("petal_width_cm", "missing"), ("petal_colour", "unknown_feature")}
 
 
-@pytest.mark.parametrize(
-    "method, path",
-    [
-        ("POST", "/score/no-such-model"),
-        ("POST", "/score/iris/versions/9.9.9"),
-        ("POST", "/score/bad$name"),
-        ("POST", "/score/iris/versions/..hidden"),
-        ("GET", "/models/no-such-model"),
-        ("GET", "/models/iris/versions/9.9.9"),
-        ("GET", "/models/iris/versions/9.9.9/schema"),
-        ("GET", "/no/such/route"),
-        ("GET", "/models/"),
-    ],
-)
+@pytest.mark.parametrize("method, path", NOT_FOUND)
 def test_unknown_model_version_or_route_is_404(client, method, path):
-    assert_problem(client.request(method, path, json={"records": [_GOOD]}), 404)
+    assert_problem(client.request(method, path, json={"records": [GOOD_RECORD]}), 404)
 
 
 def test_wrong_method_is_405_with_allow_header(client):
@@ -170,13 +119,31 @@ def test_an_unexpected_exception_is_a_bare_500_problem():
     assert "secret internals" not in response.text and problem["type"] == "about:blank"
 
 
+def test_a_bug_in_the_app_is_logged_counted_and_answered_with_a_bare_500(shared_store):
+    from service.app import create_app
+    from service.settings import Settings
+
+    logs: list[dict] = []
+    app = create_app(Settings(store_root=shared_store.root, poll_seconds=3600.0), environ={}, write_log=logs.append)
+    with TestClient(app, raise_server_exceptions=False) as client:
+        def broken(name):
+            raise RuntimeError("registry internals")
+
+        app.state.services.registry.serving = broken  # simulate a bug, not an input
+        response = client.post("/score/iris", json={"records": [GOOD_RECORD]})
+        metrics = client.get("/metrics").text
+    assert assert_problem(response, 500)["type"] == "about:blank" and "internals" not in response.text
+    assert [event["status"] for event in logs if event["event"] == "request"][0] == 500
+    assert 'rbfgate_http_requests_total{method="POST",route="/score/{model}",status="500"} 1.0' in metrics
+
+
 _json_values = st.recursive(
     st.none() | st.booleans() | st.floats(allow_nan=False, allow_infinity=False) | st.integers() | st.text(max_size=8),
     lambda children: st.lists(children, max_size=4) | st.dictionaries(st.text(max_size=8), children, max_size=4),
     max_leaves=20,
 )
 _records = st.lists(
-    st.dictionaries(st.sampled_from([*_GOOD, "other"]), _json_values | st.floats(0, 8), max_size=5), max_size=5
+    st.dictionaries(st.sampled_from([*GOOD_RECORD, "other"]), _json_values | st.floats(0, 8), max_size=5), max_size=5
 )
 
 

@@ -129,23 +129,6 @@ def make_client() -> Iterator[Callable[..., TestClient]]:
         client.__exit__(None, None, None)
 
 
-def bearer(token: str) -> dict[str, str]:
-    """RFC 6750 section 2.1: the Authorization request header field with the Bearer scheme."""
-    return {"Authorization": f"Bearer {token}"}
-
-
-def assert_problem(response, status: int) -> dict:
-    """RFC 9457 section 3: problem details are application/problem+json with type, title, status, detail."""
-    assert response.status_code == status, response.text
-    assert response.headers["content-type"].split(";")[0] == "application/problem+json", response.headers
-    body = response.json()
-    assert isinstance(body["type"], str) and body["type"]
-    assert isinstance(body["title"], str) and body["title"]
-    assert body["status"] == status  # section 3.1.2: same as the HTTP status code
-    assert isinstance(body["detail"], str) and body["detail"]
-    return body
-
-
 @pytest.fixture(scope="session")
 def shared_client(shared_store) -> Iterator[TestClient]:
     """One started app over ``shared_store``, for tests that only read and score."""

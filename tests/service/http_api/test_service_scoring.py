@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from .conftest import assert_problem
+from .cases import assert_problem
 from .reference import assert_close, sklearn_reference
 
 # Every 7th iris row plus jittered copies: in range, mixed classes (iris: Fisher 1936).

@@ -1,0 +1,1 @@
+"""Tests of the HTTP scoring service (a package named so it cannot shadow the real ``service``)."""
