@@ -63,7 +63,9 @@ class LoadFailure:
     monotonic: float
 
     def to_dict(self) -> dict[str, str]:
-        return {"version": self.version, "digest": self.digest, "error": self.error, "detail": self.detail, "at": self.at}
+        return {
+            "version": self.version, "bundle_sha256": self.digest, "error": self.error, "detail": self.detail, "at": self.at,
+        }
 
 
 class ModelRegistry:
@@ -110,8 +112,8 @@ class ModelRegistry:
             failure = failures.get(name)
             models.append({
                 "model": name,
-                "active": {"version": pointers[name][0], "digest": pointers[name][1]},
-                "serving": None if loaded is None else {"version": loaded.version, "digest": loaded.digest},
+                "active": {"version": pointers[name][0], "bundle_sha256": pointers[name][1]},
+                "serving": None if loaded is None else {"version": loaded.version, "bundle_sha256": loaded.digest},
                 "failure": None if failure is None else failure.to_dict(),
             })
         ready = self._started and all(entry["serving"] is not None for entry in models)
@@ -180,7 +182,7 @@ class ModelRegistry:
         self._clear_failure(name)
         old = None if current is None else (current.version, current.digest)
         self._metrics.switched(name, old, (version, digest))
-        self._on_event({"event": "switch", "model": name, "version": version, "digest": digest,
+        self._on_event({"event": "switch", "model": name, "version": version, "bundle_sha256": digest,
                         "previous": None if current is None else current.version})
         return loaded
 
@@ -190,7 +192,7 @@ class ModelRegistry:
         failure = LoadFailure(name, version, digest, type(exc).__name__, str(exc), _now(), self._clock())
         self._failures = MappingProxyType({**self._failures, name: failure})
         self._metrics.load_failed(name, version)
-        self._on_event({"event": "load_failed", "model": name, "version": version, "digest": digest,
+        self._on_event({"event": "load_failed", "model": name, "version": version, "bundle_sha256": digest,
                         "error": failure.error, "detail": failure.detail})
 
     def _clear_failure(self, name: str) -> None:

@@ -253,7 +253,8 @@ def test_string_labels_stay_strings_even_when_they_look_like_numbers(bundle_fact
 @pytest.mark.parametrize("created", ["yesterday", "2026-12-01 21:40:00", "2026-12-01T21:40:00+01:00", "2026-12-01"])
 def test_created_must_be_an_rfc3339_utc_time(iris_raw, tmp_path, created):
     """RFC 3339 section 5.6 date-time, written in UTC with the Z suffix as the exporter does."""
-    copy = _edit(iris_raw, tmp_path, lambda document: document.update(created=created))
+    bundle, _, _ = iris_raw
+    copy = _edit(bundle, tmp_path, lambda document: document.update(created=created))
     with pytest.raises(BundleFormatError, match="created"):
         load_bundle(copy)
 
@@ -261,5 +262,6 @@ def test_created_must_be_an_rfc3339_utc_time(iris_raw, tmp_path, created):
 def test_exported_created_time_is_rfc3339_utc(iris_raw):
     from datetime import datetime, timezone
 
-    parsed = datetime.strptime(iris_raw.manifest.created, "%Y-%m-%dT%H:%M:%SZ")  # RFC 3339 section 5.6
+    bundle, _, _ = iris_raw
+    parsed = datetime.strptime(bundle.manifest.created, "%Y-%m-%dT%H:%M:%SZ")  # RFC 3339 section 5.6
     assert parsed.replace(tzinfo=timezone.utc) <= datetime.now(timezone.utc)
