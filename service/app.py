@@ -36,7 +36,7 @@ from service.settings import Settings
 
 __all__ = ["create_app", "create_app_from_environ"]
 
-MULTIPROCESS_ENVIRON_KEY = "PROMETHEUS_MULTIPROC_DIR"
+_MULTIPROCESS_ENVIRON_KEY = "PROMETHEUS_MULTIPROC_DIR"
 
 
 def create_app(
@@ -50,7 +50,7 @@ def create_app(
     ``os.environ``) is read only for prometheus-client's multiprocess directory."""
     environ = os.environ if environ is None else environ
     write_log = write_log or JsonLines()
-    metrics = ServiceMetrics(environ.get(MULTIPROCESS_ENVIRON_KEY) or None)
+    metrics = ServiceMetrics(environ.get(_MULTIPROCESS_ENVIRON_KEY) or None)
     store = store if store is not None else Store(settings.store_root)
     authenticator = Authenticator(settings.tokens_file)
     registry = ModelRegistry(store, metrics, on_event=write_log)

@@ -5,6 +5,14 @@ starts each worker as a fresh process, hands them to the workers as
 environment variables (``to_environ``) that ``from_environ`` reads back.
 Every value is checked here, at the boundary, so the rest of the service
 trusts it.
+
+    RBFGATE_STORE                  store root (the same variable the store commands read)
+    RBFGATE_TOKENS                 tokens file; empty or unset: no tokens
+    RBFGATE_SERVE_MAX_RECORDS      records per scoring request
+    RBFGATE_SERVE_MAX_BODY_BYTES   request body limit in bytes
+    RBFGATE_SERVE_POLL_SECONDS     seconds between polls of the store
+    RBFGATE_SERVE_SAMPLE_SIZE      recent records kept per model for the preview
+    RBFGATE_SERVE_LOG_INPUTS       "1" to log feature values
 """
 
 from __future__ import annotations
@@ -22,7 +30,7 @@ __all__ = [
     "DEFAULT_MAX_RECORDS",
     "DEFAULT_POLL_SECONDS",
     "DEFAULT_PORT",
-    "ENVIRON_KEYS",
+    "DEFAULT_SAMPLE_SIZE",
     "Settings",
 ]
 
@@ -32,18 +40,6 @@ DEFAULT_MAX_RECORDS = 1000
 DEFAULT_MAX_BODY_BYTES = 1024 * 1024
 DEFAULT_POLL_SECONDS = 1.0
 DEFAULT_SAMPLE_SIZE = 256
-
-# Environment variable -> Settings field. The store root shares the variable
-# the store commands already read, so `RBFGATE_STORE=... rbfgate serve` works.
-ENVIRON_KEYS = {
-    "RBFGATE_STORE": "store_root",
-    "RBFGATE_TOKENS": "tokens_file",
-    "RBFGATE_SERVE_MAX_RECORDS": "max_records",
-    "RBFGATE_SERVE_MAX_BODY_BYTES": "max_body_bytes",
-    "RBFGATE_SERVE_POLL_SECONDS": "poll_seconds",
-    "RBFGATE_SERVE_SAMPLE_SIZE": "sample_size",
-    "RBFGATE_SERVE_LOG_INPUTS": "log_inputs",
-}
 
 
 @dataclass(frozen=True)
