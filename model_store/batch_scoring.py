@@ -1,6 +1,7 @@
 """Score a CSV file with a bundle, streaming, one output row per input row.
 
-Rows are read and scored in chunks, so a file larger than memory works. Rows
+Rows are read and scored in chunks, so a file larger than memory works. Blank
+lines carry no record and are skipped; the ``row`` column counts data rows. Rows
 with a missing, empty, non-numeric, NaN, infinite or out-of-range feature are
 refused (never scored) and the rest are scored. The output is written to a
 temporary file beside the target and renamed into place at the end, so a
@@ -18,10 +19,10 @@ from pathlib import Path
 from tqdm import tqdm
 
 from model_store.bundle import Bundle
-from model_store.errors import CsvError
+from model_store.errors import CsvError, InputError
 from model_store.refusal import Problem, check_records, from_text
 from model_store.scoring import Scores
-from model_store.tables import open_csv
+from model_store.tables import CsvFile, CsvRow
 
 __all__ = ["CHUNK_ROWS", "ScoreSummary", "output_columns", "score_csv"]
 
@@ -48,74 +49,81 @@ def output_columns(bundle: Bundle) -> list[str]:
 
 def score_csv(bundle: Bundle, source: Path, out: Path, *, progress: bool | None = None) -> ScoreSummary:
     """Score every row of ``source`` into ``out``; refused rows get status ``refused`` and their problems."""
-    header, rows, handle = open_csv(source)
     out = Path(out)
-    missing = [name for name in bundle.feature_names if name not in header]
-    try:
+    with CsvFile(source) as rows:
+        missing = [name for name in bundle.feature_names if name not in rows.header]
         if missing:
             raise CsvError(
                 str(source), f"feature column {missing[0]!r} not found; the bundle needs {bundle.feature_names}"
             )
+        if out.is_dir():
+            raise InputError(f"--out {out} is a directory; give the path of the CSV file to write")
+        if not out.parent.is_dir():
+            raise InputError(f"--out {out}: folder {out.parent} does not exist; create it first")
         columns = output_columns(bundle)
-        descriptor, temporary = tempfile.mkstemp(prefix=f".{out.name}.", dir=out.parent if str(out.parent) else ".")
+        descriptor, temporary = tempfile.mkstemp(prefix=f".{out.name}.", dir=out.parent)
         try:
+            # mkstemp creates the file private; give the result the usual permissions.
+            os.fchmod(descriptor, 0o666 & ~_umask())
             with os.fdopen(descriptor, "w", newline="", encoding="utf-8") as sink:
                 writer = csv.writer(sink)
                 writer.writerow(columns)
-                summary = _stream(bundle, header, rows, writer, progress)
+                summary = _stream(bundle, rows, writer, len(columns), progress)
             os.replace(temporary, out)
         except BaseException:
             Path(temporary).unlink(missing_ok=True)
             raise
-    finally:
-        handle.close()
     return summary
 
 
-def _stream(bundle: Bundle, header: list[str], rows, writer, progress: bool | None) -> ScoreSummary:
+def _umask() -> int:
+    current = os.umask(0)
+    os.umask(current)
+    return current
+
+
+def _stream(bundle: Bundle, rows: CsvFile, writer, width: int, progress: bool | None) -> ScoreSummary:
     scored = refused = 0
-    number = 0
     bar = tqdm(unit="rows", desc="scoring", disable=None if progress is None else not progress)
-    chunk: list[list[str]] = []
-    for fields in rows:
-        chunk.append(fields)
+    chunk: list[CsvRow] = []
+    for row in rows:
+        chunk.append(row)
         if len(chunk) == CHUNK_ROWS:
-            ok, bad = _score_chunk(bundle, header, chunk, number, writer)
-            scored, refused, number = scored + ok, refused + bad, number + len(chunk)
+            ok = _score_chunk(bundle, rows.header, chunk, writer, width)
+            scored, refused = scored + ok, refused + len(chunk) - ok
             bar.update(len(chunk))
             chunk = []
     if chunk:
-        ok, bad = _score_chunk(bundle, header, chunk, number, writer)
-        scored, refused = scored + ok, refused + bad
+        ok = _score_chunk(bundle, rows.header, chunk, writer, width)
+        scored, refused = scored + ok, refused + len(chunk) - ok
         bar.update(len(chunk))
     bar.close()
     return ScoreSummary(scored, refused)
 
 
-def _score_chunk(bundle: Bundle, header: list[str], chunk: list[list[str]], first: int, writer) -> tuple[int, int]:
+def _score_chunk(bundle: Bundle, header: list[str], chunk: list[CsvRow], writer, width: int) -> int:
+    """Write one output row per input row; return how many were scored."""
     records = []
     malformed: dict[int, list[Problem]] = {}
-    for index, fields in enumerate(chunk):
-        if len(fields) > len(header):
-            malformed[index] = [Problem("(row)", len(fields), "malformed_row", None)]
-        records.append(dict(zip(header, fields)))
+    for index, row in enumerate(chunk):
+        if len(row.fields) > len(header):
+            malformed[index] = [Problem("(row)", len(row.fields), "malformed_row", None)]
+        records.append(dict(zip(header, row.fields)))
     batch = check_records(bundle.manifest.features, records, from_text, allow_extra=True)
     problems = {**batch.problems, **malformed}
     keep = [position for position, index in enumerate(batch.accepted.tolist()) if index not in malformed]
     scores = bundle.scorer.score(batch.values[keep]) if keep else None
     position_of = {int(batch.accepted[position]): slot for slot, position in enumerate(keep)}
-    width = len(output_columns(bundle))
-    for index in range(len(chunk)):
-        row_number = first + index + 1
+    for index, row in enumerate(chunk):
         if index in position_of:
-            writer.writerow([row_number, "scored", *_scored_fields(bundle, scores, position_of[index])])
+            writer.writerow([row.number, "scored", *_scored_fields(scores, position_of[index])])
         else:
             described = "; ".join(problem.describe() for problem in problems[index])
-            writer.writerow([row_number, "refused", *([""] * (width - 3)), described])
-    return len(position_of), len(chunk) - len(position_of)
+            writer.writerow([row.number, "refused", *([""] * (width - 3)), described])
+    return len(position_of)
 
 
-def _scored_fields(bundle: Bundle, scores: Scores, at: int) -> list:
+def _scored_fields(scores: Scores, at: int) -> list:
     decision = scores.decision[at]
     fields = [scores.labels[at], *(decision.tolist() if decision.ndim else [float(decision)])]
     if scores.probabilities is not None:

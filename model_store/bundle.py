@@ -28,7 +28,7 @@ from model_store.archive import is_archive, read_archive
 from model_store.calibration import Calibrator
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import BundleFormatError, GoldenMismatchError, InputError, IntegrityError, NotFoundError
-from model_store.manifest import MANIFEST_FILE, Manifest, parse_manifest
+from model_store.manifest import MANIFEST_FILE, Manifest, parse_manifest, parse_manifest_bytes
 from model_store.scoring import Scorer, Scores
 
 __all__ = ["GOLDEN_TOLERANCE", "Bundle", "load_bundle", "write_bundle"]
@@ -116,15 +116,16 @@ def load_bundle(path: str | os.PathLike) -> Bundle:
     path = Path(path)
     if not path.exists():
         raise NotFoundError(f"{path}: no such bundle; pass a bundle directory or its .tar file")
-    if is_archive(path):
-        contents = read_archive(path)
-        files = {name: contents.get(name) for name in _listed(contents[MANIFEST_FILE], path)}
-        manifest_bytes = contents[MANIFEST_FILE]
+    source = str(path / MANIFEST_FILE)
+    contents = read_archive(path) if is_archive(path) else None
+    manifest_bytes = contents[MANIFEST_FILE] if contents is not None else _read(path / MANIFEST_FILE, path)
+    document, manifest = parse_manifest_bytes(manifest_bytes, source=source)
+    if sorted(manifest.files) != sorted(_ARRAYS):
+        raise BundleFormatError(f"{source}: field files: must list exactly the files {list(_ARRAYS)}")
+    if contents is not None:
+        files = {name: contents.get(name) for name in manifest.files}
     else:
-        manifest_bytes = _read(path / MANIFEST_FILE, path)
-        files = {name: _read(path / name, path) for name in _listed(manifest_bytes, path)}
-    document = _parse_json(manifest_bytes, path)
-    manifest = parse_manifest(document, source=str(path / MANIFEST_FILE))
+        files = {name: _read(path / name, path) for name in manifest.files}
     arrays = {}
     for name, entry in manifest.files.items():
         data = files[name]
@@ -174,13 +175,6 @@ def write_bundle(out_dir: Path, document: dict[str, Any], arrays: dict[str, np.n
     return out_dir
 
 
-def _listed(manifest_bytes: bytes, path: Path) -> list[str]:
-    files = _parse_json(manifest_bytes, path).get("files")
-    if not isinstance(files, dict) or sorted(files) != sorted(_ARRAYS):
-        raise BundleFormatError(f"{path}/{MANIFEST_FILE}: field files: must list exactly the files {list(_ARRAYS)}")
-    return list(files)
-
-
 def _read(file: Path, bundle: Path) -> bytes | None:
     try:
         return file.read_bytes()
@@ -192,40 +186,32 @@ def _read(file: Path, bundle: Path) -> bytes | None:
         raise BundleFormatError(f"{file}: cannot read: {exc.strerror}") from exc
 
 
-def _parse_json(data: bytes, path: Path) -> dict[str, Any]:
-    try:
-        document = json.loads(data.decode("utf-8"), parse_constant=_no_constants, parse_float=_finite_float)
-    except (UnicodeDecodeError, ValueError) as exc:
-        raise BundleFormatError(f"{path}/{MANIFEST_FILE}: not valid JSON: {exc}") from exc
-    if not isinstance(document, dict):
-        raise BundleFormatError(f"{path}/{MANIFEST_FILE}: expected a JSON object at the top level")
-    return document
-
-
-def _no_constants(name: str):
-    raise ValueError(f"{name} is not allowed in a manifest")
-
-
-def _finite_float(text: str) -> float:
-    # json turns an overflowing literal such as 1e999 into inf, which parse_constant never sees.
-    value = float(text)
-    if not np.isfinite(value):
-        raise ValueError(f"{text} is not a finite number")
-    return value
+_NPY_HEADER_READERS = {(1, 0): np.lib.format.read_array_header_1_0, (2, 0): np.lib.format.read_array_header_2_0}
 
 
 def _parse_array(data: bytes, name: str, entry, path: Path) -> np.ndarray:
+    """Parse .npy bytes after checking the header against the manifest, so a forged header
+    cannot make numpy allocate more than the file holds."""
     # np.load would open zip bytes as an .npz archive; only the .npy format is part of a bundle.
     if not data.startswith(_NPY_MAGIC):
         raise BundleFormatError(f"{path}/{name}: not a .npy file (it does not start with the .npy magic string)")
+    stream = io.BytesIO(data)
     try:
-        array = np.load(io.BytesIO(data), allow_pickle=False)
+        read_header = _NPY_HEADER_READERS.get(np.lib.format.read_magic(stream))
+        if read_header is None:
+            raise ValueError("unsupported .npy format version")
+        shape, fortran_order, dtype = read_header(stream, max_header_size=10_000)
     except (ValueError, EOFError, OSError) as exc:
         raise BundleFormatError(f"{path}/{name}: not a plain numeric .npy array: {exc}") from exc
-    if array.dtype != np.float64 or list(array.shape) != entry.shape:
+    if dtype != np.dtype("<f8") or fortran_order or list(shape) != entry.shape:
         raise BundleFormatError(
-            f"{path}/{name}: expected float64 of shape {entry.shape}, got {array.dtype} of shape {list(array.shape)}"
+            f"{path}/{name}: expected little-endian float64 of shape {entry.shape} in C order, "
+            f"got {dtype} of shape {list(shape)}{' in Fortran order' if fortran_order else ''}"
         )
+    offset = stream.tell()
+    if len(data) - offset != 8 * int(np.prod(shape, dtype=np.int64)):
+        raise BundleFormatError(f"{path}/{name}: holds {len(data) - offset} data bytes, its header promises {shape}")
+    array = np.frombuffer(data, dtype="<f8", offset=offset).reshape(shape)
     if not np.isfinite(array).all():
         raise BundleFormatError(f"{path}/{name}: holds NaN or infinite values")
     return array
@@ -272,10 +258,11 @@ def _build_scorer(manifest: Manifest, arrays: dict[str, np.ndarray], source: str
 def _compare(source: str, what: str, got: np.ndarray, want) -> None:
     want = np.asarray(want, dtype=np.float64)
     got = np.asarray(got, dtype=np.float64).reshape(want.shape)
-    excess = np.abs(got - want) - GOLDEN_TOLERANCE * np.maximum(1.0, np.abs(want))
-    if np.any(excess > 0):
-        index = np.unravel_index(np.argmax(excess), excess.shape)
+    # Written as "not within" so that a NaN on either side counts as a mismatch.
+    within = np.abs(got - want) <= GOLDEN_TOLERANCE * np.maximum(1.0, np.abs(want))
+    if not within.all():
+        index = np.unravel_index(np.argmin(within), within.shape)
         raise GoldenMismatchError(
-            f"{source}: golden vector {index[0]}: {what} {got[index]!r}, expected {want[index]!r} "
+            f"{source}: golden vector {index[0]}: {what} {float(got[index])!r}, expected {float(want[index])!r} "
             f"(tolerance {GOLDEN_TOLERANCE:g} x max(1, |expected|)); the bundle does not reproduce the exported model"
         )

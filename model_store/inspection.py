@@ -40,10 +40,26 @@ def describe(bundle: Bundle) -> dict[str, Any]:
         "scaler": manifest.scaler.kind,
         "calibration": manifest.calibration.method,
         "features": features,
-        "holdout_metrics": training.get("holdout_metrics"),
+        "holdout_metrics": _metrics(training.get("holdout_metrics")),
+        "reference_metrics": _metrics(training.get("reference_metrics")),
         "reference": training.get("reference"),
         "libraries": training.get("libraries"),
     }
+
+
+_SHOWN_METRICS = ("accuracy", "balanced_accuracy", "macro_f1", "roc_auc", "log_loss", "brier_score")
+
+
+def _metrics(value: Any) -> dict[str, Any] | None:
+    """The numeric metrics of a training record; ``training`` is free-form, so keep only numbers."""
+    if not isinstance(value, dict):
+        return None
+    kept = {name: value[name] for name in _SHOWN_METRICS if isinstance(value.get(name), (int, float))}
+    if isinstance(value.get("rows"), int):
+        kept["rows"] = value["rows"]
+    if isinstance(value.get("confusion_matrix"), dict):
+        kept["confusion_matrix"] = value["confusion_matrix"]
+    return kept or None
 
 
 def render_description(description: dict[str, Any]) -> str:
@@ -62,10 +78,11 @@ def render_description(description: dict[str, Any]) -> str:
         low, high = feature["allowed"]
         unit = feature["unit"] or "-"
         lines.append(f"    {feature['name']:<24} {unit:<8} [{low:.6g}, {high:.6g}]  width {feature['kernel_width_raw']:.4g}")
-    metrics = description.get("holdout_metrics")
-    if metrics:
-        shown = ", ".join(f"{key} {metrics[key]:.4f}" for key in ("accuracy", "balanced_accuracy", "macro_f1", "roc_auc", "log_loss", "brier_score") if key in metrics)
-        lines.append(f"  holdout      {shown} ({metrics['rows']} rows)")
+    for title, key in (("holdout", "holdout_metrics"), ("reference", "reference_metrics")):
+        metrics = description.get(key)
+        if metrics:
+            shown = ", ".join(f"{name} {metrics[name]:.4f}" for name in _SHOWN_METRICS if name in metrics)
+            lines.append(f"  {title:<12} {shown} ({metrics.get('rows', '?')} rows)")
     libraries = description.get("libraries") or {}
     if libraries:
         lines.append("  libraries    " + ", ".join(f"{name} {version}" for name, version in libraries.items()))

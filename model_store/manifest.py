@@ -29,6 +29,7 @@ __all__ = [
     "Manifest",
     "ScalerSpec",
     "parse_manifest",
+    "parse_manifest_bytes",
     "read_manifest",
 ]
 
@@ -42,7 +43,7 @@ _RFC3339_UTC = r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}(\.\d+)?Z$"
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
 
 class FeatureStats(_Strict):
@@ -260,10 +261,16 @@ def _width(value: Any) -> int | None:
 
 
 def parse_manifest(document: Any, *, source: str = MANIFEST_FILE) -> Manifest:
-    """Validate a parsed manifest document; raise ``BundleFormatError`` naming the field."""
+    """Validate a parsed manifest document strictly; raise ``BundleFormatError`` naming the field.
+
+    Strict JSON validation: a number must be a JSON number (the string "NaN" or
+    "1" is refused), finite, and every field of the right type.
+    """
     try:
-        return Manifest.model_validate(document)
-    except ValidationError as exc:
+        return Manifest.model_validate_json(json.dumps(document, allow_nan=False), strict=True)
+    except ValueError as exc:  # pydantic's ValidationError, or NaN that json.dumps refuses
+        if not isinstance(exc, ValidationError):
+            raise BundleFormatError(f"{source}: holds NaN or an infinite number; JSON numbers must be finite") from exc
         first = exc.errors()[0]
         where = ".".join(str(part) for part in first["loc"]) or "(top level)"
         raise BundleFormatError(
@@ -272,16 +279,26 @@ def parse_manifest(document: Any, *, source: str = MANIFEST_FILE) -> Manifest:
         ) from exc
 
 
+def parse_manifest_bytes(data: bytes, *, source: str = MANIFEST_FILE) -> tuple[dict[str, Any], Manifest]:
+    """Parse manifest bytes once: the raw document (for the digest) and the validated model."""
+    try:
+        document = json.loads(data.decode("utf-8"), parse_constant=_refuse_constant, parse_float=_finite_float)
+    except (UnicodeDecodeError, ValueError) as exc:
+        raise BundleFormatError(f"{source}: not valid JSON: {exc}") from exc
+    if not isinstance(document, dict):
+        raise BundleFormatError(f"{source}: expected a JSON object at the top level")
+    return document, parse_manifest(document, source=source)
+
+
 def read_manifest(path: Path) -> tuple[dict[str, Any], Manifest]:
     """Read and validate ``path``; return the raw document (for the digest) and the model."""
     try:
-        text = Path(path).read_text(encoding="utf-8")
-        document = json.loads(text, parse_constant=_refuse_constant, parse_float=_finite_float)
+        data = Path(path).read_bytes()
     except FileNotFoundError as exc:
         raise BundleFormatError(f"{path}: no manifest; a bundle directory holds {MANIFEST_FILE}") from exc
-    except (OSError, UnicodeDecodeError, ValueError) as exc:
-        raise BundleFormatError(f"{path}: not a readable JSON manifest: {exc}") from exc
-    return document, parse_manifest(document, source=str(path))
+    except OSError as exc:
+        raise BundleFormatError(f"{path}: cannot read the manifest: {exc.strerror}") from exc
+    return parse_manifest_bytes(data, source=str(path))
 
 
 def _refuse_constant(name: str) -> float:

@@ -16,6 +16,7 @@ finite number.
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -27,6 +28,7 @@ from model_store.manifest import FeatureSpec
 __all__ = [
     "REASONS",
     "CheckedBatch",
+    "Converter",
     "Problem",
     "check_records",
     "from_json",
@@ -36,6 +38,8 @@ __all__ = [
 REASONS = ("missing", "null", "not_a_number", "not_finite", "out_of_range", "unknown_feature", "malformed_row")
 
 # A converter returns the float, or the reason the value cannot be scored.
+_DECIMAL_TEXT = re.compile(r"[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?")
+_NON_FINITE_TEXT = re.compile(r"[+-]?(nan|inf|infinity)", re.IGNORECASE)
 Converter = Callable[[Any], "float | str"]
 
 
@@ -94,14 +98,23 @@ def from_json(value: Any) -> float | str:
 
 
 def from_text(value: Any) -> float | str:
-    """A CSV field: empty is missing, otherwise it must parse as a finite number."""
-    text = value.strip() if isinstance(value, str) else value
-    if text is None or text == "":
+    """A CSV field: empty is missing; otherwise a plain decimal number that is finite.
+
+    The grammar is ``[+-]digits[.digits][(e|E)[+-]digits]`` in ASCII: Python's
+    ``float`` alone would also take ``1_000`` and non-ASCII digits, which a
+    spreadsheet would not show as numbers. ``nan`` and ``inf`` spellings are
+    reported as not finite rather than as text.
+    """
+    if not isinstance(value, str):
+        return from_json(value)  # already a number (golden vectors mixed with CSV rows, say)
+    text = value.strip()
+    if text == "":
         return "missing"
-    try:
-        number = float(text)
-    except (TypeError, ValueError):
+    if _NON_FINITE_TEXT.fullmatch(text):
+        return "not_finite"
+    if not _DECIMAL_TEXT.fullmatch(text):
         return "not_a_number"
+    number = float(text)
     return number if math.isfinite(number) else "not_finite"
 
 

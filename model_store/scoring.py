@@ -28,6 +28,7 @@ callers (CLI, service) can apply their refusal policy.
 
 from __future__ import annotations
 
+from contextlib import nullcontext
 from dataclasses import dataclass
 
 import numpy as np
@@ -151,15 +152,29 @@ class Scorer:
         n_pairs = len(self.pairs)
         pairwise = np.empty((n_rows, n_pairs))
         nearest_index = np.empty(n_rows, dtype=np.int64)
-        scaled = (raw - self.center) / self.scale
-        augmented = np.empty((n_rows, self.n_features + 2))
-        augmented[:, :-2] = scaled
-        augmented[:, -2] = -self.gamma * np.einsum("ij,ij->i", scaled, scaled)
+        with np.errstate(over="ignore", invalid="ignore"):
+            scaled = (raw - self.center) / self.scale
+            augmented = np.empty((n_rows, self.n_features + 2))
+            augmented[:, :-2] = scaled
+            augmented[:, -2] = -self.gamma * np.einsum("ij,ij->i", scaled, scaled)
         augmented[:, -1] = 1.0
+        far = ~np.isfinite(augmented[:, -2])
+        any_far = bool(far.any())
+        if any_far:
+            # |z|^2 overflowed: the row is infinitely far from every support vector, its kernel
+            # is 0 and its decision the intercept (as libsvm computes it). Make its exponent
+            # exactly -inf instead of the inf - inf = NaN the expanded form would give.
+            augmented[far, :-2] = 0.0
+            augmented[far, -2] = -np.inf
         block = np.empty((min(n_rows, self.rows_per_chunk), len(self.support_vectors)))
-        for start in range(0, n_rows, self.rows_per_chunk):
-            stop = min(start + self.rows_per_chunk, n_rows)
-            self._score_chunk(augmented[start:stop], block[: stop - start], pairwise[start:stop], nearest_index[start:stop])
+        # With a far row, BLAS may multiply its -inf by the zero padding of its kernels and raise
+        # the invalid flag; the results are exact (-inf), so silence that one case.
+        with np.errstate(invalid="ignore") if any_far else nullcontext():
+            for start in range(0, n_rows, self.rows_per_chunk):
+                stop = min(start + self.rows_per_chunk, n_rows)
+                self._score_chunk(
+                    augmented[start:stop], block[: stop - start], pairwise[start:stop], nearest_index[start:stop]
+                )
         return self._finish(raw, scaled, pairwise, nearest_index)
 
     def _score_chunk(self, augmented, block, pairwise_out, nearest_out) -> None:
@@ -190,8 +205,9 @@ class Scorer:
             # A calibrated scikit-learn model predicts the most probable class.
             label_index = np.argmax(probabilities, axis=1)
         # The BLAS form loses precision near a support vector; recompute the winner exactly.
-        difference = scaled - self.support_vectors[nearest_index]
-        nearest_distance = np.sqrt(np.einsum("ij,ij->i", difference, difference))
+        with np.errstate(over="ignore", invalid="ignore"):
+            difference = scaled - self.support_vectors[nearest_index]
+            nearest_distance = np.sqrt(np.einsum("ij,ij->i", difference, difference))
         return Scores(
             labels=self.classes[label_index],
             label_index=label_index,

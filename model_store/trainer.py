@@ -12,6 +12,7 @@ This module imports scikit-learn; the serving path never imports it.
 from __future__ import annotations
 
 import itertools
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -30,6 +31,7 @@ from model_store.errors import CsvError, InputError
 from model_store.estimator_parts import take_apart
 from model_store.exporter import DEFAULT_MARGIN, ExportRequest, export_bundle
 from model_store.metrics import classification_metrics
+from model_store.naming import check_name
 from model_store.tables import Table, read_table
 
 __all__ = ["CALIBRATIONS", "MIN_ROWS_PER_CLASS", "TrainRequest", "train_bundle"]
@@ -62,13 +64,21 @@ class TrainRequest:
 def train_bundle(request: TrainRequest) -> Bundle:
     """Fit, evaluate on the holdout split and export; return the verified bundle."""
     gamma = _requested_gamma(request)
-    if request.C is not None and not request.C > 0:
-        raise InputError(f"--C {request.C} must be positive")
+    if request.C is not None and not (math.isfinite(request.C) and request.C > 0):
+        raise InputError(f"--C {request.C} must be a positive finite number")
     if not 0 < request.test_size < 1:
         raise InputError(f"--test-size {request.test_size} must be a fraction between 0 and 1")
+    if not 0 <= request.seed < 2**32:
+        raise InputError(f"--seed {request.seed} must be a whole number from 0 to 2**32 - 1")
+    # Checked before the grid search, so a typo costs nothing.
+    check_name(request.name, what="model name")
+    check_name(request.version, what="model version")
+    if Path(request.out).exists():
+        raise InputError(f"{request.out}: already exists; choose a new --out directory or remove it first")
     table = read_table(request.data, target=request.target)
     labels = np.asarray(table.target)
     _check_classes(table, labels, request)
+    _check_split(table, labels, request)
     X_train, X_test, y_train, y_test = train_test_split(
         table.values, labels, test_size=request.test_size, stratify=labels, random_state=request.seed
     )
@@ -111,13 +121,29 @@ def train_bundle(request: TrainRequest) -> Bundle:
 def _requested_gamma(request: TrainRequest) -> float | None:
     if request.sigma is not None and request.gamma is not None:
         raise InputError("give either --sigma or --gamma, not both (gamma = 1 / (2 sigma^2))")
+    gamma = request.gamma
     if request.sigma is not None:
-        if not request.sigma > 0:
-            raise InputError(f"--sigma {request.sigma} must be positive")
-        return 1.0 / (2.0 * request.sigma**2)
-    if request.gamma is not None and not request.gamma > 0:
-        raise InputError(f"--gamma {request.gamma} must be positive")
-    return request.gamma
+        if not (math.isfinite(request.sigma) and request.sigma > 0):
+            raise InputError(f"--sigma {request.sigma} must be a positive finite number")
+        with np.errstate(over="ignore", divide="ignore"):
+            gamma = float(np.float64(1.0) / (2.0 * np.float64(request.sigma) ** 2))
+        if not (math.isfinite(gamma) and gamma > 0):
+            raise InputError(f"--sigma {request.sigma} gives gamma = {gamma}, which is not a usable number")
+    elif gamma is not None and not (math.isfinite(gamma) and gamma > 0):
+        raise InputError(f"--gamma {gamma} must be a positive finite number")
+    return gamma
+
+
+def _check_split(table: Table, labels: np.ndarray, request: TrainRequest) -> None:
+    """scikit-learn's stratified split needs at least one row of every class on each side."""
+    n_classes = len(np.unique(labels))
+    holdout = math.ceil(request.test_size * len(labels))
+    if holdout < n_classes or len(labels) - holdout < n_classes:
+        raise InputError(
+            f"--test-size {request.test_size} puts {holdout} of {len(labels)} rows in the holdout; each side of the "
+            f"split needs at least one row of each of the {n_classes} classes; choose a test size between "
+            f"{n_classes / len(labels):.3g} and {1 - n_classes / len(labels):.3g}"
+        )
 
 
 def _check_classes(table: Table, labels: np.ndarray, request: TrainRequest) -> None:

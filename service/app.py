@@ -26,6 +26,7 @@ from service.context import Services
 from service.health_routes import add_health_routes
 from service.metrics import ServiceMetrics
 from service.model_routes import add_model_routes
+from service.openapi import add_openapi_route
 from service.operation_routes import add_operation_routes
 from service.poller import Poller
 from service.problems import install_problem_handlers
@@ -86,6 +87,7 @@ def create_app(
     )
     for add_routes in (add_score_routes, add_model_routes, add_operation_routes, add_health_routes):
         add_routes(app, services)
+    add_openapi_route(app, settings.max_records)
     _check_every_route_has_a_rule(app)
     install_problem_handlers(app)
     app.add_middleware(AccessLogMiddleware, write=write_log, metrics=metrics)

@@ -76,6 +76,7 @@ ACCESS_RULES: Mapping[tuple[str, str], AccessRule] = {
     ("GET", "/healthz"): _PUBLIC,
     ("GET", "/readyz"): _PUBLIC,
     ("GET", "/metrics"): _PUBLIC,
+    ("GET", "/openapi.json"): _METADATA,
 }
 
 

@@ -17,7 +17,7 @@ import json
 import math
 from typing import Any
 
-from starlette.requests import Request
+from starlette.requests import ClientDisconnect, Request
 
 from service.problems import ServiceProblem
 
@@ -50,11 +50,21 @@ async def read_body(request: Request, limit: int) -> bytes:
             raise _too_large(f"the request declares {int(declared)} bytes", limit)
     chunks: list[bytes] = []
     received = 0
-    async for chunk in request.stream():
-        received += len(chunk)
-        if received > limit:
-            raise _too_large(f"the request body passed {limit} bytes", limit)
-        chunks.append(chunk)
+    try:
+        async for chunk in request.stream():
+            received += len(chunk)
+            if received > limit:
+                raise _too_large(f"the request body passed {limit} bytes", limit)
+            chunks.append(chunk)
+    except ClientDisconnect:
+        # The client went away, or the server closed a body that came too slowly (service.http_limits).
+        # Nobody reads this answer; it keeps the log and the metrics from calling it a server failure.
+        raise ServiceProblem(
+            408,
+            "incomplete-request",
+            "The request did not arrive completely",
+            f"the connection closed after {received} bytes of the body; send the whole body without pausing",
+        ) from None
     return b"".join(chunks)
 
 

@@ -11,12 +11,13 @@ multiprocess mode when it is first imported).
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import os
 import shutil
 import socket
 import sys
 import tempfile
-from collections.abc import MutableMapping
+from collections.abc import Mapping, MutableMapping
 from pathlib import Path
 
 from model_store.errors import InputError
@@ -31,10 +32,13 @@ from service.settings import (
 )
 from service.tokens import ROLES, add_token, read_tokens, revoke_token
 
-__all__ = ["register"]
+__all__ = ["register", "serve_settings"]
 
 _TOKENS_ENVIRON = "RBFGATE_TOKENS"
 _MULTIPROCESS_ENVIRON = "PROMETHEUS_MULTIPROC_DIR"
+_GRACEFUL_SHUTDOWN_SECONDS = 30
+# Seconds for a whole request to arrive (service.http_limits); generous for a 1 MiB body.
+DEFAULT_READ_TIMEOUT = 20.0
 
 
 def register(subparsers) -> None:
@@ -44,21 +48,27 @@ def register(subparsers) -> None:
         help="run the HTTP scoring service on a store",
         description="Serve the active version of every model in the store over HTTP, following version switches.",
     )
+    # Options left out fall back to their environment variable (service.settings.ENVIRON_KEYS),
+    # then to the default, so a container can be configured through its environment alone.
     serve.add_argument("--store", metavar="DIR", help="the store (default: $RBFGATE_STORE, else the per-user store)")
-    serve.add_argument("--host", default=DEFAULT_HOST, help=f"address to listen on (default {DEFAULT_HOST})")
-    serve.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"TCP port (default {DEFAULT_PORT})")
-    serve.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
+    serve.add_argument("--host", help=f"address to listen on (default $RBFGATE_SERVE_HOST, else {DEFAULT_HOST})")
+    serve.add_argument("--port", type=int, help=f"TCP port (default $RBFGATE_SERVE_PORT, else {DEFAULT_PORT})")
+    serve.add_argument("--workers", type=int, help="worker processes (default $RBFGATE_SERVE_WORKERS, else 1)")
     serve.add_argument("--tokens", metavar="FILE", help=f"tokens file (default ${_TOKENS_ENVIRON}); without one, "
                        "scoring and metadata are open and history, bundles and version changes are refused")
-    serve.add_argument("--max-records", type=int, default=DEFAULT_MAX_RECORDS,
+    serve.add_argument("--max-records", type=int,
                        help=f"most records per scoring request (default {DEFAULT_MAX_RECORDS})")
-    serve.add_argument("--max-body-bytes", type=int, default=DEFAULT_MAX_BODY_BYTES,
+    serve.add_argument("--max-body-bytes", type=int,
                        help=f"largest request body in bytes (default {DEFAULT_MAX_BODY_BYTES})")
-    serve.add_argument("--poll-interval", type=float, default=DEFAULT_POLL_SECONDS, metavar="SECONDS",
+    serve.add_argument("--poll-interval", type=float, metavar="SECONDS",
                        help=f"seconds between reads of the active versions (default {DEFAULT_POLL_SECONDS:g})")
-    serve.add_argument("--preview-sample", type=int, default=DEFAULT_SAMPLE_SIZE, metavar="N",
+    serve.add_argument("--preview-sample", type=int, metavar="N",
                        help=f"recent records kept per model for the swap preview (default {DEFAULT_SAMPLE_SIZE})")
-    serve.add_argument("--log-inputs", action="store_true", help="write feature values into the request log")
+    serve.add_argument("--log-inputs", action="store_true", default=None,
+                       help="write feature values into the request log")
+    serve.add_argument("--read-timeout", type=float, default=DEFAULT_READ_TIMEOUT, metavar="SECONDS",
+                       help="seconds a request may take to arrive completely, from the connection opening or the "
+                       f"previous response; slower connections are closed (default {DEFAULT_READ_TIMEOUT:g})")
     serve.set_defaults(handler=_serve)
 
     token = subparsers.add_parser("token", help="manage the service's tokens",
@@ -77,24 +87,33 @@ def register(subparsers) -> None:
     revoke.set_defaults(handler=_token_revoke)
 
 
-def _serve(args: argparse.Namespace, environ: MutableMapping[str, str] = os.environ) -> int:
+def serve_settings(args: argparse.Namespace, environ: Mapping[str, str]) -> Settings:
+    """The settings ``serve`` runs with: each option given on the command line, else its
+    environment variable (``service.settings.ENVIRON_KEYS``), else its default."""
     from model_store.store import Store, resolve_store_root
 
     root = resolve_store_root(args.store, environ)
     Store(root)  # a missing or foreign store stops here with the store's own message
-    tokens = args.tokens or environ.get(_TOKENS_ENVIRON) or None
-    settings = Settings(
-        store_root=root,
-        tokens_file=Path(tokens) if tokens else None,
-        host=args.host,
-        port=args.port,
-        workers=args.workers,
-        max_records=args.max_records,
-        max_body_bytes=args.max_body_bytes,
-        poll_seconds=args.poll_interval,
-        sample_size=args.preview_sample,
-        log_inputs=args.log_inputs,
-    )
+    tokens = args.tokens or environ.get(_TOKENS_ENVIRON) or ""
+    from_environment = Settings.from_environ({**environ, "RBFGATE_STORE": str(root), _TOKENS_ENVIRON: tokens})
+    given = {
+        "host": args.host,
+        "port": args.port,
+        "workers": args.workers,
+        "max_records": args.max_records,
+        "max_body_bytes": args.max_body_bytes,
+        "poll_seconds": args.poll_interval,
+        "sample_size": args.preview_sample,
+        "log_inputs": args.log_inputs,
+    }
+    return dataclasses.replace(from_environment, **{key: value for key, value in given.items() if value is not None})
+
+
+def _serve(args: argparse.Namespace, environ: MutableMapping[str, str] = os.environ) -> int:
+    settings = serve_settings(args, environ)
+    root = settings.store_root
+    if not 0.5 <= args.read_timeout <= 3600:  # also refuses NaN
+        raise InputError(f"--read-timeout must be between 0.5 and 3600 seconds; got {args.read_timeout}")
     if settings.tokens_file is not None:
         read_tokens(settings.tokens_file)  # unreadable or malformed: refuse to start
     _check_port_free(settings.host, settings.port)
@@ -112,6 +131,8 @@ def _serve(args: argparse.Namespace, environ: MutableMapping[str, str] = os.envi
     try:
         import uvicorn
 
+        from service.http_limits import KEEP_ALIVE_SECONDS, MAX_HEADER_BYTES, protocol_factory
+
         uvicorn.run(
             "service.app:create_app_from_environ",
             factory=True,
@@ -121,6 +142,14 @@ def _serve(args: argparse.Namespace, environ: MutableMapping[str, str] = os.envi
             access_log=False,  # one JSON line per request comes from the app itself
             server_header=False,
             log_level="info",
+            # Limits (README, "faults and abuse"): a whole request within --read-timeout, idle
+            # keep-alive connections closed after 5 s, request line and headers at most 16 KiB,
+            # at most 30 s for in-flight requests to finish on shutdown. No concurrency cap:
+            # uvicorn's counts open connections, so slow clients could use it to lock others out.
+            http=protocol_factory(args.read_timeout),
+            timeout_keep_alive=KEEP_ALIVE_SECONDS,
+            h11_max_incomplete_event_size=MAX_HEADER_BYTES,
+            timeout_graceful_shutdown=_GRACEFUL_SHUTDOWN_SECONDS,
         )
     finally:
         if metrics_dir is not None:

@@ -133,6 +133,7 @@ class ServiceMetrics:
         """The exposition text and its content type."""
         if self.multiprocess_dir is None:
             return generate_latest(self._registry), CONTENT_TYPE_LATEST
+        _forget_dead_workers(self.multiprocess_dir)
         registry = CollectorRegistry()
         multiprocess.MultiProcessCollector(registry, path=self.multiprocess_dir)
         return generate_latest(registry), CONTENT_TYPE_LATEST
@@ -141,3 +142,32 @@ class ServiceMetrics:
         """Drop this worker's live gauges (multiprocess mode only)."""
         if self.multiprocess_dir is not None:
             multiprocess.mark_process_dead(os.getpid(), path=self.multiprocess_dir)
+
+
+def _forget_dead_workers(directory: str) -> None:
+    """Drop the live gauges of workers that died without shutting down (SIGKILL, OOM).
+
+    A worker that exits cleanly removes its own (``worker_exited``); one that is killed
+    leaves its ``gauge_livemax_<pid>.db`` behind, and prometheus-client would go on
+    counting it as live, showing for example the version it served before a switch as
+    still active. uvicorn replaces such a worker, and the next /metrics forgets it.
+    """
+    for entry in os.listdir(directory):
+        prefix, _, rest = entry.partition("_livemax_")
+        pid_text = rest.removesuffix(".db")
+        if prefix != "gauge" or not pid_text.isdigit() or _alive(int(pid_text)):
+            continue
+        try:
+            multiprocess.mark_process_dead(int(pid_text), path=directory)
+        except FileNotFoundError:
+            pass  # another worker forgot it first
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)  # signal 0: only checks that the process exists
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True  # exists, owned by someone else
+    return True

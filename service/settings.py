@@ -4,10 +4,15 @@
 starts each worker as a fresh process, hands them to the workers as
 environment variables (``to_environ``) that ``from_environ`` reads back.
 Every value is checked here, at the boundary, so the rest of the service
-trusts it.
+trusts it. ``rbfgate serve`` also starts from these variables, and its
+command-line options override them, so a container sets the service up
+through its environment alone (``ENVIRON_KEYS`` lists every variable):
 
     RBFGATE_STORE                  store root (the same variable the store commands read)
     RBFGATE_TOKENS                 tokens file; empty or unset: no tokens
+    RBFGATE_SERVE_HOST             address to listen on
+    RBFGATE_SERVE_PORT             TCP port
+    RBFGATE_SERVE_WORKERS          worker processes
     RBFGATE_SERVE_MAX_RECORDS      records per scoring request
     RBFGATE_SERVE_MAX_BODY_BYTES   request body limit in bytes
     RBFGATE_SERVE_POLL_SECONDS     seconds between polls of the store
@@ -21,6 +26,7 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
+from types import MappingProxyType
 
 from model_store.errors import InputError
 
@@ -31,6 +37,7 @@ __all__ = [
     "DEFAULT_POLL_SECONDS",
     "DEFAULT_PORT",
     "DEFAULT_SAMPLE_SIZE",
+    "ENVIRON_KEYS",
     "Settings",
 ]
 
@@ -40,6 +47,21 @@ DEFAULT_MAX_RECORDS = 1000
 DEFAULT_MAX_BODY_BYTES = 1024 * 1024
 DEFAULT_POLL_SECONDS = 1.0
 DEFAULT_SAMPLE_SIZE = 256
+
+# Settings field -> the environment variable that carries it (deployment
+# manifests are checked against this table, so a rename cannot leave them stale).
+ENVIRON_KEYS: Mapping[str, str] = MappingProxyType({
+    "store_root": "RBFGATE_STORE",
+    "tokens_file": "RBFGATE_TOKENS",
+    "host": "RBFGATE_SERVE_HOST",
+    "port": "RBFGATE_SERVE_PORT",
+    "workers": "RBFGATE_SERVE_WORKERS",
+    "max_records": "RBFGATE_SERVE_MAX_RECORDS",
+    "max_body_bytes": "RBFGATE_SERVE_MAX_BODY_BYTES",
+    "poll_seconds": "RBFGATE_SERVE_POLL_SECONDS",
+    "sample_size": "RBFGATE_SERVE_SAMPLE_SIZE",
+    "log_inputs": "RBFGATE_SERVE_LOG_INPUTS",
+})
 
 
 @dataclass(frozen=True)
@@ -70,21 +92,32 @@ class Settings:
         object.__setattr__(self, "store_root", Path(self.store_root))
         if self.tokens_file is not None:
             object.__setattr__(self, "tokens_file", Path(self.tokens_file))
-        _at_least("--workers", self.workers, 1)
-        _at_least("--max-records", self.max_records, 1)
-        _at_least("--max-body-bytes", self.max_body_bytes, 64)
-        _at_least("--sample-size", self.sample_size, 0)
+        _at_least("--workers", "workers", self.workers, 1)
+        _at_least("--max-records", "max_records", self.max_records, 1)
+        _at_least("--max-body-bytes", "max_body_bytes", self.max_body_bytes, 64)
+        _at_least("--preview-sample", "sample_size", self.sample_size, 0)
+        if not isinstance(self.host, str) or not self.host:
+            raise InputError(f"{_option('--host', 'host')} must be an address to listen on; got {self.host!r}")
+        _at_least("--port", "port", self.port, 0)
         if not 0 <= self.port <= 65535:
-            raise InputError(f"--port must be between 0 and 65535; got {self.port}")
+            raise InputError(f"{_option('--port', 'port')} must be between 0 and 65535; got {self.port}")
         if not (isinstance(self.poll_seconds, (int, float)) and math.isfinite(self.poll_seconds)):
-            raise InputError(f"--poll-interval must be a number of seconds; got {self.poll_seconds!r}")
+            raise InputError(
+                f"{_option('--poll-interval', 'poll_seconds')} must be a number of seconds; got {self.poll_seconds!r}"
+            )
         if not 0.05 <= self.poll_seconds <= 3600:
-            raise InputError(f"--poll-interval must be between 0.05 and 3600 seconds; got {self.poll_seconds}")
+            raise InputError(
+                f"{_option('--poll-interval', 'poll_seconds')} must be between 0.05 and 3600 seconds; "
+                f"got {self.poll_seconds}"
+            )
 
     def to_environ(self) -> dict[str, str]:
         """The environment variables from which ``from_environ`` rebuilds these settings."""
         return {
             "RBFGATE_STORE": str(self.store_root),
+            "RBFGATE_SERVE_HOST": self.host,
+            "RBFGATE_SERVE_PORT": str(self.port),
+            "RBFGATE_SERVE_WORKERS": str(self.workers),
             "RBFGATE_SERVE_MAX_RECORDS": str(self.max_records),
             "RBFGATE_SERVE_MAX_BODY_BYTES": str(self.max_body_bytes),
             "RBFGATE_SERVE_POLL_SECONDS": repr(float(self.poll_seconds)),
@@ -103,6 +136,9 @@ class Settings:
         return cls(
             store_root=Path(store),
             tokens_file=Path(tokens) if tokens else None,
+            host=environ.get("RBFGATE_SERVE_HOST", "") or DEFAULT_HOST,
+            port=_integer(environ, "RBFGATE_SERVE_PORT", DEFAULT_PORT),
+            workers=_integer(environ, "RBFGATE_SERVE_WORKERS", 1),
             max_records=_integer(environ, "RBFGATE_SERVE_MAX_RECORDS", DEFAULT_MAX_RECORDS),
             max_body_bytes=_integer(environ, "RBFGATE_SERVE_MAX_BODY_BYTES", DEFAULT_MAX_BODY_BYTES),
             poll_seconds=_number(environ, "RBFGATE_SERVE_POLL_SECONDS", DEFAULT_POLL_SECONDS),
@@ -111,9 +147,14 @@ class Settings:
         )
 
 
-def _at_least(option: str, value: int, low: int) -> None:
+def _option(option: str, field: str) -> str:
+    """Both spellings of a setting, since a value may come from the command line or the environment."""
+    return f"{option} (or {ENVIRON_KEYS[field]})"
+
+
+def _at_least(option: str, field: str, value: int, low: int) -> None:
     if isinstance(value, bool) or not isinstance(value, int) or value < low:
-        raise InputError(f"{option} must be a whole number >= {low}; got {value!r}")
+        raise InputError(f"{_option(option, field)} must be a whole number >= {low}; got {value!r}")
 
 
 def _integer(environ: Mapping[str, str], key: str, default: int) -> int:

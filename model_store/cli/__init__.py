@@ -45,6 +45,12 @@ def main(argv: list[str] | None = None) -> int:
     except RbfgateError as exc:
         print(f"rbfgate {args.command}: error: {exc}", file=sys.stderr)
         return exc.exit_code
+    except OSError as exc:
+        # A file system refusal we did not anticipate (a full disk, a path through a file):
+        # still one line naming the path, never a traceback.
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"rbfgate {args.command}: error: {where}{exc.strerror or exc}", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print(f"rbfgate {args.command}: interrupted", file=sys.stderr)
         return 130

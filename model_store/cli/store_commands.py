@@ -20,13 +20,14 @@ from collections.abc import Mapping
 from datetime import datetime, timezone
 from pathlib import Path
 
-from model_store.errors import CsvError, HistoryError, NotFoundError, StoreError
+from model_store.errors import CsvError, HistoryError, NotFoundError
+from model_store.refusal import from_text
 from model_store.store import Store, resolve_store_root
 from model_store.store.history import format_time
 from model_store.store.preview import preview
 from model_store.store.signer import generate_key_files, sign_bundle
 from model_store.store.signing import parse_public_key
-from model_store.tables import open_csv
+from model_store.tables import CsvFile
 
 __all__ = ["default_actor", "read_preview_inputs", "register"]
 
@@ -109,28 +110,16 @@ def default_actor(environ: Mapping[str, str]) -> str:
         return f"uid-{os.getuid()}"
 
 
-def read_preview_inputs(path: Path) -> tuple[list[dict[str, object]], list[int]]:
-    """CSV rows as JSON-like records (numbers parsed, empty cells left out) and their data-row numbers."""
-    header, rows, handle = open_csv(path)
+def read_preview_inputs(path: Path) -> tuple[list[dict[str, str]], list[int]]:
+    """CSV rows as text records (read as ``rbfgate score`` reads them) and their data-row numbers."""
     records, numbers = [], []
-    try:
-        for number, fields in enumerate(rows, start=1):
-            if not any(field.strip() for field in fields):
-                continue  # a blank line carries no record
-            if len(fields) != len(header):
-                raise CsvError(str(path), f"has {len(fields)} fields, the header has {len(header)}", row=number)
-            records.append({name: _cell(value) for name, value in zip(header, fields) if value.strip()})
-            numbers.append(number)
-    finally:
-        handle.close()
+    with CsvFile(path) as rows:
+        for row in rows:
+            if len(row.fields) > len(rows.header):
+                raise CsvError(str(path), f"has {len(row.fields)} fields, the header has {len(rows.header)}", row=row.number)
+            records.append(dict(zip(rows.header, row.fields)))
+            numbers.append(row.number)
     return records, numbers
-
-
-def _cell(text: str) -> object:
-    try:
-        return float(text)
-    except ValueError:
-        return text.strip()  # the refusal policy reports it as not a number
 
 
 def _count(text: str) -> int:
@@ -144,10 +133,8 @@ def _count(text: str) -> int:
 
 
 def _guarded(handler, args, *, environ) -> int:
-    try:
-        return handler(args, environ)
-    except OSError as exc:  # anything the store modules did not already explain
-        raise StoreError(f"{exc.filename or 'file system'}: {exc.strerror or exc}") from exc
+    # An OSError the store modules did not already explain is reported by cli.main as one line.
+    return handler(args, environ)
 
 
 def _store(args, environ, *, create: bool = False) -> Store:
@@ -222,7 +209,8 @@ def _history(args, environ) -> int:
 def _preview(args, environ) -> int:
     store = _store(args, environ)
     records, numbers = read_preview_inputs(Path(args.inputs)) if args.inputs else ([], [])
-    print(preview(store, args.name, args.version, records, record_rows=numbers).render_text())
+    report = preview(store, args.name, args.version, records, record_rows=numbers, convert=from_text, allow_extra=True)
+    print(report.render_text())
     return 0
 
 

@@ -20,7 +20,7 @@ import numpy as np
 
 from model_store.bundle import Bundle
 from model_store.errors import NotFoundError
-from model_store.refusal import CheckedBatch, check_records, from_json
+from model_store.refusal import CheckedBatch, Converter, check_records, from_json
 from model_store.store.preview_text import render
 
 if TYPE_CHECKING:
@@ -82,10 +82,15 @@ def preview(
     records: Sequence[Mapping[str, object]] | None = None,
     *,
     record_rows: Sequence[int] | None = None,
+    convert: Converter = from_json,
+    allow_extra: bool = False,
 ) -> PreviewReport:
-    """Compare ``candidate_version`` with the active version of ``name``; ``records`` are JSON-like rows.
+    """Compare ``candidate_version`` with the active version of ``name`` on golden vectors and ``records``.
 
-    ``record_rows`` numbers the records in messages (default 1, 2, 3, ...), e.g. CSV data-row numbers.
+    ``records`` are JSON-like rows by default; a CSV caller passes text rows with
+    ``convert=from_text, allow_extra=True`` (extra columns such as an id are ignored),
+    exactly as ``rbfgate score`` reads them. ``record_rows`` numbers the records in
+    messages (default 1, 2, 3, ...), e.g. CSV data-row numbers.
     """
     active_record = store.active(name)
     if active_record is None:
@@ -96,8 +101,8 @@ def preview(
     candidate = store.load_verified(name, candidate_version)
     active = store.load_verified(name, active_record.version)
     origins, rows = _rows(active, candidate, records or [], record_rows)
-    checked_active = check_records(active.manifest.features, rows, from_json)
-    checked_candidate = check_records(candidate.manifest.features, rows, from_json)
+    checked_active = check_records(active.manifest.features, rows, convert, allow_extra=allow_extra)
+    checked_candidate = check_records(candidate.manifest.features, rows, convert, allow_extra=allow_extra)
     both = sorted(set(checked_active.accepted.tolist()) & set(checked_candidate.accepted.tolist()))
     scores_active = _scores_for(active, checked_active, both)
     scores_candidate = _scores_for(candidate, checked_candidate, both)

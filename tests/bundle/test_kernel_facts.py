@@ -132,3 +132,26 @@ def test_scale_gamma_is_resolved_to_the_fitted_number(cancer_standard):
     bundle, model, X = cancer_standard
     Z = model[0].transform(X)
     assert bundle.manifest.kernel.gamma == pytest.approx(1.0 / (Z.shape[1] * Z.var()), rel=1e-12)
+
+
+def test_a_row_so_far_away_that_its_squared_norm_overflows_gets_the_intercept_not_nan():
+    """libsvm sums (x - s)^2 directly and gets exp(-inf) = 0, so scikit-learn answers with the
+    intercept; the expanded |z|^2 + |s|^2 - 2 z.s form must not turn that into inf - inf = NaN."""
+    import tempfile
+    from pathlib import Path
+
+    from sklearn.datasets import load_iris
+    from sklearn.svm import SVC
+
+    from conftest import export_model
+
+    X, y = load_iris(return_X_y=True)
+    model = SVC(gamma=5.0).fit(X, y)
+    bundle = export_model(model, X, Path(tempfile.mkdtemp()) / "b")
+    row = X[:1].copy()
+    row[0, 0] = 1e307
+    scores = bundle.score(row)
+    expected = model.decision_function(row)  # scikit-learn reference
+    np.testing.assert_allclose(scores.decision, expected, rtol=1e-9, atol=1e-9)
+    assert scores.labels[0] == model.predict(row)[0]
+    assert scores.nearest_similarity[0] == 0.0 and scores.nearest_percentile[0] == 100.0

@@ -173,7 +173,7 @@ def test_support_vectors_of_the_wrong_shape_are_refused_naming_the_file(iris_raw
 def test_array_whose_shape_differs_from_the_manifest_is_refused_naming_the_file(iris_raw, tmp_path):
     bundle, model, _ = iris_raw
     copy = _replace_array(bundle, tmp_path, "dual_coef.npy", model.dual_coef_, manifest_shape=[1, 1])
-    with pytest.raises(BundleFormatError, match=r"dual_coef.npy: expected float64 of shape \[1, 1\]"):
+    with pytest.raises(BundleFormatError, match=r"dual_coef.npy: expected little-endian float64 of shape \[1, 1\]"):
         load_bundle(copy)
 
 
@@ -192,7 +192,7 @@ def test_integer_array_is_refused_naming_the_file(iris_raw, tmp_path):
     bundle, _, _ = iris_raw
     quantiles = np.arange(101, dtype=np.int64)
     copy = _replace_array(bundle, tmp_path, "reference_quantiles.npy", quantiles)
-    with pytest.raises(BundleFormatError, match="reference_quantiles.npy: expected float64"):
+    with pytest.raises(BundleFormatError, match="reference_quantiles.npy: expected little-endian float64"):
         load_bundle(copy)
 
 
@@ -265,3 +265,42 @@ def test_exported_created_time_is_rfc3339_utc(iris_raw):
     bundle, _, _ = iris_raw
     parsed = datetime.strptime(bundle.manifest.created, "%Y-%m-%dT%H:%M:%SZ")  # RFC 3339 section 5.6
     assert parsed.replace(tzinfo=timezone.utc) <= datetime.now(timezone.utc)
+
+
+def test_a_forged_npy_header_cannot_make_numpy_allocate_what_the_file_does_not_hold(iris_raw, tmp_path):
+    """A 100-byte .npy whose header claims 10**11 values is refused before any allocation."""
+    bundle, _, _ = iris_raw
+    header = np.lib.format.header_data_from_array_1_0(np.zeros(1))
+    header["shape"] = (10**11,)
+    buffer = io.BytesIO()
+    np.lib.format.write_array_header_1_0(buffer, header)
+    copy = _replace_array(bundle, tmp_path, "reference_quantiles.npy", np.zeros(101))
+    data = buffer.getvalue() + b"\0" * 8
+    (copy / "reference_quantiles.npy").write_bytes(data)
+    document = json.loads((copy / "manifest.json").read_text())
+    document["files"]["reference_quantiles.npy"].update(sha256=sha256_bytes(data), bytes=len(data), shape=[10**11])
+    (copy / "manifest.json").write_text(json.dumps(document))
+    with pytest.raises(BundleFormatError, match="reference_quantiles.npy: holds 8 data bytes"):
+        load_bundle(copy)
+
+
+@pytest.mark.parametrize("text", ['"NaN"', '"1.5"', "true"])
+def test_a_number_field_holding_a_string_or_boolean_is_refused(iris_raw, tmp_path, text):
+    """Strict JSON types: pydantic's lax mode would turn the string "NaN" into a float NaN."""
+    bundle, _, _ = iris_raw
+    copy = _copy(bundle, tmp_path)
+    path = copy / "manifest.json"
+    document = json.loads(path.read_text())
+    document["scaler"]["center"][0] = "PLACEHOLDER"
+    path.write_text(json.dumps(document).replace('"PLACEHOLDER"', text))
+    with pytest.raises(BundleFormatError, match="scaler.center.0"):
+        load_bundle(copy)
+
+
+def test_golden_values_that_are_nan_can_never_match(iris_raw):
+    """A NaN comparison is False both ways; the golden check counts it as a mismatch."""
+    from model_store import GoldenMismatchError
+    from model_store.bundle import _compare
+
+    with pytest.raises(GoldenMismatchError, match="golden vector 1"):
+        _compare("bundle", "decision", np.array([1.0, np.nan]), [1.0, 2.0])

@@ -44,7 +44,8 @@ def test_score_matches_scikit_learn_row_by_row(tmp_path, iris_calibrated, capsys
     probabilities = np.array([[float(row[f"probability[{c}]"]) for c in bundle.classes] for row in rows])
     np.testing.assert_allclose(probabilities, model.predict_proba(X), rtol=0, atol=1e-9)
     decisions = np.array([[float(row[f"decision[{c}]"]) for c in bundle.classes] for row in rows])
-    np.testing.assert_allclose(decisions, bundle.score(X).decision, rtol=0, atol=0)  # exact round-trip through repr
+    inner = model.calibrated_classifiers_[0].estimator  # the pipeline whose decision_function was calibrated
+    np.testing.assert_allclose(decisions, inner.decision_function(X), rtol=0, atol=1e-9)  # scikit-learn reference
     assert f"{len(X)} scored, 0 refused" in capsys.readouterr().err
 
 
@@ -109,15 +110,71 @@ def test_score_refuses_a_file_without_a_feature_column_and_writes_nothing(tmp_pa
     assert list(tmp_path.iterdir()) == [source]
 
 
-def test_score_leaves_an_existing_output_untouched_when_it_fails(tmp_path, iris_calibrated):
+def test_score_leaves_an_existing_output_untouched_when_it_fails(tmp_path, iris_calibrated, monkeypatch):
     bundle, _, X = iris_calibrated
+    monkeypatch.setattr(model_store.batch_scoring, "CHUNK_ROWS", 7)  # rows are written before the bad byte
     out = tmp_path / "out.csv"
     out.write_text("previous results\n")
     source = tmp_path / "in.csv"
-    source.write_bytes(b",".join(f.encode() for f in FEATURES) + b"\n1,2,3,4\n\xff\xfe,1,1,1\n")
+    good = b"".join(b",".join(str(v).encode() for v in row) + b"\n" for row in X.tolist()) * 20  # past 8 KiB
+    source.write_bytes(b",".join(f.encode() for f in FEATURES) + b"\n" + good + b"\xff\xfe,1,1,1\n")
     assert main(["score", bundle.source, str(source), "--out", str(out)]) == 2
     assert out.read_text() == "previous results\n"
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
+
+
+@pytest.mark.parametrize("target", ["missing-folder/out.csv", "."], ids=["missing-folder", "a-directory"])
+def test_score_refuses_an_unusable_output_path_with_one_line(tmp_path, iris_calibrated, capsys, target):
+    bundle, _, X = iris_calibrated
+    source = _write(tmp_path / "in.csv", FEATURES, X[:3].tolist())
+    assert main(["score", bundle.source, str(source), "--out", str(tmp_path / target)]) == 2
+    err = capsys.readouterr().err
+    assert "--out" in err and "Traceback" not in err
+
+
+def test_score_output_follows_the_umask_not_a_private_mode(tmp_path, iris_calibrated):
+    import os
+
+    bundle, _, X = iris_calibrated
+    source = _write(tmp_path / "in.csv", FEATURES, X[:3].tolist())
+    previous = os.umask(0o022)
+    try:
+        assert main(["score", bundle.source, str(source), "--out", str(tmp_path / "o.csv")]) == 0
+    finally:
+        os.umask(previous)
+    assert (tmp_path / "o.csv").stat().st_mode & 0o777 == 0o644
+
+
+def test_score_names_the_exact_line_of_a_byte_that_is_not_utf8(tmp_path, iris_calibrated, capsys):
+    bundle, _, X = iris_calibrated
+    lines = [",".join(FEATURES)] + [",".join(map(str, row)) for row in X.tolist()] * 40  # about 100 KB
+    lines[5001] = "\udcff"
+    source = tmp_path / "in.csv"
+    source.write_bytes("\n".join(lines).encode("utf-8", "surrogateescape") + b"\n")
+    assert main(["score", bundle.source, str(source), "--out", str(tmp_path / "o.csv")]) == 2
+    assert "line 5002 is not UTF-8" in capsys.readouterr().err
+    assert not (tmp_path / "o.csv").exists()
+
+
+@pytest.mark.parametrize("text", ["1_0", "\u0661.\u0663", "0x10", "1e", "--1"])
+def test_score_refuses_text_that_float_would_take_but_is_not_a_plain_number(tmp_path, iris_calibrated, text):
+    """Python's float() accepts '1_0' and Arabic-Indic digits; a CSV number is ASCII decimal."""
+    bundle, _, X = iris_calibrated
+    row = [str(value) for value in X[0]]
+    row[1] = text
+    source = tmp_path / "in.csv"
+    source.write_text(",".join(FEATURES) + "\n" + ",".join(row) + "\n", encoding="utf-8")
+    assert main(["score", bundle.source, str(source), "--out", str(tmp_path / "o.csv")]) == 0
+    assert _read(tmp_path / "o.csv")[0]["status"] == "refused"
+
+
+def test_score_skips_blank_lines_and_counts_data_rows(tmp_path, iris_calibrated):
+    bundle, _, X = iris_calibrated
+    row = ",".join(map(str, X[0]))
+    source = tmp_path / "in.csv"
+    source.write_text(",".join(FEATURES) + "\r\n" + row + "\r\n\r\n" + row + "\r\n")
+    assert main(["score", bundle.source, str(source), "--out", str(tmp_path / "o.csv")]) == 0
+    assert [(r["row"], r["status"]) for r in _read(tmp_path / "o.csv")] == [("1", "scored"), ("2", "scored")]
 
 
 def test_score_reports_a_missing_bundle(tmp_path, capsys):

@@ -110,9 +110,38 @@ def test_train_refuses_sigma_and_gamma_together(tmp_path, demo_csv, capsys):
     assert exit_info.value.code == 2  # argparse's usage error
 
 
-def test_train_refuses_a_non_positive_sigma(tmp_path, demo_csv, capsys):
-    assert _train(demo_csv, tmp_path / "b", "--sigma", "0") == 2
-    assert "--sigma 0.0 must be positive" in capsys.readouterr().err
+@pytest.mark.parametrize(
+    "flags, message",
+    [
+        (["--sigma", "0"], "--sigma 0.0 must be a positive finite number"),
+        (["--sigma", "1e-200"], "gives gamma = inf"),
+        (["--gamma", "inf"], "--gamma inf must be a positive finite number"),
+        (["--C", "inf"], "--C inf must be a positive finite number"),
+        (["--C", "-1"], "--C -1.0 must be a positive finite number"),
+        (["--seed", "-5"], "--seed -5 must be a whole number"),
+        (["--test-size", "0.001"], "each side of the split needs at least one row of each of the 3 classes"),
+        (["--test-size", "1.5"], "must be a fraction between 0 and 1"),
+    ],
+    ids=["sigma-zero", "sigma-underflow", "gamma-inf", "c-inf", "c-negative", "seed-negative", "tiny-holdout", "big-holdout"],
+)
+def test_train_refuses_unusable_settings_with_one_line(tmp_path, demo_csv, capsys, flags, message):
+    assert _train(demo_csv, tmp_path / "b", *flags) == 2
+    err = capsys.readouterr().err
+    assert message in err and "Traceback" not in err and err.count("\n") == 1
+    assert not (tmp_path / "b").exists()
+
+
+def test_train_checks_the_name_before_searching(tmp_path, demo_csv, capsys):
+    assert main(["train", str(demo_csv), "--target", TARGET, "--name", "../x", "--version", "1", "--out", str(tmp_path / "b")]) == 2
+    assert "model name '../x' is not allowed" in capsys.readouterr().err
+
+
+def test_train_into_a_path_below_a_file_is_one_line(tmp_path, demo_csv, capsys):
+    blocker = tmp_path / "afile"
+    blocker.write_text("x")
+    assert _train(demo_csv, blocker / "b", "--gamma", "0.1", "--C", "1") == 2
+    err = capsys.readouterr().err
+    assert str(blocker) in err and "Traceback" not in err
 
 
 def test_train_refuses_an_empty_file(tmp_path, capsys):

@@ -193,9 +193,19 @@ def test_preview_prints_flips_and_refusals_of_a_csv(capsys, store_dir, tmp_path)
 def test_preview_of_a_malformed_csv_exits_2_naming_the_row(capsys, store_dir, tmp_path):
     rbfgate(capsys, "activate", "iris", "1.0.0", "--store", store_dir, "--reason", "first")
     inputs = tmp_path / "recent.csv"
-    inputs.write_text(",".join(FEATURES) + "\n1,2,3\n")
+    inputs.write_text(",".join(FEATURES) + "\n1,2,3,4,5\n")
     code, _, err = rbfgate(capsys, "preview", "iris", "1.1.0", "--store", store_dir, "--inputs", inputs)
     assert code == 2 and "row 1" in err
+
+
+def test_preview_reads_a_csv_as_score_does_ignoring_extra_columns(capsys, store_dir, tmp_path):
+    """An id column is ignored and a short row is refused as missing, exactly like `rbfgate score`."""
+    rbfgate(capsys, "activate", "iris", "1.0.0", "--store", store_dir, "--reason", "first")
+    inputs = tmp_path / "recent.csv"
+    inputs.write_text("id," + ",".join(FEATURES) + "\nA,5.1,3.5,1.4,0.2\nB,5.1,3.5\n")
+    code, out, _ = rbfgate(capsys, "preview", "iris", "1.1.0", "--store", store_dir, "--inputs", inputs)
+    assert code == 0
+    assert "refused by both: 1" in out
 
 
 def test_keygen_sign_trust_and_a_signed_store_end_to_end(capsys, tmp_path, bundles):

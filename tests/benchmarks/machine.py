@@ -1,0 +1,120 @@
+"""What this machine can do: BLAS dgemm and numpy exp throughput, measured in the same run.
+
+These are the ceilings against which the scorer's achieved rate is read: per
+(row, support vector) pair the scorer does one product term of length f + 2
+(2 (f + 2) floating-point operations in dgemm), one exp, and a few cheap
+passes over the kernel block.
+"""
+
+from __future__ import annotations
+
+import os
+import platform
+from contextlib import contextmanager
+from dataclasses import asdict, dataclass
+
+import numpy as np
+
+from .timing import median_seconds
+
+__all__ = ["MachineLimits", "blas_threads", "describe_machine", "measure_limits"]
+
+
+@dataclass(frozen=True)
+class MachineLimits:
+    """Measured throughputs at one BLAS thread setting.
+
+    dgemm_gflops:        square 1024 x 1024 x 1024 product, 1e9 flop/s
+    dgemm_thin_gflops:   the scorer's shape, (rows x (f + 2)) @ ((f + 2) x n_sv), 1e9 flop/s
+    exp_per_second:      np.exp in place on a 4 MiB float64 block, values per second
+    """
+
+    threads: str
+    dgemm_gflops: float
+    dgemm_thin_gflops: float
+    exp_per_second: float
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+@contextmanager
+def blas_threads(limit: int | None):
+    """Limit BLAS (and OpenMP) threads inside the block; None keeps the default."""
+    if limit is None:
+        yield
+        return
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=limit):
+        yield
+
+
+def measure_limits(threads: int | None, budget: float = 1.0) -> MachineLimits:
+    rng = np.random.default_rng(1)
+    with blas_threads(threads):
+        square = rng.normal(size=(1024, 1024))
+        out = np.empty_like(square)
+        seconds = median_seconds(lambda: np.matmul(square, square, out=out), budget=budget)
+        dgemm = 2 * 1024**3 / seconds / 1e9
+        thin_left, thin_right = rng.normal(size=(52, 12)), rng.normal(size=(12, 10_000))
+        thin_out = np.empty((52, 10_000))
+        seconds = median_seconds(lambda: np.matmul(thin_left, thin_right, out=thin_out), budget=budget)
+        thin = 2 * 52 * 12 * 10_000 / seconds / 1e9
+        block = -rng.random(size=(4 << 20) // 8)
+        work = np.empty_like(block)
+
+        def exp_in_place():
+            np.copyto(work, block)
+            np.exp(work, out=work)
+
+        copy_seconds = median_seconds(lambda: np.copyto(work, block), budget=budget / 2)
+        seconds = median_seconds(exp_in_place, budget=budget) - copy_seconds
+    return MachineLimits(
+        threads="1" if threads == 1 else f"default ({_default_threads()})",
+        dgemm_gflops=dgemm,
+        dgemm_thin_gflops=thin,
+        exp_per_second=len(block) / seconds,
+    )
+
+
+def describe_machine() -> dict:
+    """CPU model, core count, memory, library versions and the BLAS in use."""
+    import sklearn
+    from threadpoolctl import threadpool_info
+
+    cpu = platform.processor() or platform.machine()
+    try:
+        with open("/proc/cpuinfo", encoding="utf-8") as info:
+            for line in info:
+                if line.startswith("model name"):
+                    cpu = line.split(":", 1)[1].strip()
+                    break
+    except OSError:
+        pass
+    memory = None
+    try:
+        with open("/proc/meminfo", encoding="utf-8") as info:
+            memory = round(int(info.readline().split()[1]) / 2**20, 1)
+    except (OSError, ValueError, IndexError):
+        pass
+    blas = [f"{entry.get('internal_api')} {entry.get('version')} ({entry.get('architecture')}, "
+            f"{entry.get('num_threads')} threads) for {entry.get('prefix')}"
+            for entry in threadpool_info() if entry.get("user_api") == "blas"]
+    return {
+        "cpu": cpu,
+        "cores": os.cpu_count(),
+        "memory_gib": memory,
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "scikit_learn": sklearn.__version__,
+        "blas": blas,
+        "openblas_num_threads_env": os.environ.get("OPENBLAS_NUM_THREADS"),
+    }
+
+
+def _default_threads() -> int:
+    from threadpoolctl import threadpool_info
+
+    counts = [entry["num_threads"] for entry in threadpool_info() if entry.get("user_api") == "blas"]
+    return max(counts) if counts else 1

@@ -1,0 +1,215 @@
+"""The results as a Markdown table, a PNG plot and a printed summary, with the targets of issue 6."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+__all__ = ["print_summary", "targets", "write_markdown", "write_plot"]
+
+
+def targets(results: dict) -> list[tuple[str, str, bool]]:
+    """(target, measured, met) for every target whose part was run; ratios use rbfgate with one BLAS thread."""
+    rows = []
+    scorer = results.get("scorer")
+    if scorer:
+        for size, wanted in ((10000, 10.0), (1, 5.0)):
+            cases = [row for row in scorer if row["rows"] == size]
+            if cases:
+                worst = min(row["ratio_1thread"] for row in cases)
+                best = max(row["ratio_1thread"] for row in cases)
+                rows.append((f"scorer >= {wanted:g}x scikit-learn, {size:,}-row batches (every model)",
+                             f"x{worst:.1f} to x{best:.1f}", worst >= wanted))
+        identical = all(row["identical"] for row in scorer)
+        worst_error = max(row["max_decision_error"] for row in scorer)
+        rows.append(("identical results (labels equal, decisions within 1e-9 x max(1, |ref|))",
+                     f"{'all' if identical else 'NOT all'} cases; largest error {worst_error:.2g} of the tolerance",
+                     identical))
+    service = results.get("service")
+    if service:
+        ours = _service_row(service, "rbfgate", 1, 1)
+        theirs = _service_row(service, "reference", 1, 1)
+        if ours and theirs:
+            ratio = ours["requests_per_second"] / theirs["requests_per_second"]
+            rows.append(("service, 1 worker, 1 record, 8 connections: >= 5x the reference's requests/s",
+                         f"x{ratio:.1f} ({ours['requests_per_second']:.0f} vs {theirs['requests_per_second']:.0f} req/s)",
+                         ratio >= 5.0))
+            rows.append(("... p99 <= 10 ms", f"{ours['p99_ms']:.2f} ms (worst round {ours['worst_p99_ms']:.2f} ms)",
+                         ours["worst_p99_ms"] <= 10.0))
+            errors = sum(row["non_2xx"] for row in service if row["server"] == "rbfgate")
+            rows.append(("... no non-2xx answers (every rbfgate run)", f"{errors}", errors == 0))
+    load = results.get("load")
+    if load:
+        rows.append((f"{load['n_support']:,} x {load['features']} bundle loads and self-tests in <= 0.5 s",
+                     f"{load['total_seconds']:.3f} s", load["total_seconds"] <= 0.5))
+    for switch in results.get("switch", []):
+        rows.append((f"switch visible <= 1 s after `rbfgate activate` returns ({switch['bundle']} bundle)",
+                     f"median {switch['median_visible']:.2f} s, max {switch['max_visible']:.2f} s",
+                     switch["max_visible"] <= 1.0))
+    return rows
+
+
+def write_markdown(results: dict, path: Path) -> None:
+    lines = ["# rbfgate benchmark results", ""]
+    machine = results["machine"]
+    lines += [
+        f"Run {results['started']} to {results['finished']} with `python3 -m tests.benchmarks.run`. "
+        f"Machine: {machine['cpu']}, {machine['cores']} cores, {machine['memory_gib']} GiB; Python {machine['python']}, "
+        f"numpy {machine['numpy']}, scikit-learn {machine['scikit_learn']}; BLAS: {'; '.join(machine['blas'])}. "
+        "Absolute numbers hold for this machine only; the ratios, measured in the same run, are the claim.", "",
+        "## Targets", "", "| target | measured | met |", "| --- | --- | --- |",
+    ]
+    lines += [f"| {name} | {measured} | {'yes' if met else '**no**'} |" for name, measured, met in targets(results)]
+    lines += ["", "## Machine limits (measured in this run)", "",
+              "| BLAS threads | dgemm 1024^3 (GFLOP/s) | dgemm, scorer's shape 52x12 @ 12x10000 (GFLOP/s) | np.exp (1e9 values/s) |",
+              "| --- | --- | --- | --- |"]
+    for limit in results["limits"].values():
+        lines.append(f"| {limit['threads']} | {limit['dgemm_gflops']:.1f} | {limit['dgemm_thin_gflops']:.1f} | "
+                     f"{limit['exp_per_second'] / 1e9:.2f} |")
+    if results.get("scorer"):
+        lines += ["", "## Scorer: scikit-learn `decision_function` vs rbfgate `load_bundle(...).score(X)`", "",
+                  "Same fitted StandardScaler + SVC, same rows; medians of repeated, alternated runs. "
+                  "Operations = rows x support vectors x features. Rate = rows x support vectors per second "
+                  "(rbfgate, 1 BLAS thread). Floor = time at the measured one-thread dgemm (scorer's shape) "
+                  "and exp limits, doing nothing else; floor / rbfgate is the fraction of the machine's limit reached. "
+                  "Error = largest |rbfgate - scikit-learn| as a fraction of the 1e-9 x max(1, |ref|) tolerance.", "",
+                  "| SV | features | rows | operations | scikit-learn | rbfgate 1 thread | rbfgate default threads | "
+                  "ratio 1 thread | ratio default | rate (1e9/s) | floor / rbfgate | identical (error) |",
+                  "| ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- |"]
+        for row in results["scorer"]:
+            lines.append(
+                f"| {row['n_support']:,} | {row['features']} | {row['rows']:,} | {row['operations']:.2g} | "
+                f"{_time(row['sklearn_seconds'])} | {_time(row['rbfgate_1thread_seconds'])} | "
+                f"{_time(row['rbfgate_default_seconds'])} | **x{row['ratio_1thread']:.1f}** | x{row['ratio_default']:.1f} | "
+                f"{row['kernel_rate_1thread'] / 1e9:.3f} | {row['floor_seconds'] / row['rbfgate_1thread_seconds']:.0%} | "
+                f"{'yes' if row['identical'] else '**no**'} ({row['max_decision_error']:.2g}) |")
+    if results.get("service"):
+        model = results["service_model"]
+        lines += ["", "## Service: `rbfgate serve` vs a FastAPI + joblib + pydantic reference endpoint", "",
+                  f"Model: StandardScaler + SVC with {model['n_support']:,} support vectors x {model['features']} "
+                  "features. Load: wrk, 1 thread, 8 connections, alternated A B A B; requests/s over all rounds, "
+                  "latency percentiles are medians over the rounds (worst round in brackets). rbfgate validates "
+                  "every value against its allowed range, returns nearest-support diagnostics, writes a JSON log "
+                  "line and updates Prometheus metrics per request; the reference checks types only.", "",
+                  "| workers | records/request | rbfgate req/s | reference req/s | ratio | rbfgate p50 / p99 (ms) | "
+                  "reference p50 / p99 (ms) | non-2xx (rbfgate / reference) |",
+                  "| ---: | ---: | ---: | ---: | ---: | --- | --- | --- |"]
+        for workers, records in sorted({(row["workers"], row["records"]) for row in results["service"]}):
+            ours = _service_row(results["service"], "rbfgate", workers, records)
+            theirs = _service_row(results["service"], "reference", workers, records)
+            lines.append(
+                f"| {workers} | {records} | {ours['requests_per_second']:.0f} | {theirs['requests_per_second']:.0f} | "
+                f"**x{ours['requests_per_second'] / theirs['requests_per_second']:.1f}** | "
+                f"{ours['p50_ms']:.2f} / {ours['p99_ms']:.2f} ({ours['worst_p99_ms']:.2f}) | "
+                f"{theirs['p50_ms']:.2f} / {theirs['p99_ms']:.2f} ({theirs['worst_p99_ms']:.2f}) | "
+                f"{ours['non_2xx']} / {theirs['non_2xx']} |")
+    if results.get("load"):
+        load = results["load"]
+        lines += ["", "## Load and switch", "",
+                  f"Bundle of {load['n_support']:,} support vectors x {load['features']} features "
+                  f"({load['bundle_bytes'] / 2**20:.1f} MiB on disk, arrays written directly, golden vectors from an "
+                  "independent numpy implementation), in a fresh interpreter, median of "
+                  f"{load['runs']} interpreters: load (read, SHA-256, parse, build the scorer) "
+                  f"{load['load_seconds'] * 1e3:.0f} ms, self-test {load['self_test_seconds'] * 1e3:.0f} ms, "
+                  f"total {load['total_seconds'] * 1e3:.0f} ms; resident memory +{load['rss_delta_bytes'] / 2**20:.0f} MiB.",
+                  ""]
+    if results.get("switch"):
+        lines += ["| bundle | poll interval | `rbfgate activate` ran (s) | first answer from the new version, after the CLI returned (s) |",
+                  "| --- | ---: | --- | --- |"]
+        for switch in results["switch"]:
+            lines.append(f"| {switch['bundle']} | {switch['poll_seconds']:g} s | "
+                         f"{', '.join(f'{value:.2f}' for value in switch['cli_seconds'])} | "
+                         f"{', '.join(f'{value:.2f}' for value in switch['visible_after_cli'])} |")
+    path.write_text("\n".join(lines) + "\n")
+
+
+def write_plot(results: dict, path: Path) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    panels = [part for part in ("scorer", "service") if results.get(part)]
+    if not panels:
+        return
+    figure, axes = plt.subplots(1, len(panels), figsize=(7 * len(panels), 5.2), squeeze=False)
+    for axis, part in zip(axes[0], panels):
+        if part == "scorer":
+            _plot_scorer(axis, results["scorer"])
+        else:
+            _plot_service(axis, results["service"])
+    machine = results["machine"]
+    figure.suptitle(f"rbfgate vs scikit-learn, measured {results['started']} on {machine['cpu']}, "
+                    f"{machine['cores']} cores (ratios are the claim)", fontsize=11)
+    figure.tight_layout()
+    figure.savefig(path, dpi=110)
+    plt.close(figure)
+
+
+def _plot_scorer(axis, rows: list[dict]) -> None:
+    models = sorted({(row["n_support"], row["features"]) for row in rows})
+    for n_support, features in models:
+        points = sorted((row["rows"], row["ratio_1thread"]) for row in rows
+                        if (row["n_support"], row["features"]) == (n_support, features))
+        axis.plot([x for x, _ in points], [y for _, y in points], marker="o",
+                  label=f"{n_support:,} SV x {features} features")
+    for level, text in ((10, "target 10x (10,000 rows)"), (5, "target 5x (1 row)")):
+        axis.axhline(level, color="grey", linestyle="--", linewidth=0.8)
+        axis.text(1, level * 1.04, text, fontsize=8, color="grey")
+    axis.axhline(1, color="black", linewidth=0.6)
+    axis.set_xscale("log")
+    axis.set_yscale("log")
+    axis.set_xlabel("rows per call (batch size)")
+    axis.set_ylabel("speed-up: scikit-learn time / rbfgate time (1 BLAS thread)")
+    axis.set_title("Scorer: same pipeline, identical results")
+    axis.legend(fontsize=8)
+    axis.grid(True, which="both", alpha=0.3)
+
+
+def _plot_service(axis, rows: list[dict]) -> None:
+    keys = sorted({(row["workers"], row["records"]) for row in rows})
+    width = 0.38
+    for offset, server, color in ((-width / 2, "rbfgate", "tab:blue"), (width / 2, "reference", "tab:orange")):
+        values = [_service_row(rows, server, workers, records)["requests_per_second"] for workers, records in keys]
+        bars = axis.bar([index + offset for index in range(len(keys))], values, width, label=server, color=color)
+        for bar, value in zip(bars, values):
+            axis.text(bar.get_x() + bar.get_width() / 2, value * 1.05, f"{value:.0f}", ha="center", fontsize=7)
+    axis.set_xticks(range(len(keys)))
+    axis.set_xticklabels([f"{workers} worker{'s' if workers > 1 else ''}\n{records} record{'s' if records > 1 else ''}"
+                          for workers, records in keys], fontsize=8)
+    axis.set_yscale("log")
+    axis.set_ylabel("requests per second (wrk, 8 connections)")
+    axis.set_title("Service: rbfgate serve vs FastAPI + joblib reference")
+    axis.legend(fontsize=8)
+    axis.grid(True, axis="y", which="both", alpha=0.3)
+
+
+def print_summary(results: dict, log=print) -> None:
+    log("")
+    log("summary (ratios measured in this run; rbfgate with one BLAS thread):")
+    for row in results.get("scorer", []):
+        log(f"  scorer {row['n_support']:>6} SV x {row['features']:>2} features, {row['rows']:>6} rows: "
+            f"x{row['ratio_1thread']:.1f} (default threads x{row['ratio_default']:.1f}), identical {row['identical']}")
+    service = results.get("service", [])
+    for workers, records in sorted({(row["workers"], row["records"]) for row in service}):
+        ours = _service_row(service, "rbfgate", workers, records)
+        theirs = _service_row(service, "reference", workers, records)
+        log(f"  service {workers} worker(s), {records:>4} record(s): x{ours['requests_per_second'] / theirs['requests_per_second']:.1f} "
+            f"({ours['requests_per_second']:.0f} vs {theirs['requests_per_second']:.0f} req/s), "
+            f"p99 {ours['p99_ms']:.2f} vs {theirs['p99_ms']:.2f} ms")
+    for name, measured, met in targets(results):
+        log(f"  [{'met' if met else 'MISSED'}] {name}: {measured}")
+
+
+def _service_row(rows: list[dict], server: str, workers: int, records: int) -> dict | None:
+    for row in rows:
+        if (row["server"], row["workers"], row["records"]) == (server, workers, records):
+            return row
+    return None
+
+
+def _time(seconds: float) -> str:
+    if seconds >= 1:
+        return f"{seconds:.2f} s"
+    if seconds >= 1e-3:
+        return f"{seconds * 1e3:.2f} ms"
+    return f"{seconds * 1e6:.0f} µs"

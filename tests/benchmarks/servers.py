@@ -1,0 +1,110 @@
+"""Start and stop the two servers under test on free 127.0.0.1 ports: ``rbfgate serve`` and the reference.
+
+Each server runs in its own process group (so its workers stop with it), with
+its output sent to files in a work directory, and is stopped by the code that
+started it (SIGTERM, then SIGKILL of the group after a timeout).
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+from pathlib import Path
+
+__all__ = ["Server", "free_port", "rbfgate_server", "reference_server"]
+
+_START_SECONDS = 120.0
+_STOP_SECONDS = 30.0
+_REPO = Path(__file__).resolve().parents[2]
+
+
+def free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+        probe.bind(("127.0.0.1", 0))
+        return probe.getsockname()[1]
+
+
+class Server:
+    """A server process; ``ready_path`` is a GET route that answers 200 once it can serve."""
+
+    def __init__(self, name: str, args: list[str], port: int, workdir: Path, ready_path: str,
+                 environ: dict[str, str]) -> None:
+        self.name = name
+        self.args = args
+        self.port = port
+        self.url = f"http://127.0.0.1:{port}"
+        self.ready_path = ready_path
+        self.environ = environ
+        self.stdout_path = workdir / f"{name}-{port}.out"
+        self.stderr_path = workdir / f"{name}-{port}.err"
+        self.process: subprocess.Popen | None = None
+
+    def __enter__(self) -> "Server":
+        with open(self.stdout_path, "wb") as stdout, open(self.stderr_path, "wb") as stderr:
+            self.process = subprocess.Popen(self.args, stdout=stdout, stderr=stderr, env=self.environ,
+                                            cwd=_REPO, start_new_session=True)
+        try:
+            self._wait_until_ready()
+        except BaseException:
+            self.__exit__()
+            raise
+        return self
+
+    def __exit__(self, *exc_info) -> None:
+        if self.process is None or self.process.poll() is not None:
+            return
+        self.process.send_signal(signal.SIGTERM)
+        try:
+            self.process.wait(_STOP_SECONDS)
+        except subprocess.TimeoutExpired:
+            os.killpg(self.process.pid, signal.SIGKILL)
+            self.process.wait(_STOP_SECONDS)
+
+    def _wait_until_ready(self) -> None:
+        deadline = time.monotonic() + _START_SECONDS
+        while time.monotonic() < deadline:
+            if self.process.poll() is not None:
+                raise RuntimeError(f"{self.name} exited with {self.process.returncode}: "
+                                   f"{self.stderr_path.read_text()[-2000:]}")
+            try:
+                with urllib.request.urlopen(self.url + self.ready_path, timeout=5) as response:
+                    if response.status == 200:
+                        return
+            except (urllib.error.URLError, OSError):
+                pass
+            time.sleep(0.1)
+        raise RuntimeError(f"{self.name} did not become ready within {_START_SECONDS} s")
+
+
+def _clean_environ(extra: dict[str, str]) -> dict[str, str]:
+    environ = {key: value for key, value in os.environ.items()
+               if key not in ("PROMETHEUS_MULTIPROC_DIR", "RBFGATE_TOKENS", "RBFGATE_STORE")}
+    environ["PYTHONPATH"] = os.pathsep.join(filter(None, [str(_REPO), environ.get("PYTHONPATH")]))
+    environ.update(extra)
+    return environ
+
+
+def rbfgate_server(store: Path, workers: int, workdir: Path, extra_environ: dict[str, str] | None = None,
+                   *extra_args: str) -> Server:
+    """``rbfgate serve`` on ``store``; ready once /readyz says every active model is loaded."""
+    port = free_port()
+    args = [sys.executable, "-m", "model_store", "serve", "--store", str(store), "--host", "127.0.0.1",
+            "--port", str(port), "--workers", str(workers), *extra_args]
+    return Server(f"rbfgate-{workers}w", args, port, workdir, "/readyz", _clean_environ(extra_environ or {}))
+
+
+def reference_server(model_path: Path, features: list[str], workers: int, workdir: Path,
+                     extra_environ: dict[str, str] | None = None) -> Server:
+    """The reference app under uvicorn, access log off (the reference is given every advantage)."""
+    port = free_port()
+    args = [sys.executable, "-m", "uvicorn", "tests.benchmarks.reference_app:app", "--host", "127.0.0.1",
+            "--port", str(port), "--workers", str(workers), "--no-access-log", "--log-level", "warning"]
+    environ = _clean_environ({"REFERENCE_MODEL": str(model_path), "REFERENCE_FEATURES": ",".join(features),
+                              **(extra_environ or {})})
+    return Server(f"reference-{workers}w", args, port, workdir, "/docs", environ)

@@ -1,0 +1,137 @@
+"""Service benchmark: ``rbfgate serve`` against the reference endpoint, same model, same load.
+
+For each worker count (1, then 2) both servers are started side by side on
+the same machine, each is checked once per request body (200, one result per
+record, the same labels and decisions as the other), and then wrk runs A B A B
+(rbfgate, reference, rbfgate, reference, ...) for each batch size. Requests/s
+is the total over all rounds; p50/p99 are the medians of the rounds' values.
+Every record sent lies inside the bundle's allowed ranges, so rbfgate scores
+all of them (a refusal would be a non-2xx or a different answer).
+"""
+
+from __future__ import annotations
+
+import json
+import statistics
+import urllib.request
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from model_store.bundle import GOLDEN_TOLERANCE, load_bundle
+from model_store.store import Store
+
+from .load_generator import LoadResult, ensure_wrk, run_wrk
+from .models import CachedModel
+from .servers import reference_server, rbfgate_server
+
+__all__ = ["ServiceResult", "bench_service", "publish_model"]
+
+
+@dataclass(frozen=True)
+class ServiceResult:
+    server: str  # "rbfgate" or "reference"
+    workers: int
+    records: int
+    connections: int
+    rounds: list[LoadResult]
+
+    @property
+    def requests_per_second(self) -> float:
+        return sum(run.requests for run in self.rounds) / sum(run.seconds for run in self.rounds)
+
+    @property
+    def p50_ms(self) -> float:
+        return statistics.median(run.p50_ms for run in self.rounds)
+
+    @property
+    def p99_ms(self) -> float:
+        return statistics.median(run.p99_ms for run in self.rounds)
+
+    @property
+    def worst_p99_ms(self) -> float:
+        return max(run.p99_ms for run in self.rounds)
+
+    @property
+    def non_2xx(self) -> int:
+        return sum(run.non_2xx + run.socket_errors for run in self.rounds)
+
+    def to_dict(self) -> dict:
+        return {
+            "server": self.server, "workers": self.workers, "records": self.records, "connections": self.connections,
+            "requests_per_second": self.requests_per_second, "p50_ms": self.p50_ms, "p99_ms": self.p99_ms,
+            "worst_p99_ms": self.worst_p99_ms, "non_2xx": self.non_2xx, "rounds": [run.to_dict() for run in self.rounds],
+        }
+
+
+def publish_model(store_root: Path, bundle_path: Path) -> tuple[str, str]:
+    """Publish and activate ``bundle_path`` in the store at ``store_root`` (created when missing)."""
+    bundle = load_bundle(bundle_path)
+    store = Store(store_root, create=True)
+    store.publish(bundle_path, actor="benchmark")
+    store.activate(bundle.name, bundle.version, reason="benchmark", actor="benchmark")
+    return bundle.name, bundle.version
+
+
+def bench_service(model: CachedModel, workdir: Path, *, workers_list: list[int], batch_sizes: list[int],
+                  connections: int, seconds: float, rounds: int, log=print) -> list[ServiceResult]:
+    wrk = ensure_wrk(log)
+    store_root = workdir / "service-store"
+    name, _ = publish_model(store_root, model.bundle_path)
+    bundle = load_bundle(model.bundle_path)
+    bodies = _write_bodies(workdir, bundle, model.reference, batch_sizes)
+    results = []
+    for workers in workers_list:
+        log(f"  {workers} worker(s): starting rbfgate serve and the reference endpoint")
+        with rbfgate_server(store_root, workers, workdir) as ours, \
+                reference_server(model.joblib_path, bundle.feature_names, workers, workdir) as theirs:
+            targets = {"rbfgate": f"{ours.url}/score/{name}", "reference": f"{theirs.url}/score"}
+            for records, body_path in bodies.items():
+                _check_answers(targets, body_path, records)
+                for target in targets.values():  # warm both (and every worker) before timing
+                    run_wrk(wrk, target, body_path, connections=connections, seconds=min(2.0, seconds))
+                measured = {server: [] for server in targets}
+                for _ in range(rounds):
+                    for server, url in targets.items():
+                        measured[server].append(run_wrk(wrk, url, body_path, connections=connections, seconds=seconds))
+                for server, runs in measured.items():
+                    result = ServiceResult(server, workers, records, connections, runs)
+                    results.append(result)
+                    log(f"    {server:>9}, {records:>4} record(s)/request: {result.requests_per_second:8.0f} req/s, "
+                        f"p50 {result.p50_ms:.2f} ms, p99 {result.p99_ms:.2f} ms, non-2xx {result.non_2xx}")
+    return results
+
+
+def _write_bodies(workdir: Path, bundle, reference: np.ndarray, batch_sizes: list[int]) -> dict[int, Path]:
+    """One body per batch size, from the model's own training rows (inside the allowed ranges)."""
+    low = np.array([feature.allowed[0] for feature in bundle.manifest.features])
+    high = np.array([feature.allowed[1] for feature in bundle.manifest.features])
+    rows = reference[np.all((reference >= low) & (reference <= high), axis=1)]
+    bodies = {}
+    for size in batch_sizes:
+        records = [dict(zip(bundle.feature_names, row)) for row in rows[:size].tolist()]
+        path = workdir / f"body-{size}.json"
+        path.write_text(json.dumps({"records": records}))
+        bodies[size] = path
+    return bodies
+
+
+def _check_answers(targets: dict[str, str], body_path: Path, records: int) -> None:
+    """Both servers answer 200 with one result per record, and the same labels and decisions."""
+    answers = {}
+    for server, url in targets.items():
+        request = urllib.request.Request(url, data=body_path.read_bytes(), headers={"Content-Type": "application/json"})
+        with urllib.request.urlopen(request, timeout=60) as response:
+            if response.status != 200:
+                raise RuntimeError(f"{server} answered {response.status} to {body_path.name}")
+            results = json.loads(response.read())["results"]
+        if len(results) != records:
+            raise RuntimeError(f"{server} returned {len(results)} results for {records} records")
+        answers[server] = results
+    ours, theirs = answers["rbfgate"], answers["reference"]
+    for index, (mine, reference) in enumerate(zip(ours, theirs)):
+        if mine.get("status") != "scored" or str(mine["label"]) != str(reference["label"]):
+            raise RuntimeError(f"record {index}: rbfgate {mine} disagrees with the reference {reference}")
+        if abs(mine["decision"] - reference["decision"]) > GOLDEN_TOLERANCE * max(1.0, abs(reference["decision"])):
+            raise RuntimeError(f"record {index}: decision {mine['decision']} vs reference {reference['decision']}")
