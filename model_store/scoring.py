@@ -14,7 +14,9 @@ For a row ``x`` (raw units) the scorer computes, in order:
 
 Rows are processed in chunks so that the kernel block (rows x support vectors
 float64) stays under ``KERNEL_BLOCK_BYTES`` (4 MiB, cache-sized) whatever the
-batch size. Nearest support vectors,
+batch size; bundles with more than 8,192 support vectors are also split into
+tiles of support vectors, so that a chunk keeps ``MIN_CHUNK_ROWS`` rows and the
+support matrix is not re-read for every few rows. Nearest support vectors,
 distances, percentiles and range checks came out bit-identical for batch
 sizes 1, 7, 100 and 10,000 (tests/bundle checks it). Decisions and
 probabilities may differ in the last bits (measured: up to 3e-14 relative),
@@ -35,11 +37,15 @@ import numpy as np
 
 from model_store.calibration import Calibrator
 
-__all__ = ["KERNEL_BLOCK_BYTES", "Scorer", "Scores"]
+__all__ = ["KERNEL_BLOCK_BYTES", "MIN_CHUNK_ROWS", "Scorer", "Scores"]
 
 # Small enough that the kernel block stays in the CPU cache between the passes over it
 # (exponent, argmax, clamp, exp, product); at least two rows per chunk, see score().
 KERNEL_BLOCK_BYTES = 4 << 20
+# Larger bundles are scored in tiles of support vectors so that a chunk still holds this many
+# rows: each tile of the support matrix is then read once per MIN_CHUNK_ROWS rows, not once per
+# handful of rows (a 100,000 x 50 bundle would otherwise stream 40 MB for every 5 rows).
+MIN_CHUNK_ROWS = 64
 
 
 @dataclass(frozen=True)
@@ -121,10 +127,14 @@ class Scorer:
         self.support_vectors = np.ascontiguousarray(support_vectors, dtype=np.float64)
         # -gamma d2 = [z, -gamma |z|^2, 1] . [2 gamma s, 1, -gamma |s|^2]: one matrix product
         # yields the kernel's exponent, with no extra passes over the block.
+        # Filled in place: column_stack and a transposed copy cost three passes over a
+        # 40 MB matrix for a 100,000 x 50 bundle (measured: 0.28 s of a 0.45 s load).
         support_sq = np.einsum("ij,ij->i", self.support_vectors, self.support_vectors)
-        self._support_augmented_t = np.ascontiguousarray(
-            np.column_stack([(2.0 * self.gamma) * self.support_vectors, np.ones(len(support_sq)), -self.gamma * support_sq]).T
-        )
+        n_features = self.support_vectors.shape[1]
+        self._support_augmented_t = np.empty((n_features + 2, len(support_sq)))
+        np.multiply(self.support_vectors.T, 2.0 * self.gamma, out=self._support_augmented_t[:n_features])
+        self._support_augmented_t[n_features] = 1.0
+        self._support_augmented_t[n_features + 1] = -self.gamma * support_sq
         boundaries = np.concatenate([[0], np.cumsum(support_per_class)])
         self.support_class = np.repeat(np.arange(self.n_classes), support_per_class)
         self._pair_coef = _pairwise_coefficients(np.asarray(dual_coef, np.float64), boundaries, self.pairs)
@@ -136,7 +146,8 @@ class Scorer:
         self.break_ties = break_ties
         self.calibrate_pairwise = calibrate_pairwise
         n_support = max(1, len(self.support_vectors))
-        self.rows_per_chunk = max(2, block_bytes // (8 * n_support))
+        self.support_per_tile = min(n_support, max(1, block_bytes // (8 * MIN_CHUNK_ROWS)))
+        self.rows_per_chunk = max(2, block_bytes // (8 * self.support_per_tile))
 
     @property
     def n_features(self) -> int:
@@ -166,7 +177,7 @@ class Scorer:
             # exactly -inf instead of the inf - inf = NaN the expanded form would give.
             augmented[far, :-2] = 0.0
             augmented[far, -2] = -np.inf
-        block = np.empty((min(n_rows, self.rows_per_chunk), len(self.support_vectors)))
+        block = np.empty((min(n_rows, self.rows_per_chunk), self.support_per_tile))
         # With a far row, BLAS may multiply its -inf by the zero padding of its kernels and raise
         # the invalid flag; the results are exact (-inf), so silence that one case.
         with np.errstate(invalid="ignore") if any_far else nullcontext():
@@ -178,12 +189,35 @@ class Scorer:
         return self._finish(raw, scaled, pairwise, nearest_index)
 
     def _score_chunk(self, augmented, block, pairwise_out, nearest_out) -> None:
-        np.matmul(augmented, self._support_augmented_t, out=block)  # -gamma d2
-        np.argmax(block, axis=1, out=nearest_out)
-        np.minimum(block, 0.0, out=block)  # d2 >= 0; rounding can make it slightly negative
-        np.exp(block, out=block)
-        np.matmul(block, self._pair_coef, out=pairwise_out)
+        n_support = self._support_augmented_t.shape[1]
+        if block.shape[1] >= n_support:  # every support vector in one tile: most bundles
+            np.matmul(augmented, self._support_augmented_t, out=block)  # -gamma d2
+            np.argmax(block, axis=1, out=nearest_out)
+            _kernel_in_place(block, block[np.arange(len(block)), nearest_out])
+            np.matmul(block, self._pair_coef, out=pairwise_out)
+        else:
+            self._score_tiles(augmented, block, pairwise_out, nearest_out)
         pairwise_out += self.intercepts
+
+    def _score_tiles(self, augmented, block, pairwise_out, nearest_out) -> None:
+        """One tile of support vectors at a time; the nearest one and the sums carried across tiles."""
+        n_rows, tile = block.shape
+        rows = np.arange(n_rows)
+        best = np.full(n_rows, -np.inf)
+        nearest_out[:] = 0  # what one argmax returns for a row whose exponents are all -inf
+        pairwise_out[:] = 0.0
+        flat = block.reshape(-1)
+        for start in range(0, self._support_augmented_t.shape[1], tile):
+            stop = min(start + tile, self._support_augmented_t.shape[1])
+            part = flat[: n_rows * (stop - start)].reshape(n_rows, stop - start)
+            np.matmul(augmented, self._support_augmented_t[:, start:stop], out=part)
+            local = np.argmax(part, axis=1)
+            value = part[rows, local]
+            closer = value > best  # strict: a tie keeps the earlier support vector, as one argmax would
+            nearest_out[closer] = local[closer] + start
+            best[closer] = value[closer]
+            _kernel_in_place(part, value)
+            pairwise_out += part @ self._pair_coef[start:stop]
 
     def _finish(self, raw, scaled, pairwise, nearest_index) -> Scores:
         binary = self.n_classes == 2
@@ -221,6 +255,15 @@ class Scorer:
             nearest_percentile=distance_percentile(nearest_distance, self.reference_quantiles),
             range_excess=range_excess(raw, self.allowed_low, self.allowed_high),
         )
+
+
+def _kernel_in_place(exponent: np.ndarray, row_max: np.ndarray) -> None:
+    """exp(min(exponent, 0)) in place; ``row_max`` (rows,) is each row's largest exponent."""
+    # d2 >= 0, but rounding can make it slightly negative: clamp, skipping the pass over the
+    # block when no exponent is positive (the common case; the result is the same).
+    if (row_max > 0).any():
+        np.minimum(exponent, 0.0, out=exponent)
+    np.exp(exponent, out=exponent)
 
 
 def _first_row(scores: Scores) -> Scores:

@@ -1,4 +1,4 @@
-"""Bundle commands: demo, train, export, score, inspect, verify.
+"""Bundle commands: train, export, score, inspect, verify, pack.
 
 scikit-learn and joblib are imported inside the export and train handlers
 only, so scoring and inspecting never load them.
@@ -35,6 +35,10 @@ def register(subparsers) -> None:
     verify = subparsers.add_parser("verify", help="check a bundle's checksums and replay its golden vectors")
     verify.add_argument("bundle", type=Path, help="bundle directory or .tar file")
     verify.set_defaults(handler=_verify)
+    pack = subparsers.add_parser("pack", help="write a bundle directory as its single-file .tar form")
+    pack.add_argument("bundle", type=Path, help="bundle directory")
+    pack.add_argument("--out", type=Path, required=True, metavar="FILE.tar", help="new archive file")
+    pack.set_defaults(handler=_pack)
 
 
 def _add_export(subparsers) -> None:
@@ -139,6 +143,21 @@ def _verify(args) -> int:
     print(f"{args.bundle}: checksums ok ({len(bundle.manifest.files)} files)")
     bundle.self_test()
     print(f"{args.bundle}: golden vectors ok ({len(bundle.manifest.golden.labels)} rows); digest {bundle.digest}")
+    return 0
+
+
+def _pack(args) -> int:
+    from model_store.archive import pack_directory
+
+    if not args.bundle.is_dir():
+        raise InputError(f"{args.bundle}: not a bundle directory; pack takes the directory form")
+    if args.out.exists():
+        raise InputError(f"{args.out}: already exists; choose a new --out file or remove it first")
+    bundle = load_bundle(args.bundle)
+    bundle.self_test()  # never ship a bundle that does not reproduce its model
+    pack_directory(args.bundle, args.out)
+    packed = load_bundle(args.out)
+    print(f"wrote {args.out}: {packed.name} {packed.version}, digest {packed.digest}")
     return 0
 
 

@@ -231,3 +231,16 @@ def test_missing_arguments_are_a_usage_error(command):
     with pytest.raises(SystemExit) as exit_info:
         main(command)
     assert exit_info.value.code == 2
+
+
+def test_pack_writes_the_single_file_form_with_the_same_digest(tmp_path, iris_calibrated, capsys):
+    bundle, _, X = iris_calibrated
+    out = tmp_path / "iris.tar"
+    assert main(["pack", bundle.source, "--out", str(out)]) == 0
+    from model_store import load_bundle
+
+    packed = load_bundle(out)
+    assert packed.digest == bundle.digest  # the digest is the canonical manifest's SHA-256
+    assert packed.score(X).labels.tolist() == bundle.score(X).labels.tolist()
+    assert main(["pack", bundle.source, "--out", str(out)]) == 2  # never overwrites
+    assert "already exists" in capsys.readouterr().err
