@@ -4,16 +4,23 @@ uvicorn closes idle keep-alive connections after ``timeout_keep_alive``, but it
 arms that timer only after a response: a client that opens a connection and
 sends its request line, headers or body a byte at a time (slowloris) keeps the
 connection, and a file descriptor, for as long as it likes, and enough of them
-exhaust the worker's descriptors so that nobody else gets in. ``ReadDeadline``
+exhaust the worker's descriptors so that nobody else gets in. ``GuardedH11Protocol``
 gives every request ``read_timeout`` seconds, counted from the moment the
 connection opens or the previous response ends, to arrive completely (request
 line, headers and body); a connection still short of a whole request then is
 closed. A request whose body was cut off this way ends in the app as a client
 disconnect (``service.body`` answers it with 408, which the log records).
 
-Headers are also capped in size: h11 refuses a request whose line and headers
-pass ``MAX_HEADER_BYTES`` before they are complete (uvicorn answers 400 and
-closes), so memory per connection stays bounded.
+Headers are also capped in size. h11 refuses a request whose line and headers
+pass ``MAX_HEADER_BYTES`` before they are complete (uvicorn answers 400, plain
+text, and closes), so memory per connection stays bounded; a header block
+that arrives whole in one read slips past that check, so ``HeaderSizeLimit``
+refuses it in the app with 431 (RFC 6585 section 5) problem details.
+
+When h11 refuses a request midway (say a malformed chunk of a body the app is
+already reading), uvicorn answers 400 and closes while the app is still at
+work; the app's own answer then hits a closed connection and is logged as an
+internal error. ``GuardedH11Protocol`` tells the app its client is gone instead.
 
 The h11 implementation is used whatever else is installed, so these limits
 hold on every installation.
@@ -26,12 +33,16 @@ import functools
 from collections.abc import Callable
 
 import h11
+from starlette.types import ASGIApp, Receive, Scope, Send
 from uvicorn.protocols.http.h11_impl import H11Protocol
 
+from service.problems import ServiceProblem, problem_response
+
 __all__ = [
+    "GuardedH11Protocol",
+    "HeaderSizeLimit",
     "KEEP_ALIVE_SECONDS",
     "MAX_HEADER_BYTES",
-    "ReadDeadline",
     "protocol_factory",
 ]
 
@@ -45,7 +56,7 @@ MAX_HEADER_BYTES = 16 * 1024
 _WAITING_FOR_REQUEST = (h11.IDLE, h11.SEND_BODY)
 
 
-class ReadDeadline(H11Protocol):
+class GuardedH11Protocol(H11Protocol):
     """uvicorn's h11 protocol with a per-request read deadline of ``read_timeout`` seconds."""
 
     def __init__(self, *args, read_timeout: float, **kwargs) -> None:
@@ -66,6 +77,16 @@ class ReadDeadline(H11Protocol):
         self._cancel_read_deadline()
         super().connection_lost(exc)
 
+    def send_400_response(self, msg: str) -> None:
+        cycle = self.cycle
+        if cycle is not None and not cycle.response_complete:
+            cycle.disconnected = True  # the app's answer is dropped; its reads see a disconnect
+            cycle.message_event.set()
+            if cycle.response_started:  # too late for a 400: just end the connection
+                self.transport.close()
+                return
+        super().send_400_response(msg)
+
     def _arm_read_deadline(self) -> None:
         self._cancel_read_deadline()
         self._read_deadline = self.loop.call_later(self.read_timeout, self._on_read_deadline)
@@ -84,6 +105,26 @@ class ReadDeadline(H11Protocol):
         self.transport.close()  # connection_lost tells a waiting app that the client is gone
 
 
-def protocol_factory(read_timeout: float) -> Callable[..., ReadDeadline]:
+def protocol_factory(read_timeout: float) -> Callable[..., GuardedH11Protocol]:
     """What ``uvicorn.run(http=...)`` takes: the protocol with this deadline (picklable for workers)."""
-    return functools.partial(ReadDeadline, read_timeout=read_timeout)
+    return functools.partial(GuardedH11Protocol, read_timeout=read_timeout)
+
+
+class HeaderSizeLimit:
+    """ASGI middleware: 431 for a request whose target and headers exceed ``limit`` bytes."""
+
+    def __init__(self, app: ASGIApp, limit: int = MAX_HEADER_BYTES) -> None:
+        self.app = app
+        self.limit = limit
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] == "http":
+            size = len(scope.get("raw_path") or b"") + sum(len(name) + len(value) + 4 for name, value in scope["headers"])
+            if size > self.limit:
+                problem = ServiceProblem(
+                    431, "headers-too-large", "Request header fields too large",
+                    f"the request target and headers hold {size} bytes; the limit is {self.limit}",
+                )
+                await problem_response(problem)(scope, receive, send)
+                return
+        await self.app(scope, receive, send)

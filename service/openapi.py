@@ -5,258 +5,45 @@ The routes read their bodies themselves (a hard size cap, then strict JSON, see
 their signatures. This module states them: a request body and the response of
 every status a route can answer, each error as ``application/problem+json``
 (RFC 9457), the bearer scheme (RFC 6750) and the name rule of the path
-parameters. The pydantic models here are documentation only; nothing on the
-request path validates through them, so documenting costs no time per request.
-The fuzzing tests (tests/reliability) check the running service against this
+parameters. The body shapes live in ``service.openapi_models``. The fuzzing tests (tests/reliability) check the running service against this
 document, so it cannot drift from what the routes do.
 """
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Any
 
 from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel
 from pydantic.json_schema import models_json_schema
 
-from model_store.manifest import FeatureSpec, FileEntry, KernelSpec
 from model_store.naming import MAX_NAME_LENGTH
-from model_store.refusal import REASONS
 from service.auth import ACCESS_RULES
+from service.openapi_models import (
+    DOCUMENTED_MODELS,
+    NAME_PATTERN,
+    ActivateRequest,
+    Alive,
+    History,
+    ModelDetail,
+    ModelList,
+    Preview,
+    PreviewRequest,
+    Readiness,
+    RollbackRequest,
+    ScoreRequest,
+    ScoreResponse,
+    Switched,
+    VersionDetail,
+)
 from service.problems import PROBLEM_MEDIA_TYPE
 
 __all__ = ["OPENAPI_PATH", "add_openapi_route"]
 
 OPENAPI_PATH = "/openapi.json"
-# model_store.naming.check_name; its "no '..'" rule is not expressed (a name with '..' is a 404).
-_NAME_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._-]*$"
 _REF = "#/components/schemas/{model}"
-# Printable (Python's str.isprintable) has no portable JSON Schema pattern; a reason with a
-# control character or only spaces is refused with 422, which the document lists.
-_REASON = "one line of printable text, not only spaces, kept in the history"
 
-
-class _Doc(BaseModel):
-    model_config = ConfigDict(extra="forbid")
-
-
-Label = str | int  # class labels keep their type: JSON strings or integers
-
-
-class Problem(BaseModel):
-    """RFC 9457 problem details; extension members (``problems``, ``results``...) vary by problem."""
-
-    model_config = ConfigDict(extra="allow")
-    type: str
-    title: str
-    status: int
-    detail: str
-
-
-class RecordProblem(_Doc):
-    feature: str
-    value: Any = Field(description="the value sent (a nested value or over-long text is abbreviated)")
-    reason: Literal[REASONS]  # type: ignore[valid-type]
-    allowed: tuple[float, float] | None = Field(description="the allowed range [low, high], inclusive")
-
-
-class NearestSupport(_Doc):
-    distance: float = Field(ge=0, description="Euclidean distance in the model's scaled space")
-    similarity: float = Field(ge=0, le=1, description="exp(-gamma distance^2)")
-    label: Label
-    index: int = Field(ge=0)
-    percentile: float = Field(ge=0, le=100, description="of the distance among the reference rows")
-
-
-class ScoredResult(_Doc):
-    status: Literal["scored"]
-    label: Label
-    decision: float | dict[str, float] = Field(description="a number for a binary model, class -> number otherwise")
-    probability: dict[str, float] | None = Field(description="class -> probability; null when uncalibrated")
-    nearest_support: NearestSupport
-
-
-class RefusedResult(_Doc):
-    status: Literal["refused"]
-    problems: list[RecordProblem] = Field(min_length=1)
-
-
-class ScoreRequest(_Doc):
-    records: list[dict[str, Any]] = Field(min_length=1, description="records: feature name -> number")
-
-
-class ScoreResponse(_Doc):
-    model: str
-    version: str
-    bundle_sha256: str
-    results: list[ScoredResult | RefusedResult]
-
-
-class ServedVersion(_Doc):
-    version: str
-    bundle_sha256: str
-
-
-class ActiveVersion(_Doc):
-    version: str
-    bundle_sha256: str
-    activated_at: str
-
-
-class LoadFailureInfo(_Doc):
-    version: str
-    bundle_sha256: str
-    error: str
-    detail: str
-    at: str
-
-
-class ModelSummary(_Doc):
-    model: str
-    active: ActiveVersion | None
-    served_by_this_worker: ServedVersion | None
-    load_failure: LoadFailureInfo | None
-
-
-class ModelList(_Doc):
-    models: list[ModelSummary]
-
-
-class PublishedVersion(_Doc):
-    version: str
-    bundle_sha256: str
-    created: str
-    published_at: str
-    active: bool
-
-
-class ModelDetail(ModelSummary):
-    versions: list[PublishedVersion]
-
-
-class Classifier(_Doc):
-    estimator: Literal["SVC", "NuSVC"]
-    classes: list[Label]
-    support_vectors: int
-    support_per_class: list[int]
-    break_ties: bool
-    decision_function_shape: Literal["ovr", "ovo"]
-
-
-class GoldenSummary(_Doc):
-    vectors: int
-    with_probabilities: bool
-
-
-class VersionLinks(_Doc):
-    schema_: str = Field(alias="schema")
-    bundle: str
-    score: str
-
-
-class VersionDetail(_Doc):
-    model: str
-    version: str
-    bundle_sha256: str
-    published_at: str
-    active: bool
-    served_by_this_worker: bool
-    signed: bool
-    format: str
-    created: str
-    creator: str
-    features: list[FeatureSpec]
-    scaler: dict[str, str]
-    kernel: KernelSpec
-    classifier: Classifier
-    calibration: dict[str, str]
-    training: dict[str, Any] | None
-    reference_distance: dict[str, Any] | None
-    golden: GoldenSummary
-    files: dict[str, FileEntry]
-    links: VersionLinks
-
-
-class HistoryEntry(_Doc):
-    seq: int = Field(ge=1)
-    time: str
-    actor: str
-    action: str
-    version: str | None
-    digest: str | None
-    reason: str | None
-    prev_hash: str
-    hash: str
-
-
-class Verification(_Doc):
-    ok: bool
-    entries: int
-    detail: str | None
-
-
-class History(_Doc):
-    model: str
-    entries: list[HistoryEntry]
-    verification: Verification
-
-
-class ActivateRequest(_Doc):
-    version: str = Field(min_length=1, max_length=MAX_NAME_LENGTH, pattern=_NAME_PATTERN)
-    reason: str = Field(min_length=1, max_length=1000, description=_REASON)
-
-
-class RollbackRequest(_Doc):
-    reason: str = Field(min_length=1, max_length=1000, description=_REASON)
-
-
-class PreviewRequest(_Doc):
-    version: str = Field(min_length=1, max_length=MAX_NAME_LENGTH, pattern=_NAME_PATTERN)
-
-
-class Switched(_Doc):
-    model: str
-    entry: HistoryEntry
-    served_by_this_worker: ServedVersion | None
-    load_failure: LoadFailureInfo | None
-
-
-class Preview(_Doc):
-    model: str
-    candidate: str
-    recent_records: int
-    report: dict[str, Any]
-
-
-class Alive(_Doc):
-    status: Literal["alive"]
-
-
-class ReadyModel(_Doc):
-    model: str
-    active: ServedVersion
-    serving: ServedVersion | None
-    failure: LoadFailureInfo | None
-
-
-class TokensStatus(_Doc):
-    enabled: bool
-    tokens: int
-    error: str | None
-
-
-class Readiness(_Doc):
-    state: Literal["ready", "degraded"]
-    store_error: str | None
-    models: list[ReadyModel]
-    tokens: TokensStatus
-
-
-_MODELS = [
-    Problem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, ActivateRequest,
-    RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness,
-]
 
 _PROBLEM_STATUSES = {
     400: "the body is not acceptable JSON (syntax, NaN/Infinity, overflow, duplicate names, depth, encoding)",
@@ -270,7 +57,6 @@ _PROBLEM_STATUSES = {
     503: "the store is busy or unreadable, or the model cannot be served yet",
 }
 _BODY_STATUSES = (400, 408, 413, 422)
-_TEXT = {"schema": {"type": "string"}}
 
 # (method, path) -> (request body model or None, {status: (description, media type, schema)})
 _JSON = "application/json"
@@ -291,7 +77,7 @@ _OPERATIONS: dict[tuple[str, str], tuple[type[BaseModel] | None, dict[int, tuple
     ("POST", "/models/{model}/preview"): (PreviewRequest, {200: ("the comparison; nothing changes", _JSON, Preview)}),
     ("GET", "/healthz"): (None, {200: ("the process answers", _JSON, Alive)}),
     ("GET", "/readyz"): (None, {200: ("every active model is loaded", _JSON, Readiness)}),
-    ("GET", "/metrics"): (None, {200: ("Prometheus text exposition", "text/plain", _TEXT["schema"])}),
+    ("GET", "/metrics"): (None, {200: ("Prometheus text exposition", "text/plain", {"type": "string"})}),
 }
 
 
@@ -311,7 +97,7 @@ def build_document(app: FastAPI, max_records: int) -> dict[str, Any]:
     """The OpenAPI document of ``app``'s routes, with the bodies and responses stated here."""
     document = get_openapi(title="rbfgate", version="1", routes=app.routes,
                            description="Scoring service for RBF-kernel classifiers; errors are RFC 9457 problem details.")
-    _, definitions = models_json_schema([(model, "serialization") for model in _MODELS], ref_template=_REF)
+    _, definitions = models_json_schema([(model, "serialization") for model in DOCUMENTED_MODELS], ref_template=_REF)
     schemas = definitions["$defs"]
     schemas["ScoreRequest"]["properties"]["records"]["maxItems"] = max_records
     document["components"] = {
@@ -330,7 +116,7 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
     for parameter in operation.get("parameters", []):
         if parameter["in"] == "path":
             parameter["schema"] = {"type": "string", "minLength": 1, "maxLength": MAX_NAME_LENGTH,
-                                   "pattern": _NAME_PATTERN}
+                                   "pattern": NAME_PATTERN}
     responses: dict[str, Any] = {}
     for status, (description, media_type, schema) in successes.items():
         if isinstance(schema, type):

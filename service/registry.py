@@ -25,7 +25,7 @@ from datetime import datetime, timezone
 from types import MappingProxyType
 
 from model_store.bundle import Bundle
-from model_store.errors import InvalidNameError, NotFoundError, RbfgateError
+from model_store.errors import InvalidNameError, NotFoundError, RbfgateError, StoreError
 from model_store.naming import check_name
 from service.metrics import ServiceMetrics
 
@@ -127,6 +127,9 @@ class ModelRegistry:
         """Bring every model in line with the store's active pointers."""
         with self._refresh_lock:
             try:
+                if not self._store.root.is_dir():
+                    raise StoreError(f"{self._store.root}: the store directory no longer exists; serving the "
+                                     "versions already loaded until it is back")
                 names = self._store.models()
             except RbfgateError as exc:
                 self._note_poll_error(exc)
@@ -135,7 +138,7 @@ class ModelRegistry:
             for name in names:
                 self.refresh(name)
             for gone in (set(self._table) | set(self._pointers)) - set(names):
-                self._drop(gone)
+                self._lost(gone)
             self._started = True
 
     def refresh(self, name: str, *, force: bool = False) -> LoadedModel | None:
@@ -149,8 +152,7 @@ class ModelRegistry:
                 self._note_poll_error(exc)
                 return self._table.get(name)
             if record is None:
-                self._drop(name)
-                return None
+                return self._lost(name)
             target = (record.version, record.digest)
             self._pointers = MappingProxyType({**self._pointers, name: target})
             current = self._table.get(name)
@@ -190,6 +192,9 @@ class ModelRegistry:
         if not isinstance(exc, (RbfgateError, _DigestMoved)):
             _log.exception("unexpected error loading %s %s", name, version)
         failure = LoadFailure(name, version, digest, type(exc).__name__, str(exc), _now(), self._clock())
+        earlier = self._failures.get(name)
+        if earlier is not None and earlier.version != version:
+            self._metrics.load_recovered(name, earlier.version)  # the pointer moved on: that one no longer fails
         self._failures = MappingProxyType({**self._failures, name: failure})
         self._metrics.load_failed(name, version)
         self._on_event({"event": "load_failed", "model": name, "version": version, "bundle_sha256": digest,
@@ -200,6 +205,19 @@ class ModelRegistry:
         if failure is not None:
             self._failures = MappingProxyType({key: value for key, value in self._failures.items() if key != name})
             self._metrics.load_recovered(name, failure.version)
+
+    def _lost(self, name: str) -> LoadedModel | None:
+        """The store no longer shows ``name`` active. No rbfgate command deactivates or deletes a
+        model, so only damage or removal of the store does that: keep serving what is loaded."""
+        current = self._table.get(name)
+        if current is None:
+            self._drop(name)
+            return None
+        self._note_poll_error(StoreError(
+            f"{name}: the store no longer shows an active version (was the store moved or damaged?); "
+            f"serving the loaded version {current.version}"
+        ))
+        return current
 
     def _drop(self, name: str) -> None:
         if name not in self._table and name not in self._pointers and name not in self._failures:

@@ -18,6 +18,7 @@ import hashlib
 import json
 import os
 import secrets
+import stat
 import tempfile
 from collections.abc import Callable
 from contextlib import contextmanager
@@ -34,7 +35,7 @@ __all__ = ["ROLES", "TOKENS_FORMAT", "TokenEntry", "add_token", "read_tokens", "
 
 TOKENS_FORMAT = "rbfgate-tokens/1"
 ROLES = ("audit", "operate", "score")
-_TOKEN_PREFIX = "rbfgate_"
+_TOKEN_PREFIX = "rbfgate_"  # nosec B105 - a public marker for secret scanners, not a secret
 
 
 class TokenEntry(BaseModel):
@@ -62,13 +63,22 @@ def read_tokens(path: Path) -> list[TokenEntry]:
     """The entries of ``path``; ``InputError`` naming the file and the problem if it is unusable."""
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        # O_NONBLOCK: opening a FIFO would otherwise wait for a writer, and serve would hang at start.
+        descriptor = os.open(path, os.O_RDONLY | os.O_NONBLOCK)
     except FileNotFoundError:
         raise InputError(
             f"tokens file {path}: does not exist; create it with `rbfgate token add NAME --role ROLE --tokens {path}`"
         ) from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"tokens file {path}: cannot be read ({exc}); check its permissions") from exc
+    except OSError as exc:
+        raise InputError(f"tokens file {path}: cannot be read ({exc.strerror}); check its permissions") from exc
+    if not stat.S_ISREG(os.fstat(descriptor).st_mode):
+        os.close(descriptor)
+        raise InputError(f"tokens file {path}: not a regular file; pass the file `rbfgate token add` writes")
+    with os.fdopen(descriptor, "rb") as handle:
+        try:
+            text = handle.read().decode("utf-8")
+        except (OSError, UnicodeDecodeError) as exc:
+            raise InputError(f"tokens file {path}: cannot be read ({exc}); check its permissions") from exc
     try:
         document = _TokensDocument.model_validate_json(text)
     except ValidationError as exc:

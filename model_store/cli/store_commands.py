@@ -59,7 +59,8 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
     parser.add_argument("--reason", metavar="TEXT", required=True, help="why (kept in the history)")
     parser = add("history", _history, "print the history of a model; --verify checks its hash chain")
     parser.add_argument("name", metavar="NAME")
-    parser.add_argument("--verify", action="store_true", help="check the hash chain and the active pointer's head")
+    parser.add_argument("--verify", action="store_true", help="check the hash chain, the active pointer's head "
+                        "and that every stored version has its publish entry")
     parser.add_argument("--json", action="store_true", help="print JSON instead of text")
     parser = add("preview", _preview, "compare a candidate version with the active one; changes nothing")
     parser.add_argument("name", metavar="NAME")
@@ -199,7 +200,8 @@ def _history(args, environ) -> int:
             print(f"seq {entry['seq']}  {entry['time']}  {entry['action']}  {entry['version'] or '-'}  "
                   f"digest {digest}  by {entry['actor']}  reason: {entry['reason'] or '-'}")
         if args.verify and problem is None:
-            print(f"verified: {count} entries, the hash chain is intact and its last entry matches the active pointer")
+            print(f"verified: {count} entries, the hash chain is intact, its last entry matches the active pointer "
+                  "and every stored version has its publish entry")
     if problem is not None:
         print(f"rbfgate history: verification failed: {problem}", file=sys.stderr)
         return 1

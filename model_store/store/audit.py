@@ -9,7 +9,10 @@ nobody references was inserted (or replaced, when it took an existing
 entry's place). A sequence number that jumps ahead marks a deletion when
 the skipped number never appears, or a reordering when it appears later.
 Finally the pointer's head must be the last entry's hash, else the trail
-was truncated (the head is not in it) or has entries after the head.
+was truncated (the head is not in it) or has entries after the head; and
+every stored version's ``published.json`` must name (``publish_seq``) the
+publish entry of that version and digest, else entries were deleted (the
+whole trail, say, with the pointer) or a version was added by hand.
 """
 
 from __future__ import annotations
@@ -17,8 +20,9 @@ from __future__ import annotations
 from model_store.errors import HistoryError
 from model_store.store.history import GENESIS, HistoryLine
 from model_store.store.pointer import Pointer
+from model_store.store.publishing import VersionRecord
 
-__all__ = ["check_active", "check_chain", "check_head", "head_position"]
+__all__ = ["check_active", "check_chain", "check_head", "check_versions", "head_position"]
 
 _RESTORE = "restore history.jsonl from a backup and investigate who changed it"
 
@@ -104,8 +108,8 @@ def check_head(lines: list[HistoryLine], pointer: Pointer | None, model: str) ->
         if lines:
             raise HistoryError(
                 f"history of {model}: the trail has {len(lines)} entries but active.json, which records its "
-                "last hash, is missing; the pointer was deleted or the first publish was interrupted "
-                "(the next change to this model completes it)"
+                "last hash, is missing; a model has its pointer before its first entry, so it was deleted; "
+                "restore active.json from a backup and investigate who deleted it"
             )
         return
     last = lines[-1].entry["hash"] if lines else GENESIS
@@ -137,3 +141,50 @@ def check_active(pointer: Pointer | None, stack: list[tuple[str, str]], model: s
             f"but the trail's activations and rollbacks lead to {expected[0]} (digest {str(expected[1])[:16]}...); "
             "active.json was edited by hand, restore it from a backup so that it matches the trail"
         )
+
+
+def check_versions(
+    records: list[VersionRecord], lines: list[HistoryLine], model: str, *, auditing: bool
+) -> VersionRecord | None:
+    """Raise ``HistoryError`` unless each stored version's ``publish_seq`` names its publish entry.
+
+    One version may lack its entry because its publisher was killed after
+    storing it: the one whose ``publish_seq`` is the trail's last seq + 1. An
+    auditor (``auditing=True``) gets that reported, and a record whose digest
+    differs from its publish entry too. A change about to write gets the
+    interrupted version back to record it, and leaves digests alone: a
+    rewritten record loses no entry, and no change can make it match the
+    trail, so ``verify_history`` keeps reporting it. Any other version
+    without its entry means entries were deleted or a version was added by hand.
+    """
+    entries = {item.seq: item.entry for item in lines}
+    after_last = (lines[-1].seq if lines else 0) + 1
+    interrupted = None
+    for record in sorted(records, key=lambda record: (record.publish_seq, record.version)):
+        entry = entries.get(record.publish_seq)
+        if entry is not None and (entry["action"], entry["version"]) == ("publish", record.version):
+            if entry["digest"] == record.digest or not auditing:
+                continue
+        elif entry is None and record.publish_seq == after_last and interrupted is None:
+            interrupted = record
+            continue
+        if entry is None:
+            ends = f"ends at seq {after_last - 1}" if lines else "is empty"
+            found = f"the trail has no entry seq {record.publish_seq} (it {ends})"
+        else:
+            found = (
+                f"entry seq {record.publish_seq} is {entry['action']} {entry['version'] or '-'} "
+                f"(digest {str(entry['digest'])[:16]}...)"
+            )
+        raise HistoryError(
+            f"history of {model}: version {record.version} is stored (digest {record.digest[:16]}...) and its "
+            f"published.json names publish seq {record.publish_seq}, but {found}; entries were deleted, or the "
+            f"version was added or its record rewritten by hand; {_RESTORE}"
+        )
+    if interrupted is not None and auditing:
+        raise HistoryError(
+            f"history of {model}: version {interrupted.version} was stored at {interrupted.published_at} by "
+            f"{interrupted.published_by} after the trail's last entry, but has no publish entry: its publisher "
+            "was killed before it wrote the entry (the next change to this model records it)"
+        )
+    return interrupted

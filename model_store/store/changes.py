@@ -4,8 +4,13 @@ Each change holds the store lock from its first read to its last write, so
 concurrent operators are serialised and nothing is lost or interleaved.
 Before changing a model it completes any change a crash interrupted
 (``recovery.recover``) and refuses to continue on a tampered trail.
-Refusals of checks (a conflicting digest, a bad signature, a stored bundle
-that no longer verifies) are written to the history before they are raised.
+Refusals of checks (a conflicting digest, a bad signature, a bundle that
+fails its checksums or golden self-test, a stored bundle that no longer
+verifies) are written to the history before they are raised. The one
+exception: a bundle that fails its checksums or golden self-test for a
+model the store does not hold yet is refused without a trace, because a
+model directory is not created from the claims of a bundle that does not
+verify just to log its refusal.
 """
 
 from __future__ import annotations
@@ -20,11 +25,12 @@ from model_store.manifest import SIGNATURE_FILE
 from model_store.naming import check_name
 from model_store.store.durable import atomic_write, fsync_directory
 from model_store.store.history import check_text
-from model_store.store.layout import read_settings, write_settings
+from model_store.store.layout import read_settings, require_model, write_settings
 from model_store.store.publishing import (
     PublishOutcome,
     VersionRecord,
     bundle_members,
+    claimed_identity,
     clear_staging,
     discard_version,
     read_record,
@@ -43,8 +49,11 @@ __all__ = ["activate", "add_trusted_key", "prune", "publish", "remove_trusted_ke
 def publish(store: "Store", source: Path, *, actor: str) -> PublishOutcome:
     """Verify ``source`` (directory or single file), then store it as an immutable version."""
     actor = check_text(actor, what="actor", required=True)
-    bundle = load_bundle(source)
-    bundle.self_test()
+    try:
+        bundle = load_bundle(source)
+        bundle.self_test()
+    except CheckFailedError as exc:
+        _refuse_unverified(store, source, exc, actor)
     members = bundle_members(source, bundle)
     name, version, digest = bundle.name, bundle.version, bundle.digest
     layout = store.layout
@@ -87,26 +96,17 @@ def activate(store: "Store", name: str, version: str, *, reason: str, actor: str
     """Re-verify the stored bundle and make it the active version; refuse (and record it) if it fails."""
     check_name(name, what="model name")
     check_name(version, what="model version")
-    reason = check_text(reason, what="--reason", required=True)
+    reason = check_text(reason, what="reason", required=True)
     actor = check_text(actor, what="actor", required=True)
     with store.locked():
         state = _begin(store, name, actor)
-        digest = _stored_digest(store, state, version)
-        try:
-            bundle = store.load_verified(name, version)
-        except CheckFailedError as exc:
-            _refuse(store, state, "refused-activate", version, digest, reason, exc, actor=actor)
-        [entry] = commit(
-            store.layout, state, [_draft(store, actor, "activate", version, bundle.digest, reason)],
-            activate=(version, bundle.digest),
-        )
-    return entry
+        return _switch(store, state, "activate", version, _stored_digest(store, state, version), reason, actor)
 
 
 def rollback(store: "Store", name: str, *, reason: str, actor: str) -> dict[str, Any]:
     """Return to the version that was active before the current one, after re-verifying it."""
     check_name(name, what="model name")
-    reason = check_text(reason, what="--reason", required=True)
+    reason = check_text(reason, what="reason", required=True)
     actor = check_text(actor, what="actor", required=True)
     with store.locked():
         state = _begin(store, name, actor)
@@ -122,15 +122,7 @@ def rollback(store: "Store", name: str, *, reason: str, actor: str) -> dict[str,
             _refuse(store, state, "refused-rollback", version, digest, reason, CheckFailedError(
                 f"rollback of {name} would return to {version}, which was pruned; activate a stored version instead"
             ), actor=actor)
-        try:
-            bundle = store.load_verified(name, version)
-        except CheckFailedError as exc:
-            _refuse(store, state, "refused-rollback", version, digest, reason, exc, actor=actor)
-        [entry] = commit(
-            store.layout, state, [_draft(store, actor, "rollback", version, bundle.digest, reason)],
-            activate=(version, bundle.digest),
-        )
-    return entry
+        return _switch(store, state, "rollback", version, digest, reason, actor)
 
 
 def prune(store: "Store", name: str, *, keep: int, actor: str) -> list[str]:
@@ -167,7 +159,7 @@ def add_trusted_key(store: "Store", public_key: bytes, *, label: str, actor: str
     """Trust ``public_key`` (32 raw Ed25519 bytes); from then on every bundle must be signed."""
     if len(public_key) != 32:
         raise InputError(f"an Ed25519 public key is 32 bytes, got {len(public_key)}")
-    label = check_text(label, what="--label", required=False) or ""
+    label = check_text(label, what="label", required=False) or ""
     actor = check_text(actor, what="actor", required=True)
     with store.locked():
         settings = read_settings(store.layout)
@@ -197,10 +189,41 @@ def remove_trusted_key(store: "Store", key_id_: str, *, actor: str) -> TrustedKe
 
 
 def _begin(store: "Store", name: str, actor: str) -> ModelState:
-    if not store.layout.model(name).is_dir():
-        raise NotFoundError(f"no model {name!r} in the store {store.root}; models: {store.models() or 'none'}")
+    require_model(store.layout, name)
     clear_staging(store.layout.staging)
     return recover(store.layout, name, now=store.now(), actor=actor)
+
+
+def _switch(
+    store: "Store", state: ModelState, action: str, version: str, digest: str, reason: str, actor: str
+) -> dict[str, Any]:
+    """Re-verify the stored ``version`` and make it active, recorded as ``action`` ("activate", "rollback").
+
+    If the stored bundle no longer verifies, record "refused-<action>" and raise.
+    """
+    try:
+        bundle = store.load_verified(state.name, version)
+    except CheckFailedError as exc:
+        _refuse(store, state, f"refused-{action}", version, digest, reason, exc, actor=actor)
+    [entry] = commit(
+        store.layout, state, [_draft(store, actor, action, version, bundle.digest, reason)],
+        activate=(version, bundle.digest),
+    )
+    return entry
+
+
+def _refuse_unverified(store: "Store", source: Path, exc: CheckFailedError, actor: str) -> NoReturn:
+    """Record a publish refused because the bundle failed its checksums or golden self-test, then raise.
+
+    Recorded only when the manifest names a model the store already holds:
+    a bundle that does not verify is not trusted to create a model directory.
+    """
+    claimed = claimed_identity(source)
+    if claimed is not None and store.layout.model(claimed[0]).is_dir():
+        name, version, digest = claimed
+        with store.locked():
+            _refuse(store, _begin(store, name, actor), "refused-publish", version, digest, None, exc, actor=actor)
+    raise exc
 
 
 def _stored_digest(store: "Store", state: ModelState, version: str) -> str:

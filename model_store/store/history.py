@@ -50,7 +50,8 @@ ACTIONS = (
     "activate",         # the active pointer moved to a version
     "rollback",         # the active pointer moved back to the previously active version
     "prune",            # a version was removed by retention
-    "refused-publish",  # a publish was refused (conflicting digest, bad signature, golden mismatch)
+    "refused-publish",  # a publish was refused (conflicting digest, bad signature, checksum or golden
+                        # mismatch); only recorded for a model the store already holds
     "refused-activate", # an activation was refused because the stored bundle failed verification
     "refused-rollback", # a rollback was refused because its target failed verification
     "recover",          # a change interrupted by a crash was completed by the next command
@@ -92,10 +93,14 @@ def entry_hash(entry: dict[str, Any]) -> str:
 
 
 def check_text(value: str | None, *, what: str, required: bool) -> str | None:
-    """Validate an actor or reason: one line of printable text, at most 1000 characters."""
+    """Validate an actor, reason or label: one line of printable text, at most 1000 characters.
+
+    ``what`` names the field ("reason", "actor"), not a command-line flag: the
+    message reaches CLI users and HTTP clients alike.
+    """
     if value is None or not str(value).strip():
         if required:
-            raise InputError(f"{what} is empty; give a short explanation, it is kept in the history for auditors")
+            raise InputError(f"{what} must not be empty: give one line of text, it is kept in the history for auditors")
         return None
     value = str(value).strip()
     if len(value) > _MAX_TEXT:

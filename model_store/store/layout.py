@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from model_store.errors import StoreError
+from model_store.errors import NotFoundError, StoreError
 from model_store.naming import check_name
 from model_store.store.durable import TEMP_PREFIX, atomic_write
 
@@ -33,9 +33,12 @@ __all__ = [
     "STORE_KIND",
     "StoreLayout",
     "default_store_root",
+    "model_names",
     "open_layout",
     "read_settings",
+    "require_model",
     "resolve_store_root",
+    "version_names",
     "write_settings",
 ]
 
@@ -86,6 +89,33 @@ class StoreLayout:
 
     def pointer(self, name: str) -> Path:
         return self.model(name) / "active.json"
+
+
+def model_names(layout: StoreLayout) -> list[str]:
+    """Sorted names of the models that have at least one stored version."""
+    try:
+        names = os.listdir(layout.models)
+    except FileNotFoundError:
+        return []
+    except OSError as exc:
+        raise StoreError(f"{layout.models}: cannot list models: {exc.strerror}") from exc
+    return sorted(name for name in names if not name.startswith(".") and version_names(layout, name))
+
+
+def version_names(layout: StoreLayout, name: str) -> list[str]:
+    """Sorted names of the stored versions of ``name``; none when the model does not exist."""
+    try:
+        return sorted(entry for entry in os.listdir(layout.versions(name)) if not entry.startswith("."))
+    except (FileNotFoundError, NotADirectoryError):
+        return []
+    except OSError as exc:
+        raise StoreError(f"{layout.versions(name)}: cannot list versions: {exc.strerror}") from exc
+
+
+def require_model(layout: StoreLayout, name: str) -> None:
+    """Raise ``NotFoundError`` (listing the models there are) unless the store holds model ``name``."""
+    if not layout.model(name).is_dir():
+        raise NotFoundError(f"no model {name!r} in the store {layout.root}; models: {model_names(layout) or 'none'}")
 
 
 def default_store_root(environ: Mapping[str, str]) -> Path:

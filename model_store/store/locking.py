@@ -31,6 +31,11 @@ def exclusive_lock(path: Path, timeout: float, *, sleep: Callable[[float], None]
     """Hold the store lock exclusively; raise ``StoreError`` if the store cannot be written."""
     try:
         descriptor = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    except FileNotFoundError as exc:
+        raise StoreError(
+            f"{path.parent}: cannot change this store: the store directory no longer exists; "
+            "restore it or point --store at the store"
+        ) from exc
     except OSError as exc:
         raise StoreError(
             f"{path.parent}: cannot change this store: opening its lock file failed ({_describe(exc)}); "

@@ -5,6 +5,10 @@ second. It is replaced atomically (write, fsync, rename), so a reader sees
 the old pointer or the new one. Besides the active version it records the
 hash and sequence number of the trail's last entry; a trail that ends
 earlier than that was truncated.
+
+A model gets its pointer before its first history entry is written: the
+genesis pointer (no active version, head GENESIS, seq 0). So a pointer
+that is missing beside a trail was deleted; no crash leaves that state.
 """
 
 from __future__ import annotations
@@ -15,8 +19,9 @@ from pathlib import Path
 
 from model_store.errors import StoreError
 from model_store.store.durable import atomic_write
+from model_store.store.history import GENESIS
 
-__all__ = ["ActiveRecord", "Pointer", "read_pointer", "write_pointer"]
+__all__ = ["GENESIS_POINTER", "ActiveRecord", "Pointer", "read_pointer", "write_pointer"]
 
 
 @dataclass(frozen=True)
@@ -46,6 +51,9 @@ class Pointer:
 
     def moved_head(self, head: str, seq: int) -> "Pointer":
         return Pointer(self.version, self.digest, self.activated_at, head, seq)
+
+
+GENESIS_POINTER = Pointer(version=None, digest=None, activated_at=None, history_head=GENESIS, history_seq=0)
 
 
 def read_pointer(path: Path) -> Pointer | None:

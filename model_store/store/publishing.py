@@ -19,17 +19,21 @@ from pathlib import Path
 
 from model_store.archive import is_archive, read_archive
 from model_store.bundle import Bundle, load_bundle
+from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import IntegrityError, NotFoundError, RbfgateError, StoreError
-from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE
+from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, parse_manifest_bytes
 from model_store.store.durable import fsync_directory, fsync_tree, temporary_name
+from model_store.store.layout import StoreLayout, version_names
 
 __all__ = [
     "PublishOutcome",
     "VersionRecord",
     "bundle_members",
+    "claimed_identity",
     "clear_staging",
     "discard_version",
     "read_record",
+    "read_records",
     "stage_version",
 ]
 
@@ -62,13 +66,38 @@ def read_record(path: Path) -> VersionRecord:
     """The version record; ``NotFoundError`` when the version is gone (pruned meanwhile)."""
     try:
         document = json.loads(Path(path).read_text(encoding="utf-8"))
-        return VersionRecord(**document)
+        record = VersionRecord(**document)
+        if type(record.publish_seq) is not int or not all(
+            isinstance(value, str) for value in (record.version, record.digest, record.published_at, record.published_by)
+        ):
+            raise TypeError("publish_seq must be a whole number and the other fields text")
+        return record
     except FileNotFoundError:
         raise NotFoundError(f"{path}: no version record; the version was removed or was not stored by rbfgate") from None
     except OSError as exc:
         raise StoreError(f"{path}: cannot read the version record: {exc.strerror}") from exc
     except (ValueError, TypeError) as exc:
         raise StoreError(f"{path}: the version record is malformed ({exc}); restore it from a backup") from exc
+
+
+def read_records(layout: StoreLayout, name: str) -> list[VersionRecord]:
+    """The records of every stored version of ``name``; call it holding the lock (no prune in between)."""
+    return [read_record(layout.record(name, version)) for version in version_names(layout, name)]
+
+
+def claimed_identity(source: Path) -> tuple[str, str, str] | None:
+    """``(name, version, digest)`` as the manifest of ``source`` states them, or None if it cannot be read.
+
+    For recording a publish refused because the bundle failed its checksums or
+    golden self-test: the manifest parsed, though the bundle as a whole did not verify.
+    """
+    source = Path(source)
+    try:
+        data = read_archive(source)[MANIFEST_FILE] if is_archive(source) else (source / MANIFEST_FILE).read_bytes()
+        document, manifest = parse_manifest_bytes(data, source=str(source))
+    except (RbfgateError, OSError, KeyError):
+        return None
+    return manifest.name, manifest.version, sha256_bytes(canonical_json(document))
 
 
 def bundle_members(source: Path, bundle: Bundle) -> dict[str, bytes]:

@@ -5,22 +5,35 @@ pointer (new head, and the new active version for activate and rollback).
 A writer killed between those steps, or between storing a version and
 writing its publish entry, leaves a state that the next writer (holding the
 lock, before it changes anything) completes and records as a ``recover``
-entry, so the trail says what happened. A trail whose hash chain is broken,
-or that is shorter than the pointer says, is never "recovered": the change
-is refused with ``HistoryError`` so that the evidence stays as it is.
+entry, so the trail says what happened. A crash never leaves more than one
+stored version without its publish entry: the one whose ``publish_seq`` is
+the trail's last seq + 1, and only that one gets a "recovered" entry.
+
+What no crash leaves is tampering, never "recovered": a broken hash chain,
+a trail shorter than the pointer says, a pointer missing beside a trail
+(a model has its genesis pointer before its first entry), or a stored
+version the trail does not record. The change is refused with
+``HistoryError`` and nothing is written, so that the evidence stays as it is.
+
+A store made before genesis pointers existed has models without one; the
+next change gives them theirs. Such a model with neither pointer nor trail
+but one stored version with ``publish_seq`` 1 is taken for what it was
+then: a first publish killed before it wrote its entry (the same state
+after deleting both files is indistinguishable from it).
 """
 
 from __future__ import annotations
 
 import os
+from pathlib import Path
 from typing import Any
 
-from model_store.store.audit import check_active, check_chain, check_head, head_position
-from model_store.store.durable import atomic_write
-from model_store.store.history import GENESIS, HistoryLine, append_entries, make_entry, read_trail
+from model_store.store.audit import check_active, check_chain, check_head, check_versions, head_position
+from model_store.store.durable import TEMP_PREFIX, atomic_write
+from model_store.store.history import HistoryLine, append_entries, make_entry, read_trail
 from model_store.store.layout import StoreLayout
-from model_store.store.pointer import Pointer, read_pointer, write_pointer
-from model_store.store.publishing import discard_version, read_record
+from model_store.store.pointer import GENESIS_POINTER, Pointer, read_pointer, write_pointer
+from model_store.store.publishing import discard_version, read_records
 from model_store.store.state import ModelState
 
 __all__ = ["commit", "recover"]
@@ -47,33 +60,43 @@ def commit(
     last = entries[-1]
     if activate is not None:
         pointer = Pointer(activate[0], activate[1], last["time"], last["hash"], last["seq"])
-    elif state.pointer is not None:
-        pointer = state.pointer.moved_head(last["hash"], last["seq"])
     else:
-        pointer = Pointer(None, None, None, last["hash"], last["seq"])
+        pointer = state.pointer.moved_head(last["hash"], last["seq"])
     write_pointer(layout.pointer(state.name), pointer)
     state.pointer = pointer
     return entries
 
 
 def recover(layout: StoreLayout, name: str, *, now: str, actor: str) -> ModelState:
-    """Load the model's state for a change, completing any interrupted change first (lock held)."""
+    """Load the model's state for a change, completing any interrupted change first (lock held).
+
+    Every check runs before anything is written, so a tampered model is left as it was found.
+    """
     history_path = layout.history(name)
     trail = read_trail(history_path, name)
     lines, dropped = trail.lines, trail.unfinished
     pointer = read_pointer(layout.pointer(name))
     check_chain(lines, name, pointer.history_head if pointer else None)
-    position = head_position(lines, pointer.history_head if pointer else GENESIS)
+    if pointer is None:
+        check_head(lines, None, name)  # raises when the trail has entries: its pointer was deleted
+    # A new model (or one from a store older than genesis pointers) gets its genesis pointer now,
+    # before its first entry, so that from then on a missing pointer always means tampering.
+    state = ModelState(name, lines, pointer or GENESIS_POINTER)
+    position = head_position(lines, state.pointer.history_head)
     if position is None:
-        check_head(lines, pointer, name)  # raises: the trail is shorter than the pointer says
+        check_head(lines, state.pointer, name)  # raises: the trail is shorter than the pointer says
+    if position == len(lines) - 1:
+        check_active(state.pointer, state.stack(), name)  # no interrupted change explains a mismatch
+    records = read_records(layout, name)
+    interrupted = check_versions(records, lines, name, auditing=False)
+    _remove_temporaries(layout.model(name))
+    if pointer is None:
+        write_pointer(layout.pointer(name), state.pointer)
     if dropped:  # cut off the unfinished line
         data = history_path.read_bytes()
         atomic_write(history_path, data[: data.rfind(b"\n") + 1])
     elif trail.unterminated:  # a complete last entry that lost its line end: restore it before appending
         atomic_write(history_path, history_path.read_bytes() + b"\n")
-    state = ModelState(name, lines, pointer)
-    if position == len(lines) - 1:
-        check_active(pointer, state.stack(), name)  # no interrupted change explains a mismatch
     notes = []
     if dropped:
         notes.append("removed an incomplete last line left by an interrupted write")
@@ -83,33 +106,33 @@ def recover(layout: StoreLayout, name: str, *, now: str, actor: str) -> ModelSta
             "before it updated the active pointer"
         )
     drafts = []
-    for version in _stored_versions(layout, name):
-        event = state.last_event(version)
-        if event is None:
-            record = read_record(layout.record(name, version))
-            drafts.append(
-                _draft(now, record.published_by, "publish", version, record.digest,
-                       f"recovered: stored at {record.published_at}, but the publisher was interrupted "
-                       "before it wrote this entry")
-            )
-        elif event["action"] == "prune":
-            discard_version(layout.version(name, version), layout.staging)
-            notes.append(f"finished removing pruned version {version}")
+    if interrupted is not None:
+        drafts.append(
+            _draft(now, interrupted.published_by, "publish", interrupted.version, interrupted.digest,
+                   f"recovered: stored at {interrupted.published_at}, but the publisher was interrupted "
+                   "before it wrote this entry")
+        )
+    for record in records:
+        event = state.last_event(record.version)
+        if record is not interrupted and event is not None and event["action"] == "prune":
+            discard_version(layout.version(name, record.version), layout.staging)
+            notes.append(f"finished removing pruned version {record.version}")
     if notes:
         drafts.append(_draft(now, actor, "recover", None, None, "completed an interrupted change: " + "; ".join(notes)))
     if drafts:
         stack = state.stack()
         target = stack[-1] if stack else None
-        current = (pointer.version, pointer.digest) if pointer else (None, None)
+        current = (state.pointer.version, state.pointer.digest)
         commit(layout, state, drafts, activate=target if target and target != current else None)
     return state
 
 
-def _stored_versions(layout: StoreLayout, name: str) -> list[str]:
-    try:
-        return sorted(entry for entry in os.listdir(layout.versions(name)) if not entry.startswith("."))
-    except FileNotFoundError:
-        return []
+def _remove_temporaries(directory: Path) -> None:
+    """Delete the temporaries of atomic writes killed before their rename (lock held: no live writer owns one)."""
+    for entry in os.listdir(directory):
+        path = directory / entry
+        if entry.startswith(TEMP_PREFIX) and path.is_file() and not path.is_symlink():
+            path.unlink()
 
 
 def _draft(time: str, actor: str, action: str, version: str | None, digest: str | None, reason: str) -> dict[str, Any]:

@@ -39,7 +39,7 @@ class ModelState:
 
     name: str
     lines: list[HistoryLine]
-    pointer: Pointer | None
+    pointer: Pointer  # the genesis pointer until the first entry moves its head
 
     @property
     def entries(self) -> list[dict[str, Any]]:

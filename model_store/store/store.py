@@ -8,7 +8,6 @@ Changes (publish, activate, rollback, prune, trust) live in
 
 from __future__ import annotations
 
-import os
 from collections.abc import Callable
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -26,14 +25,13 @@ from model_store.errors import (
     UnsafeArchiveError,
 )
 from model_store.manifest import SIGNATURE_FILE
-from model_store.naming import check_name
 from model_store.store import changes
-from model_store.store.audit import check_active, check_chain, check_head
+from model_store.store.audit import check_active, check_chain, check_head, check_versions
 from model_store.store.history import format_time, read_trail
-from model_store.store.layout import StoreLayout, open_layout, read_settings
+from model_store.store.layout import StoreLayout, model_names, open_layout, read_settings, require_model, version_names
 from model_store.store.locking import exclusive_lock, shared_lock
 from model_store.store.pointer import ActiveRecord, read_pointer
-from model_store.store.publishing import PublishOutcome, StepHook, read_record
+from model_store.store.publishing import PublishOutcome, StepHook, read_record, read_records
 from model_store.store.signing import TrustedKey, check_bundle_signature
 from model_store.store.state import activation_stack
 
@@ -86,22 +84,14 @@ class Store:
 
     def models(self) -> list[str]:
         """Sorted names of the models that have at least one version."""
-        try:
-            names = os.listdir(self._layout.models)
-        except FileNotFoundError:
-            return []
-        except OSError as exc:
-            raise StoreError(f"{self._layout.models}: cannot list models: {exc.strerror}") from exc
-        return sorted(name for name in names if not name.startswith(".") and self._version_names(name))
+        return model_names(self._layout)
 
     def versions(self, name: str) -> list[VersionInfo]:
         """Every stored version in publish order, marking the active one."""
-        names = self._version_names(name)
-        if not names and not self._layout.model(name).is_dir():
-            raise NotFoundError(f"no model {name!r} in the store {self.root}; models: {self.models() or 'none'}")
+        require_model(self._layout, name)
         active = self.active(name)
         records = []
-        for version in names:
+        for version in version_names(self._layout, name):
             try:
                 records.append(read_record(self._layout.record(name, version)))
             except NotFoundError:
@@ -160,19 +150,21 @@ class Store:
         Entries are appended whole, so a concurrent append shows up entirely or
         not at all; an unfinished last line left by a crashed writer is skipped.
         """
-        self._require_model(name)
+        require_model(self._layout, name)
         return [item.entry for item in read_trail(self._layout.history(name), name).lines]
 
     def verify_history(self, name: str) -> int:
-        """Check the hash chain and the pointer's head; return the number of entries, else HistoryError.
+        """Check the hash chain, the pointer's head and the stored versions; return the number of entries.
 
-        Holds the lock shared, so that the trail and the pointer are read at one
-        moment between two changes (it waits for a change in progress).
+        Raises ``HistoryError`` naming the first problem. Holds the lock shared,
+        so that the trail, the pointer and the versions are read at one moment
+        between two changes (it waits for a change in progress).
         """
-        self._require_model(name)
+        require_model(self._layout, name)
         with shared_lock(self._layout.lock, self.lock_timeout):
             trail = read_trail(self._layout.history(name), name)
             pointer = read_pointer(self._layout.pointer(name))
+            records = read_records(self._layout, name)
         lines = trail.lines
         if trail.unfinished:
             raise HistoryError(
@@ -182,6 +174,7 @@ class Store:
         check_chain(lines, name, pointer.history_head if pointer else None)
         check_head(lines, pointer, name)
         check_active(pointer, activation_stack([item.entry for item in lines]), name)
+        check_versions(records, lines, name, auditing=True)
         return len(lines)
 
     def trusted_keys(self) -> list[TrustedKey]:
@@ -223,16 +216,3 @@ class Store:
                     f"{self.root}: the change failed: {exc.strerror or exc} ({exc.filename}); the store is unchanged "
                     "or completed by the next command; check that the store is writable and has free space"
                 ) from exc
-
-    def _version_names(self, name: str) -> list[str]:
-        try:
-            return [entry for entry in os.listdir(self._layout.versions(name)) if not entry.startswith(".")]
-        except (FileNotFoundError, NotADirectoryError):
-            return []
-        except OSError as exc:
-            raise StoreError(f"{self._layout.versions(name)}: cannot list versions: {exc.strerror}") from exc
-
-    def _require_model(self, name: str) -> None:
-        check_name(name, what="model name")
-        if not self._layout.model(name).is_dir():
-            raise NotFoundError(f"no model {name!r} in the store {self.root}; models: {self.models() or 'none'}")

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 import tempfile
 import time
@@ -59,6 +60,7 @@ def run(out: Path, plan: Plan, parts: tuple[str, ...] = _PARTS, log=print) -> di
     out.mkdir(parents=True, exist_ok=True)
     cache = prepare_cache_dir(out / "cache")
     results: dict = {"started": time.strftime("%Y-%m-%d %H:%M:%S"), "plan": plan.__dict__, "parts": list(parts)}
+    load_at_start = os.getloadavg()[0]
     log("machine and its limits (BLAS dgemm, numpy exp) ...")
     results["machine"] = describe_machine()
     limits = {"1": measure_limits(1), "default": measure_limits(None)}
@@ -92,17 +94,25 @@ def run(out: Path, plan: Plan, parts: tuple[str, ...] = _PARTS, log=print) -> di
 
             log("load and switch figures ...")
             large = prepare_large_bundles(cache, *plan.large_bundle, log=log)
-            load = measure_load(large[0], plan.load_runs)
-            log(f"  {load.n_support} x {load.features}: load {load.load_seconds:.3f} s + self-test "
-                f"{load.self_test_seconds:.3f} s, RSS +{load.rss_delta_bytes / 2**20:.0f} MiB")
-            results["load"] = load.to_dict()
+            results["load"] = []
+            for threads in (1, None):
+                load = measure_load(large[0], plan.load_runs, threads)
+                log(f"  {load.n_support} x {load.features}, {load.blas_threads} BLAS thread(s): load "
+                    f"{load.load_seconds:.3f} s + self-test {load.self_test_seconds:.3f} s, "
+                    f"RSS +{load.rss_delta_bytes / 2**20:.0f} MiB")
+                results["load"].append(load.to_dict())
             small = cached_model(cache, *plan.service_model, log=log)
             small_versions = _second_version(small.bundle_path, cache)
+            # The service follows the store by polling it (--poll-interval, default 1 s): the default and a
+            # shorter interval show how much of the switch time is the poll and how much the load.
             results["switch"] = [
-                measure_switch("large", large, workdir, switches=plan.switches, log=log).to_dict(),
-                measure_switch("small", small_versions, workdir, switches=plan.switches, log=log).to_dict(),
+                measure_switch(f"{label}-poll-{poll:g}", versions, workdir, switches=plan.switches,
+                               poll_seconds=poll, log=log).to_dict()
+                for label, versions in (("large", large), ("small", small_versions))
+                for poll in (1.0, 0.25)
             ]
     results["finished"] = time.strftime("%Y-%m-%d %H:%M:%S")
+    results["load_average"] = [load_at_start, os.getloadavg()[0]]
     from .report import print_summary, write_markdown, write_plot
 
     (out / "benchmark.json").write_text(json.dumps(results, indent=1) + "\n")

@@ -15,6 +15,7 @@ the labels equal scikit-learn's predict.
 
 from __future__ import annotations
 
+from contextlib import nullcontext
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -32,7 +33,7 @@ _CHECK_ROWS = 1000
 
 @dataclass(frozen=True)
 class ScorerResult:
-    """One (model, batch size) measurement; seconds are medians per call.
+    """One (model, batch size) measurement; seconds are medians per call (wall, unless named cpu).
 
     operations:     rows x support vectors x features (the multiply-adds of the distances)
     kernel_rate_*:  rows x support vectors / second achieved by rbfgate
@@ -49,6 +50,9 @@ class ScorerResult:
     rbfgate_default_seconds: float
     ratio_1thread: float
     ratio_default: float
+    sklearn_cpu_seconds: float
+    rbfgate_1thread_cpu_seconds: float
+    ratio_cpu_1thread: float
     kernel_rate_1thread: float
     floor_seconds: float
     labels_equal: bool
@@ -80,13 +84,13 @@ def bench_model(model: CachedModel, batch_sizes: list[int], limits_1thread: Mach
         outputs = {}
 
         def rbfgate(threads, batch=batch):
-            with blas_threads(threads):
-                outputs[threads] = bundle.score(batch).decision
+            outputs[threads] = bundle.score(batch).decision
 
-        sklearn_seconds, one_seconds, default_seconds = alternate(
+        sklearn_time, one_time, default_time = alternate(
             [lambda: pipeline.decision_function(batch), lambda: rbfgate(1), lambda: rbfgate(None)],
-            budget=budget, least=3,
+            budget=budget, least=3, settings=[nullcontext, lambda: blas_threads(1), nullcontext],
         )
+        sklearn_seconds, one_seconds, default_seconds = sklearn_time.wall, one_time.wall, default_time.wall
         error = max(_tolerance_used(outputs[1], reference), _tolerance_used(outputs[None], reference))
         pairs = size * model.n_support
         floor = pairs * (2 * (model.features + 2) / (limits_1thread.dgemm_thin_gflops * 1e9)
@@ -101,6 +105,9 @@ def bench_model(model: CachedModel, batch_sizes: list[int], limits_1thread: Mach
             rbfgate_default_seconds=default_seconds,
             ratio_1thread=sklearn_seconds / one_seconds,
             ratio_default=sklearn_seconds / default_seconds,
+            sklearn_cpu_seconds=sklearn_time.cpu,
+            rbfgate_1thread_cpu_seconds=one_time.cpu,
+            ratio_cpu_1thread=sklearn_time.cpu / max(one_time.cpu, 1e-9),
             kernel_rate_1thread=pairs / one_seconds,
             floor_seconds=floor,
             labels_equal=bool(labels_equal),

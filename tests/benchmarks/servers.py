@@ -66,6 +66,10 @@ class Server:
             os.killpg(self.process.pid, signal.SIGKILL)
             self.process.wait(_STOP_SECONDS)
 
+    def cpu_seconds(self) -> float:
+        """User + system CPU time used so far by the server and every process under it (Linux /proc)."""
+        return sum(_process_cpu(pid) for pid in _descendants(self.process.pid))
+
     def _wait_until_ready(self) -> None:
         deadline = time.monotonic() + _START_SECONDS
         while time.monotonic() < deadline:
@@ -80,6 +84,31 @@ class Server:
                 pass
             time.sleep(0.1)
         raise RuntimeError(f"{self.name} did not become ready within {_START_SECONDS} s")
+
+
+def _process_cpu(pid: int) -> float:
+    try:
+        with open(f"/proc/{pid}/stat", encoding="ascii") as stat:
+            fields = stat.read().rsplit(")", 1)[1].split()
+    except OSError:  # the process ended meanwhile
+        return 0.0
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")  # utime + stime, in clock ticks
+
+
+def _descendants(root: int) -> list[int]:
+    parents = {}
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                with open(f"/proc/{entry}/stat", encoding="ascii") as stat:
+                    parents[int(entry)] = int(stat.read().rsplit(")", 1)[1].split()[1])
+            except OSError:
+                continue
+    found, frontier = [root], [root]
+    while frontier:
+        frontier = [pid for pid, parent in parents.items() if parent in frontier]
+        found += frontier
+    return found
 
 
 def _clean_environ(extra: dict[str, str]) -> dict[str, str]:

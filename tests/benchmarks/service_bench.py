@@ -36,6 +36,12 @@ class ServiceResult:
     records: int
     connections: int
     rounds: list[LoadResult]
+    cpu_seconds: list[float]  # CPU time the server's processes used during each round
+
+    @property
+    def cpu_ms_per_request(self) -> float:
+        """Server CPU per request: robust to other load on the machine, unlike requests/s."""
+        return 1e3 * sum(self.cpu_seconds) / sum(run.requests for run in self.rounds)
 
     @property
     def requests_per_second(self) -> float:
@@ -61,7 +67,8 @@ class ServiceResult:
         return {
             "server": self.server, "workers": self.workers, "records": self.records, "connections": self.connections,
             "requests_per_second": self.requests_per_second, "p50_ms": self.p50_ms, "p99_ms": self.p99_ms,
-            "worst_p99_ms": self.worst_p99_ms, "non_2xx": self.non_2xx, "rounds": [run.to_dict() for run in self.rounds],
+            "worst_p99_ms": self.worst_p99_ms, "non_2xx": self.non_2xx, "cpu_ms_per_request": self.cpu_ms_per_request,
+            "rounds": [run.to_dict() for run in self.rounds],
         }
 
 
@@ -87,19 +94,24 @@ def bench_service(model: CachedModel, workdir: Path, *, workers_list: list[int],
         with rbfgate_server(store_root, workers, workdir) as ours, \
                 reference_server(model.joblib_path, bundle.feature_names, workers, workdir) as theirs:
             targets = {"rbfgate": f"{ours.url}/score/{name}", "reference": f"{theirs.url}/score"}
+            servers = {"rbfgate": ours, "reference": theirs}
             for records, body_path in bodies.items():
                 _check_answers(targets, body_path, records)
                 for target in targets.values():  # warm both (and every worker) before timing
                     run_wrk(wrk, target, body_path, connections=connections, seconds=min(2.0, seconds))
                 measured = {server: [] for server in targets}
+                cpu = {server: [] for server in targets}
                 for _ in range(rounds):
                     for server, url in targets.items():
+                        before = servers[server].cpu_seconds()
                         measured[server].append(run_wrk(wrk, url, body_path, connections=connections, seconds=seconds))
+                        cpu[server].append(servers[server].cpu_seconds() - before)
                 for server, runs in measured.items():
-                    result = ServiceResult(server, workers, records, connections, runs)
+                    result = ServiceResult(server, workers, records, connections, runs, cpu[server])
                     results.append(result)
                     log(f"    {server:>9}, {records:>4} record(s)/request: {result.requests_per_second:8.0f} req/s, "
-                        f"p50 {result.p50_ms:.2f} ms, p99 {result.p99_ms:.2f} ms, non-2xx {result.non_2xx}")
+                        f"p50 {result.p50_ms:.2f} ms, p99 {result.p99_ms:.2f} ms, non-2xx {result.non_2xx}, "
+                        f"server CPU {result.cpu_ms_per_request:.3f} ms/request")
     return results
 
 

@@ -60,6 +60,7 @@ print(json.dumps({"load": loaded - started, "self_test": tested - loaded, "rss_b
 
 @dataclass(frozen=True)
 class LoadFigures:
+    blas_threads: str  # "1" as in a service worker, or "default"
     n_support: int
     features: int
     bundle_bytes: int
@@ -81,11 +82,12 @@ class SwitchFigures:
     bundle: str
     poll_seconds: float
     cli_seconds: list[float]  # how long `rbfgate activate` ran (it re-verifies the bundle)
-    visible_after_cli: list[float]  # CLI exit -> first answer from the new version
+    visible_after_commit: list[float]  # pointer written (active.json's mtime) -> first answer from the new version
+    visible_after_cli: list[float]  # CLI exit -> first answer (negative: the server switched before the CLI exited)
 
     def to_dict(self) -> dict:
-        return {**asdict(self), "median_visible": statistics.median(self.visible_after_cli),
-                "max_visible": max(self.visible_after_cli)}
+        return {**asdict(self), "median_visible": statistics.median(self.visible_after_commit),
+                "max_visible": max(self.visible_after_commit)}
 
 
 def prepare_large_bundles(cache: Path, n_support: int, features: int, log=print) -> tuple[Path, Path]:
@@ -100,16 +102,22 @@ def prepare_large_bundles(cache: Path, n_support: int, features: int, log=print)
     return paths[0], paths[1]
 
 
-def measure_load(bundle_path: Path, runs: int) -> LoadFigures:
+def measure_load(bundle_path: Path, runs: int, threads: int | None) -> LoadFigures:
+    """Load and self-test in ``runs`` fresh interpreters; ``threads=1`` as a service worker runs."""
+    environ = {key: value for key, value in os.environ.items() if key != "OPENBLAS_NUM_THREADS"}
+    environ["PYTHONPATH"] = str(_REPO)
+    if threads is not None:
+        environ["OPENBLAS_NUM_THREADS"] = str(threads)
     samples = []
     for _ in range(runs):
         completed = subprocess.run([sys.executable, "-c", _LOAD_SCRIPT, str(bundle_path)], capture_output=True,
-                                   text=True, timeout=300, cwd=_REPO, env={**os.environ, "PYTHONPATH": str(_REPO)})
+                                   text=True, timeout=300, cwd=_REPO, env=environ)
         if completed.returncode != 0:
             raise RuntimeError(f"loading {bundle_path} failed: {completed.stderr[-2000:]}")
         samples.append(json.loads(completed.stdout.strip().splitlines()[-1]))
     bundle = load_bundle(bundle_path)
     return LoadFigures(
+        blas_threads="default" if threads is None else str(threads),
         n_support=len(bundle.support_vectors),
         features=len(bundle.feature_names),
         bundle_bytes=sum(file.stat().st_size for file in bundle_path.iterdir()),
@@ -132,22 +140,25 @@ def measure_switch(label: str, versions: tuple[Path, Path], workdir: Path, *, sw
     _activate(store_root, name, first)  # ... and back, so the server starts on the first
     bundle = load_bundle(versions[0])
     record = dict(zip(bundle.feature_names, np.asarray(bundle.manifest.golden.inputs[0]).tolist()))
-    cli_seconds, visible = [], []
+    cli_seconds, after_commit, after_cli = [], [], []
+    pointer = store_root / "models" / name / "active.json"
     with rbfgate_server(store_root, 1, workdir, None, "--poll-interval", f"{poll_seconds:g}") as server, \
             httpx.Client(base_url=server.url, timeout=30.0) as client:
         for index in range(switches):
             target = second if index % 2 == 0 else first
             seen = _Watcher(client, f"/score/{name}", record, target)
             seen.start()
-            started = time.monotonic()
+            started = time.time()
             _activate(store_root, name, target)
-            committed = time.monotonic()
+            returned = time.time()
             arrived = seen.wait()
-            cli_seconds.append(committed - started)
-            visible.append(arrived - committed)
-            log(f"    {label}: activate {target}: CLI {committed - started:.2f} s, "
-                f"first answer from it {arrived - committed:.3f} s after the CLI returned")
-    return SwitchFigures(label, poll_seconds, cli_seconds, visible)
+            committed = pointer.stat().st_mtime_ns / 1e9
+            cli_seconds.append(returned - started)
+            after_commit.append(arrived - committed)
+            after_cli.append(arrived - returned)
+            log(f"    {label}: activate {target}: CLI ran {returned - started:.2f} s; first answer from it "
+                f"{arrived - committed:.3f} s after the pointer was written, {arrived - returned:.3f} s after the CLI exited")
+    return SwitchFigures(label, poll_seconds, cli_seconds, after_commit, after_cli)
 
 
 def _activate(store_root: Path, name: str, version: str) -> None:
@@ -161,7 +172,7 @@ def _activate(store_root: Path, name: str, version: str) -> None:
 
 
 class _Watcher(threading.Thread):
-    """Scores one record in a loop until an answer names ``version``; bounded by _SWITCH_TIMEOUT."""
+    """Scores one record in a loop until an answer names ``version``; bounded by _SWITCH_TIMEOUT (monotonic)."""
 
     def __init__(self, client, path: str, record: dict, version: str) -> None:
         super().__init__(daemon=True)
@@ -173,7 +184,7 @@ class _Watcher(threading.Thread):
         deadline = time.monotonic() + _SWITCH_TIMEOUT
         while time.monotonic() < deadline:
             response = self.client.post(self.path, json=self.body)
-            received = time.monotonic()
+            received = time.time()  # wall clock, to compare with the pointer file's mtime
             if response.status_code != 200:
                 self.failure = f"{response.status_code}: {response.text[:300]}"
                 return

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import functools
 import hashlib
+import io
 import json
 import os
 import subprocess
@@ -23,6 +24,8 @@ from sklearn.datasets import load_iris
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from sklearn.svm import SVC
+
+from model_store.store import Store
 
 REPO = Path(__file__).resolve().parents[2]
 FEATURES = ["sepal_length_cm", "sepal_width_cm", "petal_length_cm", "petal_width_cm"]
@@ -41,6 +44,16 @@ def iris_bundle(bundle_factory, version: str, *, C: float = 1.0, margin: float =
     model, X, y = iris_model(C)
     bundle = bundle_factory(model, X, y=y, name=name, version=version, features=FEATURES, margin=margin)
     return Path(bundle.source)
+
+
+def two_releases(root: Path, bundle_factory) -> Store:
+    """A new store at ``root`` with four entries: publish 1.0.0 and 1.1.0, activate 1.0.0, then 1.1.0."""
+    store = Store(root, create=True)
+    store.publish(iris_bundle(bundle_factory, "1.0.0", C=1.0), actor="publisher")
+    store.publish(iris_bundle(bundle_factory, "1.1.0", C=2.0), actor="publisher")
+    store.activate("iris", "1.0.0", reason="first release", actor="alice")
+    store.activate("iris", "1.1.0", reason="more recall", actor="alice")
+    return store
 
 
 def trail_lines(store, name: str) -> list[bytes]:
@@ -78,6 +91,22 @@ def flip_byte(path: Path, offset_from_end: int = 8) -> None:
     data = bytearray(path.read_bytes())
     data[-offset_from_end] ^= 0xFF
     path.write_bytes(bytes(data))
+
+
+def break_golden_vectors(bundle_dir: Path) -> dict:
+    """Negate ``dual_coef.npy`` and rewrite its checksum in the manifest, which is returned.
+
+    Every file still matches its checksum; only the golden self-test can tell, because every
+    pairwise decision changes sign (the decision function is linear in the dual coefficients).
+    """
+    dual = np.load(bundle_dir / "dual_coef.npy")
+    buffer = io.BytesIO()
+    np.save(buffer, -dual, allow_pickle=False)
+    (bundle_dir / "dual_coef.npy").write_bytes(buffer.getvalue())
+    manifest = json.loads((bundle_dir / "manifest.json").read_text())
+    manifest["files"]["dual_coef.npy"]["sha256"] = hashlib.sha256(buffer.getvalue()).hexdigest()
+    (bundle_dir / "manifest.json").write_text(json.dumps(manifest))
+    return manifest
 
 
 def python_env(**extra: str) -> dict[str, str]:

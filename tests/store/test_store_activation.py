@@ -2,12 +2,10 @@
 
 from __future__ import annotations
 
-import io
 import json
 
-import numpy as np
 import pytest
-from store_support import flip_byte, iris_bundle, start_python, trail_lines, wait_until
+from store_support import break_golden_vectors, flip_byte, iris_bundle, start_python, trail_lines, wait_until
 
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import (
@@ -61,14 +59,7 @@ def test_a_stored_bundle_that_fails_its_golden_vectors_is_refused(store):
     """Checksums, manifest and version record all consistently rewritten: only the self-test can tell."""
     store.activate("iris", "1.0.0", reason="first release", actor="alice")
     version_dir = store.layout.version("iris", "1.1.0")
-    bundle = version_dir / "bundle"
-    dual = np.load(bundle / "dual_coef.npy")
-    buffer = io.BytesIO()
-    np.save(buffer, -dual, allow_pickle=False)  # every pairwise decision changes sign
-    (bundle / "dual_coef.npy").write_bytes(buffer.getvalue())
-    manifest = json.loads((bundle / "manifest.json").read_text())
-    manifest["files"]["dual_coef.npy"]["sha256"] = sha256_bytes(buffer.getvalue())
-    (bundle / "manifest.json").write_text(json.dumps(manifest))
+    manifest = break_golden_vectors(version_dir / "bundle")
     record = json.loads((version_dir / "published.json").read_text())
     record["digest"] = sha256_bytes(canonical_json(manifest))
     (version_dir / "published.json").write_text(json.dumps(record))
@@ -98,6 +89,21 @@ def test_activate_needs_a_one_line_reason(store, reason):
     with pytest.raises(InputError):
         store.activate("iris", "1.0.0", reason=reason, actor="alice")
     assert store.active("iris") is None
+
+
+def test_a_blank_reason_is_named_as_the_reason_field_not_as_a_command_line_flag(store):
+    """The same text reaches CLI users and HTTP clients (whose field is "reason"), so it names no flag."""
+    with pytest.raises(InputError) as caught:
+        store.activate("iris", "1.0.0", reason="   ", actor="alice")
+    assert str(caught.value).startswith("reason must not be empty")
+    assert "--" not in str(caught.value)
+
+
+def test_an_empty_actor_is_named_as_the_actor(store):
+    with pytest.raises(InputError) as caught:
+        store.activate("iris", "1.0.0", reason="canary passed", actor="  ")
+    assert str(caught.value).startswith("actor must not be empty")
+    assert "reason" not in str(caught.value) and "explanation" not in str(caught.value)
 
 
 def test_rollback_returns_to_the_version_active_before_the_current_one(store):

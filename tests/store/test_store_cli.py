@@ -171,6 +171,12 @@ def test_activate_without_a_reason_is_bad_usage(capsys, store_dir):
     assert "--reason" in capsys.readouterr().err
 
 
+def test_a_blank_reason_exits_2_with_one_clear_line(capsys, store_dir):
+    code, _, err = rbfgate(capsys, "activate", "iris", "1.0.0", "--store", store_dir, "--reason", "   ")
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert err.startswith("rbfgate activate: error: reason must not be empty")
+
+
 def test_prune_prints_what_it_removed(capsys, store_dir):
     rbfgate(capsys, "activate", "iris", "1.1.0", "--store", store_dir, "--reason", "smaller")
     code, out, _ = rbfgate(capsys, "prune", "iris", "--store", store_dir, "--keep", "0")

@@ -102,6 +102,19 @@ def test_killed_after_the_rename_the_version_is_complete_and_the_next_change_rec
     assert store.verify_history("iris") == 4
 
 
+def test_a_first_publish_killed_after_the_rename_is_recorded_by_the_next_change(tmp_path, bundle_factory):
+    root = tmp_path / "new-store"
+    Store(root, create=True)
+    bundle = iris_bundle(bundle_factory, "1.0.0")
+    _kill_publisher_at(Store(root), bundle, "stored", tmp_path)  # a new model: only its genesis pointer so far
+    store = Store(root)
+    assert store.publish(bundle, actor="alice").already_present
+    [entry] = store.history("iris")
+    assert (entry["action"], entry["actor"]) == ("publish", "killed-publisher")
+    assert entry["reason"].startswith("recovered:")
+    assert store.verify_history("iris") == 1
+
+
 def test_entries_written_before_the_pointer_update_are_reported_then_completed(store):
     # What a writer killed between appending its entry and replacing the pointer leaves behind.
     last = store.history("iris")[-1]

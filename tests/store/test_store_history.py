@@ -8,7 +8,7 @@ import re
 from datetime import datetime, timezone
 
 import pytest
-from store_support import RFC3339_UTC, encode, iris_bundle, rehash, trail_lines, write_trail_lines
+from store_support import RFC3339_UTC, encode, iris_bundle, rehash, trail_lines, two_releases, write_trail_lines
 
 from model_store.errors import HistoryError
 from model_store.store import Store
@@ -18,11 +18,7 @@ from model_store.store.history import GENESIS
 @pytest.fixture
 def store(tmp_path, bundle_factory):
     """Six entries: publish x2, activate, activate, rollback, activate."""
-    store = Store(tmp_path / "store", create=True)
-    store.publish(iris_bundle(bundle_factory, "1.0.0", C=1.0), actor="publisher")
-    store.publish(iris_bundle(bundle_factory, "1.1.0", C=2.0), actor="publisher")
-    store.activate("iris", "1.0.0", reason="first release", actor="alice")
-    store.activate("iris", "1.1.0", reason="more recall", actor="alice")
+    store = two_releases(tmp_path / "store", bundle_factory)
     store.rollback("iris", reason="latency", actor="bob")
     store.activate("iris", "1.1.0", reason="latency fixed", actor="alice")
     assert store.verify_history("iris") == 6

@@ -6,10 +6,11 @@ import json
 import re
 
 import pytest
-from store_support import RFC3339_UTC, flip_byte, iris_bundle, trail_lines, tree_snapshot
+from store_support import RFC3339_UTC, break_golden_vectors, flip_byte, iris_bundle, trail_lines, tree_snapshot
 
 from model_store.archive import pack_directory
-from model_store.errors import IntegrityError, NotFoundError, StoreError, VersionConflictError
+from model_store.digest import canonical_json, sha256_bytes
+from model_store.errors import GoldenMismatchError, IntegrityError, NotFoundError, StoreError, VersionConflictError
 from model_store.store import Store
 
 
@@ -95,6 +96,40 @@ def test_a_damaged_bundle_is_refused_before_the_store_is_touched(store, bundle_f
     with pytest.raises(IntegrityError, match="dual_coef.npy"):
         store.publish(source, actor="alice")
     assert tree_snapshot(store.root) == before
+
+
+def test_a_damaged_bundle_of_a_stored_model_is_refused_and_recorded(store, bundle_factory):
+    store.publish(iris_bundle(bundle_factory, "1.0.0", C=1.0), actor="alice")
+    source = iris_bundle(bundle_factory, "1.1.0", C=2.0)
+    flip_byte(source / "dual_coef.npy")
+    with pytest.raises(IntegrityError, match="dual_coef.npy"):
+        store.publish(source, actor="mallory")
+    last = store.history("iris")[-1]
+    assert (last["action"], last["version"], last["actor"]) == ("refused-publish", "1.1.0", "mallory")
+    assert "dual_coef.npy" in last["reason"]
+    assert [info.version for info in store.versions("iris")] == ["1.0.0"]
+    assert store.verify_history("iris") == 2
+
+
+def test_a_bundle_failing_its_golden_vectors_for_a_stored_model_is_refused_and_recorded(store, bundle_factory):
+    store.publish(iris_bundle(bundle_factory, "1.0.0", C=1.0), actor="alice")
+    source = iris_bundle(bundle_factory, "1.1.0", C=2.0)
+    manifest = break_golden_vectors(source)
+    with pytest.raises(GoldenMismatchError):
+        store.publish(source, actor="mallory")
+    last = store.history("iris")[-1]
+    assert (last["action"], last["version"], last["actor"]) == ("refused-publish", "1.1.0", "mallory")
+    # the digest the bundle claims: SHA-256 (FIPS 180-4) of its canonical manifest
+    assert last["digest"] == sha256_bytes(canonical_json(manifest))
+    assert store.verify_history("iris") == 2
+
+
+def test_a_failing_bundle_of_a_new_model_leaves_no_model_behind(store, bundle_factory):
+    source = iris_bundle(bundle_factory, "1.0.0")
+    break_golden_vectors(source)
+    with pytest.raises(GoldenMismatchError):
+        store.publish(source, actor="alice")
+    assert not store.layout.model("iris").exists()
 
 
 def test_publishing_a_missing_path_is_not_found(store, tmp_path):

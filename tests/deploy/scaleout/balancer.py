@@ -27,7 +27,7 @@ from pathlib import Path
 
 import httpx
 
-__all__ = ["Balancer", "find_nginx", "render_config"]
+__all__ = ["UPSTREAM_HEADER", "Balancer", "find_nginx", "render_config"]
 
 _START_SECONDS = 15.0
 _STOP_SECONDS = 15.0
@@ -57,6 +57,7 @@ http {{
     upstream rbfgate_replicas {{
 {servers}
         keepalive 16;
+        keepalive_timeout 4s;  # below the replicas' 5 s, so nginx never reuses a connection they are closing
     }}
 
     server {{

@@ -95,6 +95,7 @@ ROLE_MATRIX = {
     ("GET", "/healthz"): ("public", True, "/healthz", None),
     ("GET", "/readyz"): ("public", True, "/readyz", None),
     ("GET", "/metrics"): ("public", True, "/metrics", None),
+    ("GET", "/openapi.json"): ({"score", "operate", "audit"}, True, "/openapi.json", None),
 }
 
 

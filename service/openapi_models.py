@@ -1,0 +1,251 @@
+"""The shapes of the service's request and response bodies, for its OpenAPI document only.
+
+Nothing on the request path validates through these pydantic models (the routes read
+and check their bodies themselves, see ``service.body``), so documenting costs no time
+per request; ``service.openapi`` turns them into the document's components, and the
+fuzzing tests (tests/reliability) check the running service against them.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+from model_store.manifest import FeatureSpec, FileEntry, KernelSpec
+from model_store.naming import MAX_NAME_LENGTH
+from model_store.refusal import REASONS
+
+__all__ = [
+    "ActivateRequest", "Alive", "DOCUMENTED_MODELS", "History", "ModelDetail", "ModelList", "NAME_PATTERN",
+    "Preview", "PreviewRequest", "Problem", "Readiness", "RollbackRequest", "ScoreRequest", "ScoreResponse",
+    "Switched", "VersionDetail",
+]
+
+# model_store.naming.check_name; its "no '..'" rule is not expressed (a name with '..' is a 404).
+NAME_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._-]*$"
+# Printable (Python's str.isprintable) has no portable JSON Schema pattern; a reason with a
+# control character or only spaces is refused with 422, which the document lists.
+_REASON = "one line of printable text, not only spaces, kept in the history"
+
+
+class _Doc(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+Label = str | int  # class labels keep their type: JSON strings or integers
+
+
+class Problem(BaseModel):
+    """RFC 9457 problem details; extension members (``problems``, ``results``...) vary by problem."""
+
+    model_config = ConfigDict(extra="allow")
+    type: str
+    title: str
+    status: int
+    detail: str
+
+
+class RecordProblem(_Doc):
+    feature: str
+    value: Any = Field(description="the value sent (a nested value or over-long text is abbreviated)")
+    reason: Literal[REASONS]  # type: ignore[valid-type]
+    allowed: tuple[float, float] | None = Field(description="the allowed range [low, high], inclusive")
+
+
+class NearestSupport(_Doc):
+    distance: float = Field(ge=0, description="Euclidean distance in the model's scaled space")
+    similarity: float = Field(ge=0, le=1, description="exp(-gamma distance^2)")
+    label: Label
+    index: int = Field(ge=0)
+    percentile: float = Field(ge=0, le=100, description="of the distance among the reference rows")
+
+
+class ScoredResult(_Doc):
+    status: Literal["scored"]
+    label: Label
+    decision: float | dict[str, float] = Field(description="a number for a binary model, class -> number otherwise")
+    probability: dict[str, float] | None = Field(description="class -> probability; null when uncalibrated")
+    nearest_support: NearestSupport
+
+
+class RefusedResult(_Doc):
+    status: Literal["refused"]
+    problems: list[RecordProblem] = Field(min_length=1)
+
+
+class ScoreRequest(_Doc):
+    records: list[dict[str, Any]] = Field(min_length=1, description="records: feature name -> number")
+
+
+class ScoreResponse(_Doc):
+    model: str
+    version: str
+    bundle_sha256: str
+    results: list[ScoredResult | RefusedResult]
+
+
+class ServedVersion(_Doc):
+    version: str
+    bundle_sha256: str
+
+
+class ActiveVersion(_Doc):
+    version: str
+    bundle_sha256: str
+    activated_at: str
+
+
+class LoadFailureInfo(_Doc):
+    version: str
+    bundle_sha256: str
+    error: str
+    detail: str
+    at: str
+
+
+class ModelSummary(_Doc):
+    model: str
+    active: ActiveVersion | None
+    served_by_this_worker: ServedVersion | None
+    load_failure: LoadFailureInfo | None
+
+
+class ModelList(_Doc):
+    models: list[ModelSummary]
+
+
+class PublishedVersion(_Doc):
+    version: str
+    bundle_sha256: str
+    created: str
+    published_at: str
+    active: bool
+
+
+class ModelDetail(ModelSummary):
+    versions: list[PublishedVersion]
+
+
+class Classifier(_Doc):
+    estimator: Literal["SVC", "NuSVC"]
+    classes: list[Label]
+    support_vectors: int
+    support_per_class: list[int]
+    break_ties: bool
+    decision_function_shape: Literal["ovr", "ovo"]
+
+
+class GoldenSummary(_Doc):
+    vectors: int
+    with_probabilities: bool
+
+
+class VersionLinks(_Doc):
+    schema_: str = Field(alias="schema")
+    bundle: str
+    score: str
+
+
+class VersionDetail(_Doc):
+    model: str
+    version: str
+    bundle_sha256: str
+    published_at: str
+    active: bool
+    served_by_this_worker: bool
+    signed: bool
+    format: str
+    created: str
+    creator: str
+    features: list[FeatureSpec]
+    scaler: dict[str, str]
+    kernel: KernelSpec
+    classifier: Classifier
+    calibration: dict[str, str]
+    training: dict[str, Any] | None
+    reference_distance: dict[str, Any] | None
+    golden: GoldenSummary
+    files: dict[str, FileEntry]
+    links: VersionLinks
+
+
+class HistoryEntry(_Doc):
+    seq: int = Field(ge=1)
+    time: str
+    actor: str
+    action: str
+    version: str | None
+    digest: str | None
+    reason: str | None
+    prev_hash: str
+    hash: str
+
+
+class Verification(_Doc):
+    ok: bool
+    entries: int
+    detail: str | None
+
+
+class History(_Doc):
+    model: str
+    entries: list[HistoryEntry]
+    verification: Verification
+
+
+class ActivateRequest(_Doc):
+    version: str = Field(min_length=1, max_length=MAX_NAME_LENGTH, pattern=NAME_PATTERN)
+    reason: str = Field(min_length=1, max_length=1000, description=_REASON)
+
+
+class RollbackRequest(_Doc):
+    reason: str = Field(min_length=1, max_length=1000, description=_REASON)
+
+
+class PreviewRequest(_Doc):
+    version: str = Field(min_length=1, max_length=MAX_NAME_LENGTH, pattern=NAME_PATTERN)
+
+
+class Switched(_Doc):
+    model: str
+    entry: HistoryEntry
+    served_by_this_worker: ServedVersion | None
+    load_failure: LoadFailureInfo | None
+
+
+class Preview(_Doc):
+    model: str
+    candidate: str
+    recent_records: int
+    report: dict[str, Any]
+
+
+class Alive(_Doc):
+    status: Literal["alive"]
+
+
+class ReadyModel(_Doc):
+    model: str
+    active: ServedVersion
+    serving: ServedVersion | None
+    failure: LoadFailureInfo | None
+
+
+class TokensStatus(_Doc):
+    enabled: bool
+    tokens: int
+    error: str | None
+
+
+class Readiness(_Doc):
+    state: Literal["ready", "degraded"]
+    store_error: str | None
+    models: list[ReadyModel]
+    tokens: TokensStatus
+
+
+DOCUMENTED_MODELS = [
+    Problem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, ActivateRequest,
+    RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness,
+]
