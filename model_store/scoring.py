@@ -19,12 +19,12 @@ tiles of support vectors, so that a chunk keeps ``MIN_CHUNK_ROWS`` rows and the
 support matrix is not re-read for every few rows. Nearest support vectors,
 distances, percentiles and range checks came out bit-identical for batch
 sizes 1, 7, 100 and 10,000 (tests/bundle checks it). Decisions and
-probabilities may differ in the last bits (measured: up to 3e-14 relative),
-because OpenBLAS picks its matrix-product kernel by matrix size and the
-kernels sum in different orders; that is six orders of magnitude inside the
-golden tolerance, and a label could only change for a decision within about
-1e-14 of a tie. The scorer never refuses a
-row; it reports the range check and the nearest support vector so that
+probabilities may differ in the last bits, because OpenBLAS picks its
+matrix-product kernel by matrix size and the kernels sum in different orders:
+measured up to 3e-14 relative on the scikit-learn datasets, bounded in general
+by the rounding of a sum, about 1e-12 x max(1, |value|, total coefficient mass).
+A label could only change for a decision that close to a tie. The scorer never
+refuses a row; it reports the range check and the nearest support vector so that
 callers (CLI, service) can apply their refusal policy.
 """
 
