@@ -8,26 +8,17 @@ started it (SIGTERM, then SIGKILL of the group after a timeout).
 from __future__ import annotations
 
 import os
-import signal
-import socket
 import subprocess
 import sys
-import time
-import urllib.error
-import urllib.request
 from pathlib import Path
+
+from tests.process_control import free_port, stop_process_group, wait_until_ok
 
 __all__ = ["Server", "free_port", "rbfgate_server", "reference_server"]
 
 _START_SECONDS = 120.0
 _STOP_SECONDS = 30.0
 _REPO = Path(__file__).resolve().parents[2]
-
-
-def free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
 
 
 class Server:
@@ -57,33 +48,15 @@ class Server:
         return self
 
     def __exit__(self, *exc_info) -> None:
-        if self.process is None or self.process.poll() is not None:
-            return
-        self.process.send_signal(signal.SIGTERM)
-        try:
-            self.process.wait(_STOP_SECONDS)
-        except subprocess.TimeoutExpired:
-            os.killpg(self.process.pid, signal.SIGKILL)
-            self.process.wait(_STOP_SECONDS)
+        stop_process_group(self.process, _STOP_SECONDS)
 
     def cpu_seconds(self) -> float:
         """User + system CPU time used so far by the server and every process under it (Linux /proc)."""
         return sum(_process_cpu(pid) for pid in _descendants(self.process.pid))
 
     def _wait_until_ready(self) -> None:
-        deadline = time.monotonic() + _START_SECONDS
-        while time.monotonic() < deadline:
-            if self.process.poll() is not None:
-                raise RuntimeError(f"{self.name} exited with {self.process.returncode}: "
-                                   f"{self.stderr_path.read_text()[-2000:]}")
-            try:
-                with urllib.request.urlopen(self.url + self.ready_path, timeout=5) as response:
-                    if response.status == 200:
-                        return
-            except (urllib.error.URLError, OSError):
-                pass
-            time.sleep(0.1)
-        raise RuntimeError(f"{self.name} did not become ready within {_START_SECONDS} s")
+        wait_until_ok(self.process, self.url + self.ready_path, _START_SECONDS,
+                      lambda: f"{self.name}: {self.stderr_path.read_text()[-2000:]}")
 
 
 def _process_cpu(pid: int) -> float:

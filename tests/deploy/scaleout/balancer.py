@@ -22,10 +22,9 @@ import shutil
 import signal
 import subprocess
 import tempfile
-import time
 from pathlib import Path
 
-import httpx
+from tests.process_control import stop_process_group, wait_until_ok
 
 __all__ = ["UPSTREAM_HEADER", "Balancer", "find_nginx", "render_config"]
 
@@ -116,13 +115,8 @@ class Balancer:
 
     def __exit__(self, *exc_info) -> None:
         try:
-            if self.process is not None and self.process.poll() is None:
-                self.process.send_signal(signal.SIGQUIT)  # graceful: finish open requests, then exit
-                try:
-                    self.process.wait(_STOP_SECONDS)
-                except subprocess.TimeoutExpired:
-                    os.killpg(self.process.pid, signal.SIGKILL)
-                    self.process.wait(_STOP_SECONDS)
+            # SIGQUIT is nginx's graceful stop: finish open requests, then exit.
+            stop_process_group(self.process, _STOP_SECONDS, first=signal.SIGQUIT)
         finally:
             if self.prefix is not None:
                 shutil.rmtree(self.prefix, ignore_errors=True)
@@ -132,19 +126,11 @@ class Balancer:
         return path.read_text(errors="replace")[-3000:] if path is not None and path.exists() else ""
 
     def _wait_until_answering(self) -> None:
-        deadline = time.monotonic() + _START_SECONDS
-        with httpx.Client(base_url=self.url, timeout=5.0) as client:
-            while time.monotonic() < deadline:
-                if self.process.poll() is not None:
-                    stderr = (self.prefix / "nginx.stderr").read_text(errors="replace")
-                    raise RuntimeError(f"nginx exited with {self.process.returncode}: {stderr} {self.error_log()}")
-                try:
-                    if client.get("/healthz").status_code == 200:
-                        return
-                except httpx.TransportError:
-                    pass
-                time.sleep(0.05)
-        raise RuntimeError(f"nginx did not answer within {_START_SECONDS} s: {self.error_log()}")
+        def describe() -> str:
+            stderr = (self.prefix / "nginx.stderr").read_text(errors="replace")
+            return f"nginx: {stderr} {self.error_log()}"
+
+        wait_until_ok(self.process, f"{self.url}/healthz", _START_SECONDS, describe, interval=0.05)
 
 
 def _user_directive() -> str:

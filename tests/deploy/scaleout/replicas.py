@@ -9,13 +9,11 @@ from __future__ import annotations
 
 import os
 import signal
-import socket
 import subprocess
 import sys
-import time
 from pathlib import Path
 
-import httpx
+from tests.process_control import free_port, stop_process_group, wait_until_ok
 
 __all__ = ["Replica", "clean_environment", "free_port", "start_all"]
 
@@ -23,13 +21,6 @@ _READY_SECONDS = 60.0
 _STOP_SECONDS = 15.0
 # Variables that would change what `rbfgate serve` does if the test runner happened to set them.
 _FOREIGN_PREFIXES = ("RBFGATE_", "PROMETHEUS_MULTIPROC_DIR")
-
-
-def free_port() -> int:
-    """A port the kernel just handed out on 127.0.0.1 (closed again, so a server can bind it)."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
 
 
 def clean_environment() -> dict[str, str]:
@@ -60,18 +51,9 @@ class Replica:
 
     def wait_ready(self, timeout: float = _READY_SECONDS) -> None:
         """Until /readyz answers 200 (every active model loaded and self-tested)."""
-        deadline = time.monotonic() + timeout
-        with httpx.Client(base_url=self.url, timeout=5.0) as client:
-            while time.monotonic() < deadline:
-                if self.process is None or self.process.poll() is not None:
-                    raise RuntimeError(f"{self.name} exited: {self.stderr()}")
-                try:
-                    if client.get("/readyz").status_code == 200:
-                        return
-                except httpx.TransportError:
-                    pass
-                time.sleep(0.05)
-        raise RuntimeError(f"{self.name} was not ready within {timeout} s: {self.stderr()}")
+        if self.process is None:
+            raise RuntimeError(f"{self.name} was never started")
+        wait_until_ok(self.process, f"{self.url}/readyz", timeout, lambda: f"{self.name}: {self.stderr()}", interval=0.05)
 
     def kill(self) -> None:
         """SIGKILL: no shutdown handler runs, open connections are reset."""
@@ -80,14 +62,7 @@ class Replica:
         self.process.wait(_STOP_SECONDS)
 
     def stop(self) -> None:
-        if self.process is None or self.process.poll() is not None:
-            return
-        self.process.send_signal(signal.SIGTERM)
-        try:
-            self.process.wait(_STOP_SECONDS)
-        except subprocess.TimeoutExpired:
-            os.killpg(self.process.pid, signal.SIGKILL)
-            self.process.wait(_STOP_SECONDS)
+        stop_process_group(self.process, _STOP_SECONDS)
 
     def stderr(self) -> str:
         path = self.workdir / f"{self.name}-{self.starts}.err"

@@ -3,26 +3,18 @@
 from __future__ import annotations
 
 import os
-import signal
-import socket
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import httpx
+
+from tests.process_control import free_port, stop_process_group, wait_until_ok
 
 __all__ = ["ServeProcess", "free_port"]
 
 _START_SECONDS = 90.0
 _STOP_SECONDS = 30.0
-
-
-def free_port() -> int:
-    """A port the kernel just handed out on 127.0.0.1 (closed again, so serve can bind it)."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
 
 
 class ServeProcess:
@@ -51,14 +43,7 @@ class ServeProcess:
         return self
 
     def __exit__(self, *exc_info) -> None:
-        if self.process is None or self.process.poll() is not None:
-            return
-        self.process.send_signal(signal.SIGTERM)
-        try:
-            self.process.wait(_STOP_SECONDS)
-        except subprocess.TimeoutExpired:
-            os.killpg(self.process.pid, signal.SIGKILL)
-            self.process.wait(_STOP_SECONDS)
+        stop_process_group(self.process, _STOP_SECONDS)
 
     def client(self, **kwargs) -> httpx.Client:
         return httpx.Client(base_url=self.url, timeout=30.0, **kwargs)
@@ -67,15 +52,5 @@ class ServeProcess:
         return self.stdout_path.read_text().splitlines()
 
     def _wait_until_answering(self) -> None:
-        deadline = time.monotonic() + _START_SECONDS
-        with self.client() as client:
-            while time.monotonic() < deadline:
-                if self.process.poll() is not None:
-                    raise RuntimeError(f"rbfgate serve exited with {self.process.returncode}: {self.stderr_path.read_text()}")
-                try:
-                    if client.get("/healthz").status_code == 200:
-                        return
-                except httpx.TransportError:
-                    pass
-                time.sleep(0.1)
-        raise RuntimeError(f"rbfgate serve did not answer within {_START_SECONDS} s: {self.stderr_path.read_text()}")
+        wait_until_ok(self.process, f"{self.url}/healthz", _START_SECONDS,
+                      lambda: f"rbfgate serve: {self.stderr_path.read_text()}")
