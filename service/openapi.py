@@ -71,7 +71,9 @@ _OPERATIONS: dict[tuple[str, str], tuple[type[BaseModel] | None, dict[int, tuple
         None, {200: ("JSON Schema 2020-12 of one record", "application/schema+json", {"type": "object"})}),
     ("GET", "/models/{model}/versions/{version}/bundle"): (
         None, {200: ("the single-file bundle", "application/x-tar", {"type": "string", "format": "binary"})}),
-    ("GET", "/models/{model}/history"): (None, {200: ("the trail and its verification", _JSON, History)}),
+    ("GET", "/models/{model}/history"): (None, {200: (
+        "the trail and its verification; with ?at=, the version live then", _JSON,
+        {"anyOf": [{"$ref": _REF.format(model="History")}, {"$ref": _REF.format(model="LiveAt")}]})}),
     ("POST", "/models/{model}/activate"): (ActivateRequest, {200: ("activated and switched", _JSON, Switched)}),
     ("POST", "/models/{model}/rollback"): (RollbackRequest, {200: ("rolled back and switched", _JSON, Switched)}),
     ("POST", "/models/{model}/preview"): (PreviewRequest, {200: ("the comparison; nothing changes", _JSON, Preview)}),
@@ -129,8 +131,10 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
             "content": {_JSON: {"schema": {"$ref": _REF.format(model=body_model.__name__)}}},
         }
         statuses |= set(_BODY_STATUSES)
-    if path.endswith(("/activate", "/rollback", "/preview", "/bundle")) or path.startswith("/score/"):
+    if path.endswith(("/activate", "/rollback", "/preview", "/bundle", "/history")) or path.startswith("/score/"):
         statuses.add(409)
+    if path.endswith("/history"):
+        statuses.add(422)  # ?at= that is not an RFC 3339 date-time
     if path == "/readyz":
         statuses.add(503)
     problem = {"$ref": _REF.format(model="Problem")}

@@ -5,7 +5,7 @@
     POST /models/{model}/preview    {"version": "..."}
 
 Activation and rollback go through the store (the same checks and the same
-history as the CLI, with the token's name as the actor) and answer only after
+history as the CLI, with the token's name as the actor and ``via: http``) and answer only after
 this worker has switched, so the caller's next request here is served by the
 new version. Other workers and replicas follow within one poll interval.
 """
@@ -20,6 +20,7 @@ from starlette.concurrency import run_in_threadpool
 
 from model_store.naming import check_name
 from model_store.store.preview import preview
+from model_store.store.state import stack_before
 from service.body import parse_json, read_body
 from service.context import Services
 from service.problems import ServiceProblem, validation_problem
@@ -57,7 +58,7 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
 
         def run() -> dict[str, Any]:
             check_name(model, what="model name")
-            entry = services.store.activate(model, body.version, reason=body.reason, actor=actor)
+            entry = services.store.activate(model, body.version, reason=body.reason, actor=actor, via="http")
             return _switched(services, model, entry)
 
         return await run_in_threadpool(run)
@@ -70,8 +71,11 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
 
         def run() -> dict[str, Any]:
             check_name(model, what="model name")
-            entry = services.store.rollback(model, reason=body.reason, actor=actor)
-            return _switched(services, model, entry)
+            entry = services.store.rollback(model, reason=body.reason, actor=actor, via="http")
+            undone = stack_before(services.store.history(model), entry["seq"])[-1]
+            # Which step it walked back: the activation it undid (see model_store.store.state).
+            return {**_switched(services, model, entry),
+                    "undid": {"version": undone.version, "bundle_sha256": undone.digest, "activated_at_seq": undone.seq}}
 
         return await run_in_threadpool(run)
 
