@@ -58,8 +58,10 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
 
         def run() -> dict[str, Any]:
             check_name(model, what="model name")
-            entry = services.store.activate(model, body.version, reason=body.reason, actor=actor, via="http")
-            return _switched(services, model, entry)
+            verified: list = []
+            entry = services.store.activate(model, body.version, reason=body.reason, actor=actor, via="http",
+                                            on_verified=verified.append)
+            return _switched(services, model, entry, verified)
 
         return await run_in_threadpool(run)
 
@@ -71,10 +73,12 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
 
         def run() -> dict[str, Any]:
             check_name(model, what="model name")
-            entry = services.store.rollback(model, reason=body.reason, actor=actor, via="http")
+            verified: list = []
+            entry = services.store.rollback(model, reason=body.reason, actor=actor, via="http",
+                                            on_verified=verified.append)
             undone = stack_before(services.store.history(model), entry["seq"])[-1]
             # Which step it walked back: the activation it undid (see model_store.store.state).
-            return {**_switched(services, model, entry),
+            return {**_switched(services, model, entry, verified),
                     "undid": {"version": undone.version, "bundle_sha256": undone.digest, "activated_at_seq": undone.seq}}
 
         return await run_in_threadpool(run)
@@ -110,9 +114,12 @@ def _actor(request: Request) -> str:
     return caller.name
 
 
-def _switched(services: Services, model: str, entry: dict[str, Any]) -> dict[str, Any]:
-    loaded = services.registry.refresh(model, force=True)
-    failure = services.registry.failure(model)
+def _switched(services: Services, model: str, entry: dict[str, Any], verified: list) -> dict[str, Any]:
+    # The bundle the store verified for this change is served as it is: loading and verifying it a
+    # second time doubled the time to answer, and kept the other workers' polls waiting for the pointer.
+    registry = services.registry
+    loaded = registry.adopt(model, verified[0]) if verified else registry.refresh(model, force=True)
+    failure = registry.failure(model)
     return {
         "model": model,
         "entry": entry,

@@ -217,6 +217,26 @@ class ModelRegistry:
                 return current
             return self._switch(name, record.version, record.digest, current)
 
+    def adopt(self, name: str, bundle: Bundle) -> LoadedModel | None:
+        """Serve ``bundle``, just verified by an activation or rollback in this worker, if the store's pointer
+        (explained by its history) names it; otherwise follow the pointer as a poll would."""
+        with self._refresh_lock:
+            try:
+                record = self._store.active(name)
+            except RbfgateError:
+                record = None
+            current = self._table.get(name)
+            if (
+                record is None
+                or (record.version, record.digest) != (bundle.version, bundle.digest)
+                or not self._follows(name, record)
+            ):
+                return self.refresh(name, force=True)
+            self._pointers = MappingProxyType({**self._pointers, name: (record.version, record.digest)})
+            if current is not None and (current.version, current.digest) == (bundle.version, bundle.digest):
+                return current
+            return self._install(name, bundle, current, load_seconds=0.0)
+
     def _follows(self, name: str, record) -> bool:
         """Whether the verified history explains ``record`` (checked once per pointer state)."""
         state = (record.version, record.digest, record.history_head)
@@ -243,6 +263,7 @@ class ModelRegistry:
         return True
 
     def _switch(self, name: str, version: str, digest: str, current: LoadedModel | None) -> LoadedModel | None:
+        started = self._clock()
         try:
             bundle = self._store.load_verified(name, version)
             if bundle.digest != digest:
@@ -252,13 +273,17 @@ class ModelRegistry:
         except Exception as exc:  # noqa: BLE001 - whatever a bundle does, the old version keeps serving
             self._record_failure(name, version, digest, exc)
             return current
-        loaded = LoadedModel(name, version, digest, bundle, _now())
+        return self._install(name, bundle, current, load_seconds=self._clock() - started)
+
+    def _install(self, name: str, bundle: Bundle, current: LoadedModel | None, *, load_seconds: float) -> LoadedModel:
+        loaded = LoadedModel(name, bundle.version, bundle.digest, bundle, _now())
         self._table = MappingProxyType({**self._table, name: loaded})  # the switch: one assignment
         self._clear_failure(name)
         old = None if current is None else (current.version, current.digest)
-        self._metrics.switched(name, old, (version, digest))
-        self._on_event({"event": "switch", "model": name, "version": version, "bundle_sha256": digest,
-                        "previous": None if current is None else current.version})
+        self._metrics.switched(name, old, (bundle.version, bundle.digest))
+        self._on_event({"event": "switch", "model": name, "version": bundle.version, "bundle_sha256": bundle.digest,
+                        "previous": None if current is None else current.version,
+                        "load_seconds": round(load_seconds, 3)})
         return loaded
 
     def _record_failure(self, name: str, version: str, digest: str, exc: Exception) -> None:

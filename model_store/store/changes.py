@@ -93,8 +93,14 @@ def publish(store: "Store", source: Path, *, actor: str, via: str = "python") ->
     return PublishOutcome(name, version, digest, already_present=False)
 
 
-def activate(store: "Store", name: str, version: str, *, reason: str, actor: str, via: str = "python") -> dict[str, Any]:
-    """Re-verify the stored bundle and make it the active version; refuse (and record it) if it fails."""
+def activate(
+    store: "Store", name: str, version: str, *, reason: str, actor: str, via: str = "python", on_verified=None
+) -> dict[str, Any]:
+    """Re-verify the stored bundle and make it the active version; refuse (and record it) if it fails.
+
+    ``on_verified(bundle)`` is called with the bundle verified for the change once it is committed, so a
+    caller that serves it (the service) need not load and verify it a second time.
+    """
     check_name(name, what="model name")
     check_name(version, what="model version")
     reason = check_text(reason, what="reason", required=True)
@@ -102,11 +108,14 @@ def activate(store: "Store", name: str, version: str, *, reason: str, actor: str
     with store.locked():
         state = _begin(store, name, actor, via)
         digest = _stored_digest(store, state, version)
-        return _switch(store, state, "activate", version, digest, reason, actor, via)
+        return _switch(store, state, "activate", version, digest, reason, actor, via, on_verified)
 
 
-def rollback(store: "Store", name: str, *, reason: str, actor: str, via: str = "python") -> dict[str, Any]:
-    """Walk back one step of the activation stack (``model_store.store.state``), after re-verifying the target."""
+def rollback(
+    store: "Store", name: str, *, reason: str, actor: str, via: str = "python", on_verified=None
+) -> dict[str, Any]:
+    """Walk back one step of the activation stack (``model_store.store.state``), after re-verifying the target;
+    ``on_verified`` as for ``activate``."""
     check_name(name, what="model name")
     reason = check_text(reason, what="reason", required=True)
     actor, via = _who(actor, via)
@@ -121,7 +130,7 @@ def rollback(store: "Store", name: str, *, reason: str, actor: str, via: str = "
                 f"rollback of {name} would return to {target.version} (active before {current.version} was activated "
                 f"at seq {current.seq}), which was pruned; activate a stored version instead"
             ), actor=actor, via=via)
-        return _switch(store, state, "rollback", target.version, target.digest, reason, actor, via)
+        return _switch(store, state, "rollback", target.version, target.digest, reason, actor, via, on_verified)
 
 
 def prune(store: "Store", name: str, *, keep: int, actor: str, via: str = "python") -> list[str]:
@@ -204,7 +213,8 @@ def _who(actor: str, via: str) -> tuple[str, str]:
 
 
 def _switch(
-    store: "Store", state: ModelState, action: str, version: str, digest: str, reason: str, actor: str, via: str
+    store: "Store", state: ModelState, action: str, version: str, digest: str, reason: str, actor: str, via: str,
+    on_verified=None,
 ) -> dict[str, Any]:
     """Re-verify the stored ``version`` and make it active, recorded as ``action`` ("activate", "rollback").
 
@@ -218,6 +228,8 @@ def _switch(
         store.layout, state, [_draft(store, actor, via, action, version, bundle.digest, reason)],
         activate=(version, bundle.digest),
     )
+    if on_verified is not None:
+        on_verified(bundle)
     return entry
 
 

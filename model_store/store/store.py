@@ -293,11 +293,13 @@ class Store:
     def publish(self, bundle_path: Path, *, actor: str, via: str = "python") -> PublishOutcome:
         return changes.publish(self, Path(bundle_path), actor=actor, via=via)
 
-    def activate(self, name: str, version: str, *, reason: str, actor: str, via: str = "python") -> dict[str, Any]:
-        return changes.activate(self, name, version, reason=reason, actor=actor, via=via)
+    def activate(self, name: str, version: str, *, reason: str, actor: str, via: str = "python",
+                 on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:
+        return changes.activate(self, name, version, reason=reason, actor=actor, via=via, on_verified=on_verified)
 
-    def rollback(self, name: str, *, reason: str, actor: str, via: str = "python") -> dict[str, Any]:
-        return changes.rollback(self, name, reason=reason, actor=actor, via=via)
+    def rollback(self, name: str, *, reason: str, actor: str, via: str = "python",
+                 on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:
+        return changes.rollback(self, name, reason=reason, actor=actor, via=via, on_verified=on_verified)
 
     def prune(self, name: str, *, keep: int, actor: str, via: str = "python") -> list[str]:
         return changes.prune(self, name, keep=keep, actor=actor, via=via)
