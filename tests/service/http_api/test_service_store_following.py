@@ -160,3 +160,28 @@ def test_a_symlinked_signature_is_never_shipped_in_the_bundle_download(make_clie
     assert "symbolic link" in assert_problem(response, 409)["detail"]
     assert b"not part of any bundle" not in response.content
     assert_problem(client.get("/models/iris/versions/2.0.0", headers=bearer(issued["audit"])), 409)
+
+
+class _CountingStore(Store):
+    """Counts full bundle verifications (each reads, hashes and self-tests every array)."""
+
+    def __init__(self, root: Path) -> None:
+        super().__init__(root)
+        self.loads: list[tuple[str, str]] = []
+
+    def load_verified(self, name, version):
+        self.loads.append((name, version))
+        return super().load_verified(name, version)
+
+
+def test_an_api_activation_verifies_the_bundle_once_and_serves_that_copy(store, tokens):
+    """The worker that activates answers after one verification (the store's), not a second load of its own."""
+    path, issued = tokens
+    counting = _CountingStore(store.root)
+    settings = Settings(store_root=store.root, tokens_file=path, poll_seconds=3600.0)
+    with TestClient(create_app(settings, store=counting, environ={}, write_log=lambda event: None)) as client:
+        counting.loads.clear()
+        response = client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "rollout"},
+                               headers=bearer(issued["operate"]))
+        assert response.json()["served_by_this_worker"]["version"] == "2.0.0"
+        assert counting.loads == [("iris", "2.0.0")]
