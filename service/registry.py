@@ -240,7 +240,7 @@ class ModelRegistry:
     def _follows(self, name: str, record) -> bool:
         """Whether the verified history explains ``record`` (checked once per pointer state)."""
         state = (record.version, record.digest, record.history_head)
-        if self._explained.get(name) == state:
+        if self._explained.get(name) == state and name not in self._unexplained:
             return True
         try:
             explained = self._store.explained_active(name)
