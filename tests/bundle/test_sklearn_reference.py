@@ -29,7 +29,7 @@ from sklearn.utils.multiclass import _ovr_decision_function
 
 from model_store.scoring import Scorer
 
-from .reference import DATASETS, assert_close, dataset, probe_rows, sklearn_decisions
+from .reference import DATASETS, check_matches_sklearn, dataset, probe_rows
 
 SCALERS = {
     "none": lambda: None,
@@ -45,31 +45,6 @@ METHODS = ("sigmoid", "isotonic", "temperature")
 
 def _with_scaler(scaler, classifier):
     return classifier if scaler is None else make_pipeline(scaler, classifier)
-
-
-def check_matches_sklearn(bundle, model, X, *, calibration: str, extra_rows=None) -> np.ndarray:
-    """Score probe rows with the bundle and compare every output with scikit-learn; return the rows.
-
-    ``calibration`` is the method the test fitted ("none" for an uncalibrated model): the bundle
-    must say so, and a calibrated bundle's probabilities must equal scikit-learn's predict_proba.
-    """
-    assert bundle.manifest.calibration.method == calibration
-    rows = probe_rows(X) if extra_rows is None else np.vstack([probe_rows(X), extra_rows])
-    scores = bundle.score(rows)
-    expected_labels = model.predict(rows).tolist()  # scikit-learn predict: the reference labels
-    assert scores.labels.tolist() == expected_labels
-    assert [type(label) for label in scores.labels.tolist()] == [type(label) for label in expected_labels]
-    decision, pairwise = sklearn_decisions(model, rows)  # scikit-learn decision_function, ovr and ovo
-    assert_close(scores.decision, decision, "decision_function")
-    if pairwise is None:
-        assert scores.pairwise_decision is None
-    else:
-        assert_close(scores.pairwise_decision, pairwise, "ovo decision_function")
-    if calibration == "none":
-        assert scores.probabilities is None
-    else:
-        assert_close(scores.probabilities, model.predict_proba(rows), "predict_proba")  # scikit-learn predict_proba
-    return rows
 
 
 @pytest.mark.parametrize("scaler", SCALERS)
