@@ -1,6 +1,7 @@
 """The serving path loads and scores a bundle without scikit-learn, joblib or unpickling.
 
-Issue 2: "the serving path never imports scikit-learn, joblib or pickle". numpy itself
+The design (DEVELOPERS.md, Layout; README, Python API): the serving path never imports
+scikit-learn or joblib and never unpickles anything. numpy itself
 imports the standard-library ``pickle`` module at import time (numpy.lib uses it for
 object arrays), so ``'pickle' in sys.modules`` is true for every numpy program and is not
 the criterion. What matters is that nothing is ever *unpickled*: the check replaces

@@ -31,7 +31,12 @@ def _samples(text: str) -> dict[tuple[str, frozenset], float]:
 
 
 def _sample(samples, name: str, **labels) -> float:
-    return samples.get((name, frozenset(labels.items())), 0.0)
+    """The value of one series; a series that is not exposed fails the test (it is not read as 0)."""
+    key = (name, frozenset(labels.items()))
+    if key not in samples:
+        present = sorted(str(dict(labels_)) for series, labels_ in samples if series == name)
+        raise AssertionError(f"no series {name}{labels}; exposed for {name}: {present}")
+    return samples[key]
 
 
 def _mixed_batch():
