@@ -49,10 +49,13 @@ _SERVING_SCRIPT = textwrap.dedent(
         rows = np.asarray(bundle.manifest.golden.inputs)
         scores = bundle.score(rows)
         assert len(scores.labels) == len(rows)
+        named = bundle.score({name: rows[:, index] for index, name in enumerate(bundle.feature_names)})
+        assert named.labels.tolist() == scores.labels.tolist()
 
-    # scipy too: like scikit-learn and joblib it is in the 'train' extra only.
+    # scipy too: like scikit-learn and joblib it is in the 'train' extra only; pandas is never needed,
+    # named columns are recognised without it (model_store/columns.py).
     forbidden = sorted(name for name in sys.modules
-                       if name.split(".")[0] in ("sklearn", "joblib", "scipy")
+                       if name.split(".")[0] in ("sklearn", "joblib", "scipy", "pandas")
                        or name in ("model_store.exporter", "model_store.estimator_parts", "model_store.trainer"))
     print("FORBIDDEN", forbidden)
     print("UNPICKLE CALLS", len(calls))
