@@ -72,6 +72,12 @@ def export_bundle(request: ExportRequest) -> Bundle:
         raise InputError(
             f"the model expects {parts.n_features} features, the reference has {len(request.features)}: {request.features}"
         )
+    if parts.feature_names is not None and list(request.features) != parts.feature_names:
+        # The reference rows are positional: they must be in the order the model was fitted on.
+        raise InputError(
+            f"the model was fitted on the columns {parts.feature_names}, the reference is given as "
+            f"{list(request.features)}; pass the reference columns in the model's order"
+        )
     unknown = sorted(set(request.feature_info) - set(request.features))
     if unknown:
         raise InputError(f"feature info names {unknown[0]!r}, which is not a feature; features are {request.features}")

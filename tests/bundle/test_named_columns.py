@@ -109,3 +109,12 @@ def test_mixed_column_name_types_are_refused(wine_frame_model):
     mixed = frame.rename(columns={"hue": 7})
     with pytest.raises(InputError, match="mixes string and non-string column names"):
         bundle.score(mixed)
+
+
+def test_export_refuses_reference_columns_in_another_order_than_the_model_was_fitted_on(tmp_path):
+    frame, y = load_wine(return_X_y=True, as_frame=True)
+    model = make_pipeline(StandardScaler(), SVC(C=2.0)).fit(frame, y)
+    shuffled = _shuffled(frame)
+    with pytest.raises(InputError, match="pass the reference columns in the model's order"):
+        export_model(model, shuffled.to_numpy(), tmp_path / "bundle", features=list(shuffled.columns))
+    assert not (tmp_path / "bundle").exists()
