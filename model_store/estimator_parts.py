@@ -118,6 +118,7 @@ def take_apart(model: object) -> ModelParts:
             "wrap the model in CalibratedClassifierCV(ensemble=False) to export probabilities"
         )
     classes = _labels(_outer_classes(svc, calibrator))
+    _check_temperature_labels(calibration["method"], svc, classes)
     kind, center, scale = _scaler_parts(scaler, svc.n_features_in_)
     return ModelParts(estimator, svc, scaler, kind, center, scale, calibration, feature_names, classes, notes)
 
@@ -146,6 +147,25 @@ def _outer_classes(svc, calibrator) -> np.ndarray:
         f"the calibrator's classes {outer.tolist()} do not match its SVC's classes {inner.tolist()}; "
         "fit the calibrator and the SVC on the same labels"
     )
+
+
+def _check_temperature_labels(method: str, svc, classes: list) -> None:
+    """Refuse a temperature calibrator whose integer labels are not 0 .. k-1.
+
+    scikit-learn 1.9 encodes only string labels before fitting its temperature calibrator; integer
+    labels go to the multinomial loss as class indices (sklearn/calibration.py,
+    ``_TemperatureScaling.fit``), so labels such as 1, 2, 3 index past the logits and the fitted
+    temperature comes from undefined values (it changed from run to run here). There is no sound
+    model to reproduce.
+    """
+    encoded = list(range(len(classes)))
+    if method == "temperature" and isinstance(classes[0], int) and classes != encoded and \
+            np.asarray(svc.classes_).tolist() == classes:
+        raise ModelFileError(
+            f"temperature calibration with the integer labels {classes}: scikit-learn fits its temperature "
+            f"using the labels as class indices, which only works for {encoded}; refit with labels "
+            f"{encoded} or with string labels"
+        )
 
 
 def _pipeline(pipeline: Pipeline):

@@ -21,12 +21,14 @@ import copy
 
 import numpy as np
 import pytest
+from conftest import export_model  # tests/conftest.py
 from sklearn.calibration import CalibratedClassifierCV
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import MaxAbsScaler, MinMaxScaler, RobustScaler, StandardScaler
 from sklearn.svm import SVC, NuSVC
 from sklearn.utils.multiclass import _ovr_decision_function
 
+from model_store.errors import ModelFileError
 from model_store.scoring import Scorer
 
 from .reference import DATASETS, check_matches_sklearn, dataset, probe_rows
@@ -207,12 +209,15 @@ def test_model_that_never_set_probability_gets_no_probability_note(estimator, bu
     assert not any("probability" in note for note in bundle.manifest.training["notes"])
 
 
-BINARY_LABELS = {"int": lambda y: y * 2 + 1, "str": lambda y: np.array(["benign", "malignant"])[y]}
-MULTICLASS_LABELS = {"int": lambda y: y * 10 - 7, "str": lambda y: np.array(["low", "mid", "high"])[y]}
+BINARY_LABELS = {"int": lambda y: y, "int-offset": lambda y: y * 2 + 1,
+                 "str": lambda y: np.array(["benign", "malignant"])[y]}
+MULTICLASS_LABELS = {"int": lambda y: y, "int-offset": lambda y: y * 10 - 7,
+                     "str": lambda y: np.array(["low", "mid", "high"])[y]}
+CALIBRATED_LABEL_CASES = [(method, labels) for method in METHODS for labels in ("int", "int-offset", "str")
+                          if (method, labels) != ("temperature", "int-offset")]  # refused, see below
 
 
-@pytest.mark.parametrize("labels", ["int", "str"])
-@pytest.mark.parametrize("method", METHODS)
+@pytest.mark.parametrize(("method", "labels"), CALIBRATED_LABEL_CASES)
 @pytest.mark.parametrize("name", ["cancer", "wine"])
 def test_each_calibration_with_int_and_string_labels_matches_sklearn(name, method, labels, bundle_factory):
     # scikit-learn 1.9's temperature calibrator fits its SVC on encoded string labels (classes_
@@ -224,6 +229,26 @@ def test_each_calibration_with_int_and_string_labels_matches_sklearn(name, metho
     bundle = bundle_factory(model, X, y=target)
     assert bundle.classes == model.classes_.tolist()
     check_matches_sklearn(bundle, model, X, calibration=method)
+
+
+@pytest.mark.parametrize("name", ["cancer", "wine"])
+def test_temperature_calibration_with_integer_labels_other_than_0_to_k_is_refused(name, tmp_path):
+    # scikit-learn 1.9 passes integer labels to the temperature's multinomial loss as class indices
+    # (sklearn/calibration.py, _TemperatureScaling.fit): labels such as -7, 3, 13 index past the
+    # logits, so the fitted temperature is not a function of the data (its fit reads undefined
+    # memory). The model is built in the state such a fit leaves, from a sound fit on 0 .. k-1 with
+    # the labels renamed, so the test does not depend on what that memory holds.
+    X, y = dataset(name)
+    target = (BINARY_LABELS if name == "cancer" else MULTICLASS_LABELS)["int-offset"](y)
+    model = CalibratedClassifierCV(make_pipeline(StandardScaler(), SVC(C=2.0)), method="temperature", ensemble=False)
+    model.fit(X, y)
+    renamed = np.unique(target)
+    model.classes_ = renamed
+    model.calibrated_classifiers_[0].classes = renamed
+    model.calibrated_classifiers_[0].estimator[-1].classes_ = renamed  # not encoded: integers are kept
+    with pytest.raises(ModelFileError, match=r"refit with labels \[0, 1"):
+        export_model(model, X, tmp_path / "bundle", y=target)
+    assert not (tmp_path / "bundle").exists()
 
 
 def test_self_test_passes_on_every_fixture_bundle(iris_raw, cancer_standard, wine_sigmoid):
