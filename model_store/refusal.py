@@ -169,7 +169,7 @@ def check_records(
             record_id = record.get(RECORD_ID)
             if record_id is not None or RECORD_ID in record:
                 if not _valid_id(record_id):
-                    found.insert(0, Problem(RECORD_ID, record_id, "invalid_id", None))
+                    found.insert(0, Problem(RECORD_ID, _printable_id(record_id), "invalid_id", None))
                     record_id = None
             record_ids.append(record_id)
         if not allow_extra:
@@ -184,6 +184,13 @@ def check_records(
     values = np.asarray(rows, dtype=np.float64).reshape(len(rows), len(names))
     return CheckedBatch(values, np.asarray(accepted, dtype=np.int64), problems, record_ids)
 
+
+
+def _printable_id(value: Any) -> Any:
+    """An invalid id as it can be echoed: a lone surrogate becomes its escape (UTF-8 cannot hold it)."""
+    if isinstance(value, str):
+        return value.encode("utf-8", "backslashreplace").decode("utf-8")
+    return value
 
 
 def _valid_id(value: Any) -> bool:

@@ -6,9 +6,8 @@ Data: the invented demo pallets (model_store/demo.py) and iris (Fisher 1936, shi
 
 from __future__ import annotations
 
-import csv
-
 import joblib
+from csv_files import write_csv
 from sklearn.datasets import load_iris
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
@@ -16,14 +15,6 @@ from sklearn.svm import SVC
 
 from model_store.cli import main
 from model_store.demo import FEATURES, TARGET, generate
-
-
-def _write(path, header, rows):
-    with open(path, "w", newline="") as handle:
-        writer = csv.writer(handle)
-        writer.writerow(header)
-        writer.writerows(rows)
-    return path
 
 
 def _expect_refusal(capsys, exit_code, out):
@@ -37,7 +28,7 @@ def _expect_refusal(capsys, exit_code, out):
 def test_train_refuses_a_feature_named_id_before_fitting(tmp_path, capsys):
     values, labels = generate(120, seed=3)
     header = ["id", *FEATURES[1:], TARGET]
-    data = _write(tmp_path / "pallets.csv", header, [[*row, label] for row, label in zip(values.tolist(), labels)])
+    data = write_csv(tmp_path / "pallets.csv", header, [[*row, label] for row, label in zip(values.tolist(), labels)])
     out = tmp_path / "bundle"
     exit_code = main(["train", str(data), "--target", TARGET, "--name", "p", "--version", "1", "--out", str(out),
                       "--sigma", "1", "--C", "1", "--calibration", "none"])
@@ -48,7 +39,7 @@ def test_export_refuses_a_feature_named_id(tmp_path, capsys):
     X, y = load_iris(return_X_y=True)
     model_path = tmp_path / "iris.joblib"
     joblib.dump(make_pipeline(StandardScaler(), SVC()).fit(X, y), model_path)
-    reference = _write(tmp_path / "iris.csv", ["id", "b", "c", "d"], X.tolist())
+    reference = write_csv(tmp_path / "iris.csv", ["id", "b", "c", "d"], X.tolist())
     out = tmp_path / "bundle"
     exit_code = main(["export", str(model_path), "--reference", str(reference), "--name", "iris", "--version", "1",
                       "--out", str(out)])

@@ -69,3 +69,12 @@ def test_a_refused_record_keeps_its_id_beside_its_feature_problems(shared_client
     records = [GOOD_RECORD, {**_OUT_OF_RANGE, "id": 42}]
     _, refused = _results(shared_client.post("/score/iris", json={"records": records}))
     assert (refused["id"], [problem["feature"] for problem in refused["problems"]]) == (42, ["petal_length_cm"])
+
+
+def test_an_id_holding_a_lone_surrogate_is_refused_not_a_server_error(shared_client):
+    # RFC 8259 section 8.2: "\\ud800" is valid JSON syntax but no Unicode character, so UTF-8 cannot echo it.
+    body = '{"records": [{"sepal_length_cm": 5.1, "sepal_width_cm": 3.5, "petal_length_cm": 1.4, ' \
+           '"petal_width_cm": 0.2, "id": "\\ud800"}]}'
+    response = shared_client.post("/score/iris", content=body.encode("ascii"), headers={"Content-Type": "application/json"})
+    [problem] = _results(response, 422)[0]["problems"]
+    assert (problem["reason"], problem["value"]) == ("invalid_id", "\\ud800")
