@@ -4,7 +4,7 @@
 
 Served at ``GET /models/{model}/openapi.json`` (the active version) and
 ``GET /models/{model}/versions/{version}/openapi.json``, and written offline by
-``rbfgate inspect BUNDLE --openapi``: the same function, so the three agree byte for byte
+``rbfgate inspect BUNDLE --openapi``: the same function, so the three are the same document
 for one version. Unlike the service-wide document, the types here are this bundle's own:
 
 - ``Record``: one property per feature (``type: number``, inclusive ``minimum``/``maximum``
