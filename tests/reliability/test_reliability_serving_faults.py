@@ -108,7 +108,8 @@ def test_damaged_bundles_are_refused_and_reported_while_the_live_version_serves(
         for (kind, damage), published in zip(DAMAGE.items(), followed):
             os.killpg(server.process.pid, signal.SIGSTOP)
             try:
-                store.activate("iris", published.version, reason=f"rollout, then {kind}", actor="ops")
+                store.activate("iris", published.version, reason=f"rollout, then {kind}", actor="ops",
+                               accept_breaking=True)  # the fault, not the contract, is under test
                 damage(store.bundle_dir("iris", published.version) / files[kind])
             finally:
                 os.killpg(server.process.pid, signal.SIGCONT)
@@ -160,7 +161,7 @@ def test_a_read_only_store_keeps_serving_and_refuses_switches_clearly(tmp_path, 
         time.sleep(0.5)  # let a few polls run against the read-only store
         _assert_answered_by(_score(client, live, issued["score"], rows), live, rows)
         response = client.post("/models/iris/activate", headers=bearer(issued["operate"]),
-                               json={"version": "2.0.0", "reason": "while read-only"})
+                               json={"version": "2.0.0", "reason": "while read-only", "accept_breaking": True})
         problem = assert_problem(response, 503)
         assert "read-only" in problem["detail"] and str(store.root) in problem["detail"]
         assert client.get("/readyz").json()["state"] == "ready"  # reading the store still works
@@ -186,7 +187,7 @@ def test_a_removed_store_keeps_serving_from_memory_and_refuses_switches_clearly(
         body = client.post("/score/cancer", json={"records": cancer.records(cancer.X[:3])}, headers=bearer(issued["score"]))
         assert body.status_code == 200 and body.json()["version"] == "1.0.0"
         response = client.post("/models/iris/activate", headers=bearer(issued["operate"]),
-                               json={"version": "2.0.0", "reason": "store is gone"})
+                               json={"version": "2.0.0", "reason": "store is gone", "accept_breaking": True})
         problem = assert_problem(response, 503)
         assert str(store.root) in problem["detail"] and "no longer exists" in problem["detail"]
         _assert_answered_by(_score(client, live, issued["score"], rows), live, rows)
@@ -255,7 +256,7 @@ def test_a_worker_killed_mid_request_is_replaced_and_no_other_request_fails(tmp_
         # After a switch, exactly one iris version shows as active: the killed worker's gauges are forgotten.
         with server.client() as client:
             response = client.post("/models/iris/activate", headers=bearer(issued["operate"]),
-                                   json={"version": "2.0.0", "reason": "after the worker was replaced"})
+                                   json={"version": "2.0.0", "reason": "after the worker was replaced", "accept_breaking": True})
             assert response.status_code == 200, response.text
             wait_until(lambda: _metric(client.get("/metrics").text, "rbfgate_version_switches_total", model="iris") >= 5,
                        "both workers to switch")

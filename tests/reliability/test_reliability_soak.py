@@ -130,7 +130,7 @@ def test_soak_mixed_traffic_with_switches(tmp_path, service_models):
         with httpx.Client(base_url=server.url, timeout=60.0, headers=bearer(operate)) as client:
             target = "2.0.0"
             while not stop.wait(_SWITCH_SECONDS):
-                response = client.post("/models/iris/activate", json={"version": target, "reason": "soak switch"})
+                response = client.post("/models/iris/activate", json={"version": target, "reason": "soak switch", "accept_breaking": True})
                 if response.status_code != 200:
                     fail(f"activate {target}: {response.status_code} {response.text[:200]}")
                 with lock:

@@ -88,7 +88,7 @@ def test_rows_only_one_version_refuses_are_reported_with_their_problem(setup):
     assert report.refused_by_both == 1
     assert not [item for item in report.examples["active_only"] if item["source"] == "inputs"]
 
-    store.activate("iris", "2.0.0", reason="the other way round", actor="alice")
+    store.activate("iris", "2.0.0", reason="the other way round", actor="alice", accept_breaking=True)
     reverse = preview(store, "iris", "1.0.0", records)
     assert [item["row"] for item in reverse.examples["active_only"] if item["source"] == "inputs"] == [2]
 
