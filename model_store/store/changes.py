@@ -16,12 +16,22 @@ verify just to log its refusal.
 from __future__ import annotations
 
 import os
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, NoReturn
 
-from model_store.bundle import load_bundle
-from model_store.errors import CheckFailedError, InputError, NotFoundError, SignatureError, VersionConflictError
+from model_store.bundle import Bundle, load_bundle
+from model_store.errors import (
+    BreakingChangeError,
+    CheckFailedError,
+    InputError,
+    NotFoundError,
+    SignatureError,
+    VersionConflictError,
+)
 from model_store.manifest import SIGNATURE_FILE
+from model_store.refusal import Converter, from_json
+from model_store.store.contract import compare_contracts
 from model_store.naming import check_name
 from model_store.store.durable import atomic_write, fsync_directory
 from model_store.store.history import VIAS, check_text
@@ -94,10 +104,23 @@ def publish(store: "Store", source: Path, *, actor: str, via: str = "python") ->
 
 
 def activate(
-    store: "Store", name: str, version: str, *, reason: str, actor: str, via: str = "python", on_verified=None
+    store: "Store",
+    name: str,
+    version: str,
+    *,
+    reason: str,
+    actor: str,
+    via: str = "python",
+    accept_breaking: bool = False,
+    recent: Sequence[Mapping[str, Any]] = (),
+    convert: Converter = from_json,
+    on_verified: Callable[[Bundle], None] | None = None,
 ) -> dict[str, Any]:
     """Re-verify the stored bundle and make it the active version; refuse (and record it) if it fails.
 
+    A candidate whose contract would break callers of the active version
+    (``model_store.store.contract``; ``recent`` input records judge narrowed ranges) is refused
+    with ``BreakingChangeError`` unless ``accept_breaking``; then the entry lists what was accepted.
     ``on_verified(bundle)`` is called with the bundle verified for the change once it is committed, so a
     caller that serves it (the service) need not load and verify it a second time.
     """
@@ -108,11 +131,24 @@ def activate(
     with store.locked():
         state = _begin(store, name, actor, via)
         digest = _stored_digest(store, state, version)
-        return _switch(store, state, "activate", version, digest, reason, actor, via, on_verified)
+
+        def check_contract(candidate: Bundle) -> list[str] | None:
+            breaking = _breaking_changes(store, state, candidate, recent, convert)
+            if breaking and not accept_breaking:
+                listed = "; ".join(breaking)
+                _refuse(store, state, "refused-activate", version, digest, reason, BreakingChangeError(
+                    f"{name} {version} would break callers of the active version: {listed}; tell them, then "
+                    "activate with --accept-breaking (HTTP: \"accept_breaking\": true)", tuple(breaking),
+                ), actor=actor, via=via)
+            return breaking or None
+
+        return _switch(store, state, "activate", version, digest, reason, actor, via, check=check_contract,
+                       on_verified=on_verified)
 
 
 def rollback(
-    store: "Store", name: str, *, reason: str, actor: str, via: str = "python", on_verified=None
+    store: "Store", name: str, *, reason: str, actor: str, via: str = "python",
+    on_verified: Callable[[Bundle], None] | None = None,
 ) -> dict[str, Any]:
     """Walk back one step of the activation stack (``model_store.store.state``), after re-verifying the target;
     ``on_verified`` as for ``activate``."""
@@ -130,7 +166,8 @@ def rollback(
                 f"rollback of {name} would return to {target.version} (active before {current.version} was activated "
                 f"at seq {current.seq}), which was pruned; activate a stored version instead"
             ), actor=actor, via=via)
-        return _switch(store, state, "rollback", target.version, target.digest, reason, actor, via, on_verified)
+        return _switch(store, state, "rollback", target.version, target.digest, reason, actor, via,
+                       on_verified=on_verified)
 
 
 def prune(store: "Store", name: str, *, keep: int, actor: str, via: str = "python") -> list[str]:
@@ -214,23 +251,43 @@ def _who(actor: str, via: str) -> tuple[str, str]:
 
 def _switch(
     store: "Store", state: ModelState, action: str, version: str, digest: str, reason: str, actor: str, via: str,
-    on_verified=None,
+    *, check: Callable[[Bundle], list[str] | None] | None = None, on_verified: Callable[[Bundle], None] | None = None,
 ) -> dict[str, Any]:
     """Re-verify the stored ``version`` and make it active, recorded as ``action`` ("activate", "rollback").
 
-    If the stored bundle no longer verifies, record "refused-<action>" and raise.
+    If the stored bundle no longer verifies, record "refused-<action>" and raise. ``check``, given
+    the verified bundle, may refuse too; what it returns is recorded as ``accepted_breaking``.
     """
     try:
         bundle = store.load_verified(state.name, version)
     except CheckFailedError as exc:
         _refuse(store, state, f"refused-{action}", version, digest, reason, exc, actor=actor, via=via)
+    accepted = check(bundle) if check is not None else None
     [entry] = commit(
-        store.layout, state, [_draft(store, actor, via, action, version, bundle.digest, reason)],
+        store.layout, state,
+        [_draft(store, actor, via, action, version, bundle.digest, reason, accepted_breaking=accepted)],
         activate=(version, bundle.digest),
     )
     if on_verified is not None:
         on_verified(bundle)
     return entry
+
+
+def _breaking_changes(store: "Store", state: ModelState, candidate: Bundle, recent, convert) -> list[str]:
+    """The breaking changes from the active version to ``candidate``, one line each.
+
+    Nothing to compare when no version is active or the candidate is the active one. An active
+    version whose manifest cannot be read is not compared either: activating a good version is
+    how an operator replaces a damaged one, and the damage is reported by the service already.
+    """
+    active_version = state.active_version()
+    if active_version is None or active_version == candidate.version:
+        return []
+    try:
+        _, active, _ = store.manifest(state.name, active_version)
+    except (CheckFailedError, InputError):
+        return []
+    return [change.detail for change in compare_contracts(active, candidate.manifest, recent, convert).breaking]
 
 
 def _refuse_unverified(store: "Store", source: Path, exc: CheckFailedError, actor: str, via: str) -> NoReturn:
@@ -278,6 +335,7 @@ def _refuse(store, state, action, version, digest, reason, exc: CheckFailedError
 
 
 def _draft(store, actor, via, action, version, digest, reason, **fields) -> dict[str, Any]:
-    """The make_entry arguments of one entry; ``fields`` are those its kind declares (entry_kinds.KINDS)."""
+    """The make_entry arguments of one entry; ``fields`` are those its kind declares (entry_kinds.KINDS),
+    an optional one given as None is left out."""
     return {"time": store.now(), "actor": actor, "via": via, "action": action, "version": version, "digest": digest,
-            "reason": reason, **fields}
+            "reason": reason, **{name: value for name, value in fields.items() if value is not None}}

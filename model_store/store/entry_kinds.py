@@ -9,8 +9,9 @@ verify, since their hashes cover exactly what they hold.
 Adding a kind of entry (say, a per-model choice recorded like an activation):
 
 1. add an ``EntryKind`` to ``KINDS`` with its action name, its trail, a one-line
-   meaning and its own fields with their checks (each check returns None when
-   the value is acceptable, else what is wrong);
+   meaning and its own fields (``fields``: always present; ``optional``: may be
+   present) with their checks (each check returns None when the value is
+   acceptable, else what is wrong);
 2. write it through ``recovery.commit`` with a draft holding those fields
    (``changes._draft(..., **fields)``), under the store lock, after ``_begin``;
 3. if it changes what a model's history says is in force, fold it in
@@ -52,6 +53,12 @@ def _text(value: Any) -> str | None:
     return None if isinstance(value, str) and len(value) <= 1000 and value.isprintable() else "expected one line of text"
 
 
+def _lines(value: Any) -> str | None:
+    if isinstance(value, list) and value and all(isinstance(item, str) for item in value):
+        return None
+    return "expected a non-empty list of text"
+
+
 @dataclass(frozen=True)
 class EntryKind:
     """One action: its trail, its meaning, and the fields it carries besides the core ones."""
@@ -60,6 +67,7 @@ class EntryKind:
     trail: str
     meaning: str
     fields: Mapping[str, FieldCheck] = field(default_factory=dict)
+    optional: Mapping[str, FieldCheck] = field(default_factory=dict)  # fields an entry of this kind may carry
 
 
 _KEY_FIELDS = {"key_id": _hex(16), "public_key": _hex(64), "label": _text}
@@ -67,7 +75,8 @@ _KEY_FIELDS = {"key_id": _hex(16), "public_key": _hex(64), "label": _text}
 KINDS: dict[str, EntryKind] = {kind.action: kind for kind in (
     EntryKind("publish", MODEL_TRAIL, "a version was stored"),
     EntryKind("add-signature", MODEL_TRAIL, "a trusted signature was added beside an already published version"),
-    EntryKind("activate", MODEL_TRAIL, "the active pointer moved to a version"),
+    EntryKind("activate", MODEL_TRAIL, "the active pointer moved to a version",
+              optional={"accepted_breaking": _lines}),  # the breaking changes the operator accepted
     EntryKind("rollback", MODEL_TRAIL, "the active pointer moved back one step (see model_store.store.state)"),
     EntryKind("prune", MODEL_TRAIL, "a version was removed by retention"),
     EntryKind("refused-publish", MODEL_TRAIL, "a publish was refused (conflicting digest, bad signature, checksum or "
@@ -86,10 +95,12 @@ def check_fields(action: str, extra: Mapping[str, Any]) -> str | None:
     kind = KINDS.get(action)
     if kind is None:
         return f"unknown action {action!r}"
-    if sorted(extra) != sorted(kind.fields):
-        return f"action {action!r} carries the fields {sorted(kind.fields) or 'none'} besides the core ones, found {sorted(extra)}"
-    for name, check in kind.fields.items():
-        problem = check(extra[name])
+    if not set(kind.fields) <= set(extra) <= set(kind.fields) | set(kind.optional):
+        allowed = sorted(kind.fields) + [f"{name} (optional)" for name in sorted(kind.optional)]
+        return f"action {action!r} carries the fields {allowed or 'none'} besides the core ones, found {sorted(extra)}"
+    checks = {**kind.fields, **kind.optional}
+    for name in extra:
+        problem = checks[name](extra[name])
         if problem is not None:
             return f"{name} {extra[name]!r}: {problem}"
     return None

@@ -13,9 +13,15 @@ Every entry holds these core fields:
     hash       SHA-256 (FIPS 180-4) of the canonical JSON of the entry without ``hash``
 
 and, in entries written since it was introduced, ``via`` (``cli``, ``http``
-or ``python``: through what the actor acted) plus the fields of its kind.
-Older entries have the core fields only; both verify, because a hash covers
-exactly the fields its entry holds, and no old entry is ever rewritten.
+or ``python``: through what the actor acted) plus the fields of its kind
+(``model_store.store.entry_kinds``), for example, only on an activation that
+the operator let through although it breaks callers:
+
+    accepted_breaking  the breaking changes accepted, one line each (``model_store.store.contract``)
+
+Older entries have the core fields only (and possibly ``accepted_breaking``);
+both verify, because a hash covers exactly the fields its entry holds, and no
+old entry is ever rewritten.
 
 Changing any byte of an entry changes its hash, and the next entry records
 the old one, so an edit anywhere breaks the chain at that point. The active
@@ -53,8 +59,9 @@ __all__ = [
 GENESIS = "0" * 64
 FIELDS = ("seq", "time", "actor", "action", "version", "digest", "reason", "prev_hash", "hash")
 ACTIONS = tuple(KINDS)
-# Entries written before ``via`` existed hold exactly FIELDS and one of these actions.
+# Entries written before ``via`` existed hold FIELDS (and possibly these) and one of these actions.
 _LEGACY_ACTIONS = frozenset(ACTIONS[:9])
+_LEGACY_OPTIONAL = frozenset({"accepted_breaking"})
 _MAX_TEXT = 1000
 
 
@@ -123,8 +130,9 @@ def make_entry(
 ) -> dict[str, Any]:
     """The entry that follows ``previous`` (None for the first), with its hash filled in.
 
-    ``fields`` are the fields of the action's kind (``entry_kinds.KINDS``).
+    ``fields`` are the fields of the action's kind (``entry_kinds.KINDS``); an optional one given as None is left out.
     """
+    fields = {name: value for name, value in fields.items() if value is not None}
     problem = check_fields(action, fields)
     if problem is not None:
         raise ValueError(f"history entry {action}: {problem}")
@@ -214,12 +222,12 @@ def _parse(raw: bytes, number: int, path: Path, model: str) -> dict[str, Any]:
 def _shape_problem(entry: dict[str, Any]) -> str | None:
     """None when ``entry`` is a legacy entry (core fields, a legacy action) or a current one (``via`` + its kind's fields)."""
     extra = {key: value for key, value in entry.items() if key not in FIELDS}
-    if not extra:
-        if entry["action"] in _LEGACY_ACTIONS:
-            return None
-        return f"action {entry['action']!r} without \"via\": it is not an action entries without \"via\" can have"
     if "via" not in extra:
-        return f"fields {sorted(extra)} beyond {list(FIELDS)}, but no \"via\""
+        if entry["action"] not in _LEGACY_ACTIONS:
+            return f"action {entry['action']!r} without \"via\": it is not an action entries without \"via\" can have"
+        if not set(extra) <= _LEGACY_OPTIONAL:
+            return f"fields {sorted(extra)} beyond {list(FIELDS)}, but no \"via\""
+        return check_fields(str(entry["action"]), extra) if extra else None
     if extra.pop("via") not in VIAS:
         return f"via {entry['via']!r} is not one of {list(VIAS)}"
     return check_fields(str(entry["action"]), extra)

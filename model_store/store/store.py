@@ -9,8 +9,7 @@ Changes (publish, activate, rollback, prune, trust) live in
 from __future__ import annotations
 
 import json
-
-from collections.abc import Callable
+from collections.abc import Callable, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -27,7 +26,8 @@ from model_store.errors import (
     StoreError,
     UnsafeArchiveError,
 )
-from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE
+from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, Manifest, parse_manifest_bytes
+from model_store.refusal import Converter, from_json
 from model_store.store import changes
 from model_store.store.audit import check_active, check_chain, check_head, check_versions, head_position
 from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_file, store_entry_kind
@@ -157,6 +157,18 @@ class Store:
     def verified_members(self, name: str, version: str) -> tuple[Bundle, dict[str, bytes]]:
         """The verified bundle and the bytes of its files (manifest, arrays, signature), read once, for shipping."""
         return self._load_checked(name, version, with_members=True)
+
+    def manifest(self, name: str, version: str) -> tuple[dict[str, Any], Manifest, str]:
+        """The stored manifest (document, parsed, digest), read without following links; its arrays are not read."""
+        path = self.bundle_dir(name, version) / MANIFEST_FILE
+        try:
+            data = read_store_file(self.root, path)
+        except UnsafeStoreEntry as exc:
+            raise IntegrityError(f"stored bundle {name} {version}: {exc}") from exc
+        if data is None:
+            raise IntegrityError(f"stored bundle {name} {version}: {MANIFEST_FILE} is missing; publish a new version")
+        document, manifest = parse_manifest_bytes(data, source=str(path))
+        return document, manifest, sha256_bytes(canonical_json(document))
 
     def signature(self, name: str, version: str) -> bytes | None:
         """The stored ``signature.json`` (read without following links), or None when the version is unsigned."""
@@ -294,8 +306,12 @@ class Store:
         return changes.publish(self, Path(bundle_path), actor=actor, via=via)
 
     def activate(self, name: str, version: str, *, reason: str, actor: str, via: str = "python",
-                 on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:
-        return changes.activate(self, name, version, reason=reason, actor=actor, via=via, on_verified=on_verified)
+                 accept_breaking: bool = False, recent: Sequence[Mapping[str, Any]] = (),
+                 convert: Converter = from_json, on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:
+        """See ``changes.activate``: refuses a candidate that breaks callers unless ``accept_breaking``."""
+        return changes.activate(self, name, version, reason=reason, actor=actor, via=via,
+                                accept_breaking=accept_breaking, recent=recent, convert=convert,
+                                on_verified=on_verified)
 
     def rollback(self, name: str, *, reason: str, actor: str, via: str = "python",
                  on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:
