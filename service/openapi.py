@@ -19,6 +19,7 @@ from pydantic import BaseModel
 from pydantic.json_schema import models_json_schema
 
 from model_store.naming import MAX_NAME_LENGTH
+from model_store.store.timeline import AT_PATTERN
 from service.auth import ACCESS_RULES
 from service.openapi_models import (
     DOCUMENTED_MODELS,
@@ -148,6 +149,9 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
     rule = ACCESS_RULES[(method, path)]
     operation["operationId"] = described.operation_id
     for parameter in operation.get("parameters", []):
+        if parameter["in"] == "query" and parameter["name"] == "at":
+            parameter["description"] = "RFC 3339 date-time with Z or an offset: answer the version live then"
+            parameter["schema"] = {"type": "string", "format": "date-time", "pattern": AT_PATTERN}
         if parameter["in"] == "path":
             parameter["schema"] = {"type": "string", "minLength": 1, "maxLength": MAX_NAME_LENGTH,
                                    "pattern": NAME_PATTERN}

@@ -22,9 +22,10 @@ from model_store.errors import InputError, NotFoundError
 from model_store.store.history import format_time
 from model_store.store.state import Step, apply_entry
 
-__all__ = ["LiveAt", "live_at", "parse_moment"]
+__all__ = ["AT_PATTERN", "LiveAt", "live_at", "parse_moment"]
 
 # RFC 3339 section 5.6 date-time; "T" may be lower case or a space (section 5.6, NOTE), the offset is required.
+AT_PATTERN = r"^\d{4}-\d{2}-\d{2}[Tt ]\d{2}:\d{2}:\d{2}(\.\d+)?([Zz]|[+-]\d{2}:\d{2})$"
 _DATE_TIME = re.compile(
     r"(\d{4})-(\d{2})-(\d{2})[Tt ](\d{2}):(\d{2}):(\d{2})(\.\d+)?(?:([Zz])|([+-])(\d{2}):(\d{2}))"
 )
@@ -58,16 +59,19 @@ def parse_moment(text: str) -> datetime:
             "give the date, 'T', the time and 'Z' or an offset from UTC"
         )
     year, month, day, hour, minute, second, fraction, zulu, sign, offset_hours, offset_minutes = match.groups()
+    if int(year) == 0:  # RFC 3339 allows year 0000, which Python's datetime cannot hold: before any entry anyway
+        return datetime.min.replace(tzinfo=timezone.utc)
     try:
         offset = timedelta(0) if zulu else (1 if sign == "+" else -1) * timedelta(
             hours=int(offset_hours), minutes=int(offset_minutes)
         )
         moment = datetime(int(year), int(month), int(day), int(hour), int(minute), int(second),
                           tzinfo=timezone(offset))
+        moment = moment.astimezone(timezone.utc) + timedelta(seconds=float(fraction or 0))
     except ValueError as exc:
         raise InputError(f"time {text!r} is not a valid date-time ({exc}); {_EXAMPLE}") from None
-    if fraction:
-        moment += timedelta(seconds=float(fraction))
+    except OverflowError:  # within an offset of datetime's first or last moment
+        return (datetime.min if int(year) < 5000 else datetime.max).replace(tzinfo=timezone.utc)
     return moment
 
 

@@ -68,7 +68,7 @@ def test_a_hand_edited_pointer_is_not_served_and_the_model_is_not_ready(make_cli
 
 def test_a_pointer_the_history_explains_is_followed(make_client, store):
     client = make_client(store.root)
-    Store(store.root).activate("iris", "2.0.0", reason="rollout", actor="ops", via="cli")
+    Store(store.root).activate("iris", "2.0.0", reason="rollout", actor="ops", via="cli", accept_breaking=True)
     client.app.state.services.registry.refresh_all()
     assert client.get("/models/iris").json()["served_by_this_worker"]["version"] == "2.0.0"
     assert client.get("/readyz").json()["state"] == "ready"
@@ -142,7 +142,8 @@ def test_history_at_over_http_matches_the_cli_and_refuses_bad_times(make_client,
 def test_activation_over_http_records_the_token_name_and_via_http(make_client, store, tokens):
     path, issued = tokens
     client = make_client(store.root, tokens_file=path)
-    response = client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "rollout"},
+    # 2.0.0 is uncalibrated (1.0.0 is not): the contract check asks for accept_breaking.
+    response = client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "rollout", "accept_breaking": True},
                            headers=bearer(issued["operate"]))
     entry = response.json()["entry"]
     assert (entry["actor"], entry["via"]) == ("ops-alice", "http")
@@ -181,7 +182,7 @@ def test_an_api_activation_verifies_the_bundle_once_and_serves_that_copy(store, 
     settings = Settings(store_root=store.root, tokens_file=path, poll_seconds=3600.0)
     with TestClient(create_app(settings, store=counting, environ={}, write_log=lambda event: None)) as client:
         counting.loads.clear()
-        response = client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "rollout"},
-                               headers=bearer(issued["operate"]))
+        response = client.post("/models/iris/activate", headers=bearer(issued["operate"]),
+                               json={"version": "2.0.0", "reason": "rollout", "accept_breaking": True})
         assert response.json()["served_by_this_worker"]["version"] == "2.0.0"
         assert counting.loads == [("iris", "2.0.0")]
