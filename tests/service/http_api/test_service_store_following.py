@@ -11,7 +11,6 @@ import os
 import subprocess
 import sys
 import threading
-import time
 import warnings
 from pathlib import Path
 
@@ -21,22 +20,13 @@ from service.settings import Settings
 from service.tokens import revoke_token
 
 from .cases import assert_problem, bearer
+from .test_service_switching import _wait_until  # the bounded wait of the switching tests
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore", UserWarning)
     from fastapi.testclient import TestClient
 
 _REPO = Path(__file__).resolve().parents[3]
-
-
-def _wait_until(predicate, seconds: float = 30.0) -> bool:
-    """Bounded wait for a state; asserts nothing about how long it took."""
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
-        if predicate():
-            return True
-        time.sleep(0.05)
-    return predicate()
 
 
 def _edit_pointer_by_hand(store: Store, version: str) -> None:
