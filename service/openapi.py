@@ -28,6 +28,8 @@ from service.openapi_models import (
     History,
     ModelDetail,
     ModelList,
+    OutsideDomainChoice,
+    OutsideDomainRequest,
     Preview,
     PreviewRequest,
     Readiness,
@@ -75,6 +77,8 @@ _OPERATIONS: dict[tuple[str, str], tuple[type[BaseModel] | None, dict[int, tuple
     ("POST", "/models/{model}/activate"): (ActivateRequest, {200: ("activated and switched", _JSON, Switched)}),
     ("POST", "/models/{model}/rollback"): (RollbackRequest, {200: ("rolled back and switched", _JSON, Switched)}),
     ("POST", "/models/{model}/preview"): (PreviewRequest, {200: ("the comparison; nothing changes", _JSON, Preview)}),
+    ("POST", "/models/{model}/outside-domain"): (
+        OutsideDomainRequest, {200: ("the choice, recorded in the history", _JSON, OutsideDomainChoice)}),
     ("GET", "/healthz"): (None, {200: ("the process answers", _JSON, Alive)}),
     ("GET", "/readyz"): (None, {200: ("every active model is loaded", _JSON, Readiness)}),
     ("GET", "/metrics"): (None, {200: ("Prometheus text exposition", "text/plain", {"type": "string"})}),
@@ -129,7 +133,7 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
             "content": {_JSON: {"schema": {"$ref": _REF.format(model=body_model.__name__)}}},
         }
         statuses |= set(_BODY_STATUSES)
-    if path.endswith(("/activate", "/rollback", "/preview", "/bundle")) or path.startswith("/score/"):
+    if path.endswith(("/activate", "/rollback", "/preview", "/bundle", "/outside-domain")) or path.startswith("/score/"):
         statuses.add(409)
     if path == "/readyz":
         statuses.add(503)
