@@ -2,9 +2,10 @@
 
 Allowed ranges: an explicit ``allowed`` from the feature-info file wins; otherwise the range of
 the reference and holdout rows together, widened by ``margin`` x its span on each side and clipped
-to the feature's physical ``bounds``. A feature whose values are all >= 0 never gets a negative
-lower bound (common practice: counts, areas and concentrations are non-negative), recorded as
-``non_negative`` in the manifest.
+to the feature's physical ``bounds``. A feature without ``bounds`` whose values are all >= 0 never
+gets a negative lower bound (common practice: counts, areas and concentrations are non-negative),
+recorded as ``non_negative`` in the manifest; give ``bounds`` for a feature that can go negative
+(a temperature in degrees Celsius) and was only positive in the data.
 
 Nearest-support distance quantiles: for each reference row, the distance to the nearest support
 vector *other than itself* (a reference row within 1e-9 x max(1, |z|) of a support vector is that
@@ -40,10 +41,10 @@ def feature_ranges(
             continue
         lower = low[index] - margin * span[index]
         upper = high[index] + margin * span[index]
-        non_negative = bool(low[index] >= 0 and lower < 0)
+        bounds = info.get("bounds")
+        non_negative = bool(bounds is None and low[index] >= 0 and lower < 0)
         if non_negative:
             lower = 0.0
-        bounds = info.get("bounds")
         if bounds is not None:  # physical limits: a humidity cannot pass 100 %RH
             lower, upper = max(lower, bounds[0]), min(upper, bounds[1])
         ranges.append(([float(lower), float(upper)], non_negative))
