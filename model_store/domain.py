@@ -28,6 +28,8 @@ __all__ = ["OUTSIDE", "TYPICAL", "UNUSUAL", "VERDICTS", "DomainModel"]
 
 TYPICAL, UNUSUAL, OUTSIDE = "typical", "unusual", "outside"
 VERDICTS = (TYPICAL, UNUSUAL, OUTSIDE)
+# searchsorted over (outside_below, unusual_below) gives 0 below the first, 1 between, 2 above.
+_BY_POSITION = np.asarray((OUTSIDE, UNUSUAL, TYPICAL), dtype=object)
 
 
 class DomainModel:
@@ -39,6 +41,7 @@ class DomainModel:
         self.intercept = float(intercept)
         self.unusual_below = float(unusual_below)
         self.outside_below = float(outside_below)
+        self._thresholds = np.array([self.outside_below, self.unusual_below])
 
     @property
     def gamma(self) -> float:
@@ -46,10 +49,10 @@ class DomainModel:
 
     def decision(self, scaled: np.ndarray, scaled_sq: np.ndarray) -> np.ndarray:
         """(n,) one-class decision of ``scaled`` (n, f) rows with squared norms ``scaled_sq`` (n,)."""
-        sums, _ = self.kernel.evaluate(scaled, scaled_sq)
+        sums, _ = self.kernel.evaluate(scaled, scaled_sq, nearest=False)
         return sums[:, 0] + self.intercept
 
     def verdicts(self, score: np.ndarray) -> np.ndarray:
         """(n,) object array of ``typical`` / ``unusual`` / ``outside`` for (n,) scores."""
-        index = (score < self.unusual_below).astype(np.int64) + (score < self.outside_below)
-        return np.asarray(VERDICTS, dtype=object)[index]
+        # side="right": a score equal to a threshold is on its upper side (score >= threshold).
+        return _BY_POSITION[np.searchsorted(self._thresholds, score, side="right")]

@@ -19,6 +19,7 @@ few rows. The nearest support vector is the first one at the largest exponent, a
 
 from __future__ import annotations
 
+import math
 from contextlib import nullcontext
 
 import numpy as np
@@ -71,35 +72,53 @@ class KernelExpansion:
     def n_outputs(self) -> int:
         return self.coef.shape[1]
 
-    def evaluate(self, scaled: np.ndarray, scaled_sq: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def evaluate(self, scaled: np.ndarray, scaled_sq: np.ndarray, *, nearest: bool = True
+                 ) -> tuple[np.ndarray, np.ndarray | None]:
         """(sums (n, m), nearest (n,) int) for ``scaled`` (n, f) rows whose squared norms are ``scaled_sq`` (n,).
+
+        ``nearest=False`` skips the nearest support vector (None is returned for it), which the
+        domain model does not report: one reduction instead of an argmax and a gather per chunk.
 
         A row whose ``-gamma |z|^2`` overflows is infinitely far from every support vector: its
         kernel is 0, so its sums are exactly 0 (libsvm's answer) and its nearest index is 0.
         """
         n_rows = len(scaled)
         n_features = scaled.shape[1]
-        with np.errstate(over="ignore", invalid="ignore"):
-            augmented = np.empty((n_rows, n_features + 2))
-            augmented[:, :-2] = scaled
-            augmented[:, -2] = -self.gamma * scaled_sq
+        augmented = np.empty((n_rows, n_features + 2))
+        augmented[:, :-2] = scaled
         augmented[:, -1] = 1.0
-        far = ~np.isfinite(augmented[:, -2])
-        any_far = bool(far.any())
-        if any_far:
+        # Python floats overflow to inf without a warning: one check decides whether any row is far,
+        # so the common case pays for no np.errstate (a few microseconds per call, felt on one row).
+        any_far = not math.isfinite(float(scaled_sq.max()) * self.gamma) if n_rows else False
+        if not any_far:
+            np.multiply(scaled_sq, -self.gamma, out=augmented[:, -2])
+        else:
+            with np.errstate(over="ignore", invalid="ignore"):
+                np.multiply(scaled_sq, -self.gamma, out=augmented[:, -2])
+            far = ~np.isfinite(augmented[:, -2])
             # Make the exponent exactly -inf instead of the inf - inf = NaN the expanded form would give.
             augmented[far, :-2] = 0.0
             augmented[far, -2] = -np.inf
         sums = np.empty((n_rows, self.n_outputs))
-        nearest = np.empty(n_rows, dtype=np.int64)
         block = np.empty((min(n_rows, self.rows_per_chunk), self.support_per_tile))
+        one_tile = block.shape[1] >= self._support_augmented_t.shape[1]
+        if not nearest and one_tile and n_rows <= self.rows_per_chunk and not any_far:
+            np.matmul(augmented, self._support_augmented_t, out=block)  # -gamma d2
+            _kernel_in_place(block, block.max(axis=1))
+            np.matmul(block, self.coef, out=sums)
+            return sums, None
+        want_nearest = nearest
+        nearest = np.empty(n_rows, dtype=np.int64)
+        if n_rows <= self.rows_per_chunk and not any_far:  # one chunk: most calls, and every single record
+            self._score_chunk(augmented, block[:n_rows], sums, nearest)
+            return sums, nearest if want_nearest else None
         # With a far row, BLAS may multiply its -inf by the zero padding of its kernels and raise
         # the invalid flag; the results are exact (-inf), so silence that one case.
         with np.errstate(invalid="ignore") if any_far else nullcontext():
             for start in range(0, n_rows, self.rows_per_chunk):
                 stop = min(start + self.rows_per_chunk, n_rows)
                 self._score_chunk(augmented[start:stop], block[: stop - start], sums[start:stop], nearest[start:stop])
-        return sums, nearest
+        return sums, nearest if want_nearest else None
 
     def _score_chunk(self, augmented, block, sums_out, nearest_out) -> None:
         n_support = self._support_augmented_t.shape[1]
