@@ -1,7 +1,7 @@
 """Scoring a request body: shape checks, the refusal policy, the scorer, the response.
 
-    body      {"records": [{feature: number, ...}, ...]}     1 to max_records records
-    results   one per record, in request order:
+    body      {"records": [{feature: number, ..., "id"?: str | int}, ...]}     1 to max_records records
+    results   one per record, in request order, each led by the record's "id" when it sent one:
               {"status": "scored", "label", "decision", "probability", "nearest_support", "domain"}
               {"status": "refused", "problems": [{"feature", "value", "reason", "allowed"}]}
               {"status": "refused", "problems": [{"feature": null, ..., "reason": "outside_domain"}], "domain"}
@@ -101,22 +101,23 @@ def score_records(
 ) -> ScoredBatch:
     """Check ``records`` against the model's features, score the accepted ones, build the results."""
     bundle = model.bundle
-    checked = check_records(bundle.manifest.features, records, from_json)
+    checked = check_records(bundle.manifest.features, records, from_json, ids=True)
     scores = bundle.score(checked.values) if len(checked.accepted) else None
     outside = apply_outside_policy(checked, scores, outside_action)
     position = {int(index): row for row, index in enumerate(checked.accepted.tolist())}
     classes = [str(label) for label in bundle.classes]
     scored = _scored_results(scores, classes) if scores is not None else []
     results = []
-    for index in range(len(records)):
+    ids = checked.ids or [None] * len(records)
+    for index, record_id in enumerate(ids):
         row = position.get(index)
         if row is not None and not outside[row]:
-            results.append(scored[row])
-            continue
-        refused = {"status": "refused", "problems": [problem.to_dict() for problem in checked.problems[index]]}
-        if row is not None:
-            refused["domain"] = scored[row]["domain"]
-        results.append(refused)
+            result = scored[row]
+        else:
+            result = {"status": "refused", "problems": [problem.to_dict() for problem in checked.problems[index]]}
+            if row is not None:
+                result["domain"] = scored[row]["domain"]
+        results.append(result if record_id is None else {"id": record_id, **result})
     return ScoredBatch(results, checked, scores)
 
 

@@ -49,6 +49,7 @@ def render(report: "PreviewReport") -> str:
     else:
         lines.append("allowed ranges that changed: none")
     lines.extend(_domain(report.domain_changes, report.scored_by_both))
+    lines.extend(report.contract.render_lines())
     lines.append("nothing was changed in the store")
     return "\n".join(lines)
 
