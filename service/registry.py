@@ -20,6 +20,9 @@ followed: the last verified version keeps serving, and the model is reported
 not ready with the reason (``/readyz``, ``/models/{model}``). A poll that
 runs past its deadline (a hung read on a network filesystem) also makes the
 worker not ready; tokens are refreshed by their own thread, never behind it.
+The operators' outside-domain choice (refuse or flag) lives in the history;
+the pointer's history head moves with every entry, so the trail is read
+again only when the head has moved.
 """
 
 from __future__ import annotations
@@ -34,6 +37,7 @@ from datetime import datetime, timezone
 from types import MappingProxyType
 
 from model_store.bundle import Bundle
+from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION
 from model_store.errors import HistoryError, InvalidNameError, NotFoundError, RbfgateError, StoreError
 from model_store.naming import check_name
 from service.metrics import ServiceMetrics
@@ -97,6 +101,7 @@ class ModelRegistry:
         self._table: Mapping[str, LoadedModel] = MappingProxyType({})
         self._pointers: Mapping[str, tuple[str, str]] = MappingProxyType({})
         self._failures: Mapping[str, LoadFailure] = MappingProxyType({})
+        self._outside: Mapping[str, tuple[str, str]] = MappingProxyType({})  # name -> (history head, action)
         self._poll_error: str | None = None
         self._explained: Mapping[str, tuple[str, str, str]] = MappingProxyType({})  # pointers the history explains
         self._unexplained: Mapping[str, str] = MappingProxyType({})  # model -> why its pointer is not followed
@@ -131,6 +136,11 @@ class ModelRegistry:
             return None
         return (f"the store poll has been running for {running:.0f} s (deadline {self.poll_deadline:g} s): a store "
                 "read hangs; serving the versions already loaded")
+
+    def outside_action(self, name: str) -> str:
+        """``refuse`` or ``flag`` for records outside ``name``'s domain, as of the last poll."""
+        known = self._outside.get(name)
+        return DEFAULT_OUTSIDE_ACTION if known is None else known[1]
 
     def readiness(self) -> tuple[bool, dict]:
         """(ready, report): ready when every model with an active pointer has a loaded version that the
@@ -202,7 +212,8 @@ class ModelRegistry:
             target = (record.version, record.digest)
             self._pointers = MappingProxyType({**self._pointers, name: target})
             if not self._follows(name, record):
-                return self._table.get(name)
+                return self._table.get(name)  # nor its outside-domain choice: the history does not verify
+            self._follow_outside_choice(name, record.history_head)
             current = self._table.get(name)
             if current is not None and (current.version, current.digest) == target:
                 self._clear_failure(name)
@@ -261,6 +272,19 @@ class ModelRegistry:
         self._explained = MappingProxyType({**self._explained, name: state})
         self._unexplained = MappingProxyType({key: value for key, value in self._unexplained.items() if key != name})
         return True
+
+    def _follow_outside_choice(self, name: str, head: str) -> None:
+        known = self._outside.get(name)
+        if known is not None and known[0] == head:
+            return
+        try:
+            action = self._store.outside_action(name)
+        except RbfgateError as exc:  # keep the last known choice; the next poll tries again
+            self._note_poll_error(exc)
+            return
+        self._outside = MappingProxyType({**self._outside, name: (head, action)})
+        if known is not None and known[1] != action:
+            self._on_event({"event": "outside_domain_action", "model": name, "action": action})
 
     def _switch(self, name: str, version: str, digest: str, current: LoadedModel | None) -> LoadedModel | None:
         started = self._clock()

@@ -54,12 +54,15 @@ from model_store.store.trust import change_trust, recover_trust, verified_keys
 if TYPE_CHECKING:
     from model_store.store.store import Store
 
-__all__ = ["activate", "add_trusted_key", "prune", "publish", "remove_trusted_key", "rollback"]
+__all__ = [
+    "activate", "add_trusted_key", "begin_change", "draft_entry", "prune", "publish", "remove_trusted_key", "rollback",
+    "who",
+]
 
 
 def publish(store: "Store", source: Path, *, actor: str, via: str = "python") -> PublishOutcome:
     """Verify ``source`` (directory or single file), then store it as an immutable version."""
-    actor, via = _who(actor, via)
+    actor, via = who(actor, via)
     try:
         bundle = load_bundle(source)
         bundle.self_test()
@@ -70,7 +73,7 @@ def publish(store: "Store", source: Path, *, actor: str, via: str = "python") ->
     layout = store.layout
     with store.locked():
         layout.versions(name).mkdir(parents=True, exist_ok=True)
-        state = _begin(store, name, actor, via)
+        state = begin_change(store, name, actor, via)
         if layout.version(name, version).is_dir():
             stored = read_record(layout, name, version)
             if stored.digest != digest:
@@ -98,7 +101,7 @@ def publish(store: "Store", source: Path, *, actor: str, via: str = "python") ->
         os.rename(staged, layout.version(name, version))
         fsync_directory(layout.versions(name))
         store.publish_step("stored")
-        commit(layout, state, [_draft(store, actor, via, "publish", version, digest, None)])
+        commit(layout, state, [draft_entry(store, actor, via, "publish", version, digest, None)])
         store.publish_step("recorded")
     return PublishOutcome(name, version, digest, already_present=False)
 
@@ -127,9 +130,9 @@ def activate(
     check_name(name, what="model name")
     check_name(version, what="model version")
     reason = check_text(reason, what="reason", required=True)
-    actor, via = _who(actor, via)
+    actor, via = who(actor, via)
     with store.locked():
-        state = _begin(store, name, actor, via)
+        state = begin_change(store, name, actor, via)
         digest = _stored_digest(store, state, version)
 
         def check_contract(candidate: Bundle) -> list[str] | None:
@@ -154,9 +157,9 @@ def rollback(
     ``on_verified`` as for ``activate``."""
     check_name(name, what="model name")
     reason = check_text(reason, what="reason", required=True)
-    actor, via = _who(actor, via)
+    actor, via = who(actor, via)
     with store.locked():
-        state = _begin(store, name, actor, via)
+        state = begin_change(store, name, actor, via)
         stack = state.stack()
         if len(stack) < 2:
             raise CheckFailedError(rollback_refusal(name, state.entries))
@@ -175,9 +178,9 @@ def prune(store: "Store", name: str, *, keep: int, actor: str, via: str = "pytho
     check_name(name, what="model name")
     if isinstance(keep, bool) or not isinstance(keep, int) or keep < 0:
         raise InputError(f"--keep {keep!r}: expected a whole number of versions, 0 or more")
-    actor, via = _who(actor, via)
+    actor, via = who(actor, via)
     with store.locked():
-        state = _begin(store, name, actor, via)
+        state = begin_change(store, name, actor, via)
         ordered = [info.version for info in store.versions(name)]
         target = state.rollback_target()
         protected = {state.active_version(), target.version if target else None}
@@ -191,7 +194,7 @@ def prune(store: "Store", name: str, *, keep: int, actor: str, via: str = "pytho
             "(the newest, the active version and the rollback target are always kept)"
         )
         drafts = [
-            _draft(store, actor, via, "prune", version, read_record(store.layout, name, version).digest, reason)
+            draft_entry(store, actor, via, "prune", version, read_record(store.layout, name, version).digest, reason)
             for version in doomed
         ]
         commit(store.layout, state, drafts)  # the history says "pruned" before the files go (see recovery)
@@ -205,7 +208,7 @@ def add_trusted_key(store: "Store", public_key: bytes, *, label: str, actor: str
     if len(public_key) != 32:
         raise InputError(f"an Ed25519 public key is 32 bytes, got {len(public_key)}")
     label = check_text(label, what="label", required=False) or ""
-    actor, via = _who(actor, via)
+    actor, via = who(actor, via)
     with store.locked():
         recover_trust(store.layout, now=store.now(), actor=actor, via=via)
         new_id = key_id(public_key)
@@ -220,7 +223,7 @@ def add_trusted_key(store: "Store", public_key: bytes, *, label: str, actor: str
 
 def remove_trusted_key(store: "Store", key_id_: str, *, actor: str, via: str = "python") -> TrustedKey:
     """Stop trusting a key, recorded in the trust trail (so the end of a signature requirement is visible)."""
-    actor, via = _who(actor, via)
+    actor, via = who(actor, via)
     with store.locked():
         recover_trust(store.layout, now=store.now(), actor=actor, via=via)
         existing = verified_keys(store.layout)
@@ -235,14 +238,16 @@ def remove_trusted_key(store: "Store", key_id_: str, *, actor: str, via: str = "
     return removed
 
 
-def _begin(store: "Store", name: str, actor: str, via: str) -> ModelState:
+def begin_change(store: "Store", name: str, actor: str, via: str) -> ModelState:
+    """Start a change of ``name`` (store lock held): complete interrupted changes, refuse if verification fails."""
     require_model(store.layout, name)
     clear_staging(store.layout.staging)
     recover_trust(store.layout, now=store.now(), actor=actor, via=via)
     return recover(store.layout, name, now=store.now(), actor=actor, via=via)
 
 
-def _who(actor: str, via: str) -> tuple[str, str]:
+def who(actor: str, via: str) -> tuple[str, str]:
+    """The checked ``actor`` and ``via`` of a change."""
     actor = check_text(actor, what="actor", required=True)
     if via not in VIAS:
         raise InputError(f"via {via!r}: expected one of {', '.join(VIAS)} (through what the actor acts)")
@@ -265,7 +270,7 @@ def _switch(
     accepted = check(bundle) if check is not None else None
     [entry] = commit(
         store.layout, state,
-        [_draft(store, actor, via, action, version, bundle.digest, reason, accepted_breaking=accepted)],
+        [draft_entry(store, actor, via, action, version, bundle.digest, reason, accepted_breaking=accepted)],
         activate=(version, bundle.digest),
     )
     if on_verified is not None:
@@ -300,7 +305,7 @@ def _refuse_unverified(store: "Store", source: Path, exc: CheckFailedError, acto
     if claimed is not None and store.layout.model(claimed[0]).is_dir():
         name, version, digest = claimed
         with store.locked():
-            _refuse(store, _begin(store, name, actor, via), "refused-publish", version, digest, None, exc, actor=actor,
+            _refuse(store, begin_change(store, name, actor, via), "refused-publish", version, digest, None, exc, actor=actor,
                     via=via)
     raise exc
 
@@ -324,17 +329,17 @@ def _add_missing_signature(store, state, version, digest, signature: bytes | Non
     key = check_bundle_signature(signature, digest, trusted, f"{state.name} {version}")
     atomic_write(target, signature)
     reason = f"signature by trusted key {key.key_id} added to the stored version (its content is unchanged)"
-    commit(store.layout, state, [_draft(store, actor, via, "add-signature", version, digest, reason)])
+    commit(store.layout, state, [draft_entry(store, actor, via, "add-signature", version, digest, reason)])
 
 
 def _refuse(store, state, action, version, digest, reason, exc: CheckFailedError, *, actor: str, via: str) -> NoReturn:
     """Record a refused attempt in the history, then raise its error."""
     text = f"refused: {exc}" + (f" (reason given: {reason})" if reason else "")
-    commit(store.layout, state, [_draft(store, actor, via, action, version, digest, text[:1000])])
+    commit(store.layout, state, [draft_entry(store, actor, via, action, version, digest, text[:1000])])
     raise exc
 
 
-def _draft(store, actor, via, action, version, digest, reason, **fields) -> dict[str, Any]:
+def draft_entry(store, actor, via, action, version, digest, reason, **fields) -> dict[str, Any]:
     """The make_entry arguments of one entry; ``fields`` are those its kind declares (entry_kinds.KINDS),
     an optional one given as None is left out."""
     return {"time": store.now(), "actor": actor, "via": via, "action": action, "version": version, "digest": digest,

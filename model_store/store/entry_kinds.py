@@ -84,6 +84,9 @@ KINDS: dict[str, EntryKind] = {kind.action: kind for kind in (
     EntryKind("refused-activate", MODEL_TRAIL, "an activation was refused because the stored bundle failed its checks"),
     EntryKind("refused-rollback", MODEL_TRAIL, "a rollback was refused because its target failed its checks"),
     EntryKind("recover", MODEL_TRAIL, "a change interrupted by a crash was completed by the next command"),
+    EntryKind("outside-domain-refuse", MODEL_TRAIL, "operators chose to refuse records outside the model's domain "
+              "(the default; model_store.store.domain_choice)"),
+    EntryKind("outside-domain-flag", MODEL_TRAIL, "operators chose to answer records outside the domain, flagged"),
     EntryKind("trust-add", STORE_TRAIL, "the store started accepting signatures by a key", _KEY_FIELDS),
     EntryKind("trust-remove", STORE_TRAIL, "the store stopped accepting signatures by a key", _KEY_FIELDS),
     EntryKind("trust-recover", STORE_TRAIL, "a trust change interrupted by a crash was completed by the next command"),

@@ -8,7 +8,7 @@ Every entry holds these core fields:
     action     one of ACTIONS (``model_store.store.entry_kinds``)
     version    the version concerned (null for store-level actions)
     digest     that version's bundle digest, or null when unknown
-    reason     the operator's reason (required for activate and rollback), or an explanation
+    reason     the operator's reason (required for activate, rollback and the outside-domain choice), or an explanation
     prev_hash  the previous entry's ``hash``; GENESIS for the first entry
     hash       SHA-256 (FIPS 180-4) of the canonical JSON of the entry without ``hash``
 
@@ -60,7 +60,7 @@ GENESIS = "0" * 64
 FIELDS = ("seq", "time", "actor", "action", "version", "digest", "reason", "prev_hash", "hash")
 ACTIONS = tuple(KINDS)
 # Entries written before ``via`` existed hold FIELDS (and possibly these) and one of these actions.
-_LEGACY_ACTIONS = frozenset(ACTIONS[:9])
+_LEGACY_ACTIONS = frozenset((*ACTIONS[:9], "outside-domain-refuse", "outside-domain-flag"))
 _LEGACY_OPTIONAL = frozenset({"accepted_breaking"})
 _MAX_TEXT = 1000
 

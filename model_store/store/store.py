@@ -28,7 +28,7 @@ from model_store.errors import (
 )
 from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, Manifest, parse_manifest_bytes
 from model_store.refusal import Converter, from_json
-from model_store.store import changes
+from model_store.store import changes, domain_choice
 from model_store.store.audit import check_active, check_chain, check_head, check_versions, head_position
 from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_file, store_entry_kind
 from model_store.store.folders import binding_problem, read_stored_version, read_stored_versions
@@ -227,6 +227,10 @@ class Store:
                 document["verification"] = {"ok": False, "entries": len(entries), "problem": str(exc)}
         return document
 
+    def outside_action(self, name: str) -> str:
+        """``refuse`` or ``flag``: what the model does with records outside its domain (from the history)."""
+        return domain_choice.outside_action_from(self.history(name))
+
     def live_at(self, name: str, moment: datetime) -> LiveAt:
         """The version live at ``moment``, from the verified trail; ``HistoryError`` when it does not verify."""
         try:
@@ -316,6 +320,10 @@ class Store:
     def rollback(self, name: str, *, reason: str, actor: str, via: str = "python",
                  on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:
         return changes.rollback(self, name, reason=reason, actor=actor, via=via, on_verified=on_verified)
+
+    def set_outside_action(self, name: str, action: str, *, reason: str, actor: str,
+                           via: str = "python") -> dict[str, Any]:
+        return domain_choice.set_outside_action(self, name, action, reason=reason, actor=actor, via=via)
 
     def prune(self, name: str, *, keep: int, actor: str, via: str = "python") -> list[str]:
         return changes.prune(self, name, keep=keep, actor=actor, via=via)
