@@ -71,3 +71,13 @@ def test_cli_json_verification_uses_problem_for_a_failure(tmp_path, bundle_facto
     verification = json.loads(result.stdout)["verification"]
     assert result.returncode == 1
     assert set(verification) == {"ok", "entries", "problem"} and "truncated" in verification["problem"]
+
+
+def test_an_outside_domain_choice_is_an_entry_with_via_and_refused_while_verification_fails(tmp_path, bundle_factory):
+    store = two_releases(tmp_path / "store", bundle_factory)
+    entry = store.set_outside_action("iris", "flag", reason="reviewed by the risk team", actor="dana", via="cli")
+    assert (entry["action"], entry["actor"], entry["via"]) == ("outside-domain-flag", "dana", "cli")
+    assert store.verify_history("iris") == 5
+    write_trail_lines(store, "iris", trail_lines(store, "iris")[:-1])  # cut off: the pointer names seq 5
+    result = run_cli("outside-domain", "iris", "refuse", "--reason", "back", "--store", str(store.root))
+    assert result.returncode == 1 and "truncated" in result.stderr
