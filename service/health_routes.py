@@ -36,10 +36,14 @@ def add_health_routes(app: FastAPI, services: Services) -> None:
         report["tokens"] = services.authenticator.status()
         if not is_ready:
             missing = [entry["model"] for entry in report["models"] if entry["serving"] is None]
-            detail = (
-                f"no verified version loaded yet for {', '.join(missing)}" if missing
-                else "the models are still loading"
-            )
+            unexplained = [entry["model"] for entry in report["models"] if entry["unexplained_pointer"]]
+            reasons = [
+                *([f"the active pointer of {', '.join(unexplained)} is not explained by its history, see "
+                   "unexplained_pointer"] if unexplained else []),
+                *([f"no verified version loaded yet for {', '.join(missing)}"] if missing else []),
+                *([report["store_error"]] if report["store_error"] and not (missing or unexplained) else []),
+            ]
+            detail = "; ".join(reasons) or "the models are still loading"
             raise ServiceProblem(503, "not-ready", "Not ready", detail, extra=report, headers={"Retry-After": "1"})
         return report
 

@@ -298,7 +298,7 @@ class Alive(_Doc):
 
 class ReadyModel(_Doc):
     model: str
-    active: ServedVersion
+    active: ServedVersion | None  # null while the pointer cannot be read (unexplained_pointer says why)
     serving: ServedVersion | None
     failure: LoadFailureInfo | None
     unexplained_pointer: str | None

@@ -105,6 +105,7 @@ class ModelRegistry:
         self._poll_error: str | None = None
         self._explained: Mapping[str, tuple[str, str, str]] = MappingProxyType({})  # pointers the history explains
         self._unexplained: Mapping[str, str] = MappingProxyType({})  # model -> why its pointer is not followed
+        self._followed_seq: Mapping[str, int] = MappingProxyType({})  # the furthest pointer head followed
         self._poll_started: float | None = None
         self._started = False
         self._refresh_lock = threading.RLock()
@@ -147,12 +148,13 @@ class ModelRegistry:
         verified history explains, and the store poll is not stuck past its deadline."""
         table, pointers, failures, unexplained = self._table, self._pointers, self._failures, self._unexplained
         models = []
-        for name in sorted(pointers):
+        for name in sorted(set(pointers) | set(unexplained)):
             loaded = table.get(name)
             failure = failures.get(name)
+            pointer = pointers.get(name)
             models.append({
                 "model": name,
-                "active": {"version": pointers[name][0], "bundle_sha256": pointers[name][1]},
+                "active": None if pointer is None else {"version": pointer[0], "bundle_sha256": pointer[1]},
                 "serving": None if loaded is None else {"version": loaded.version, "bundle_sha256": loaded.digest},
                 "failure": None if failure is None else failure.to_dict(),
                 "unexplained_pointer": unexplained.get(name),
@@ -193,7 +195,7 @@ class ModelRegistry:
         self._poll_error = None  # a refresh below sets it again if a pointer cannot be read
         for name in names:
             self.refresh(name)
-        for gone in (set(self._table) | set(self._pointers)) - set(names):
+        for gone in (set(self._table) | set(self._pointers) | set(self._unexplained)) - set(names):
             self._lost(gone)
         self._started = True
 
@@ -204,11 +206,14 @@ class ModelRegistry:
                 record = self._store.active(name)
             except (NotFoundError, InvalidNameError):
                 record = None
+            except HistoryError as exc:  # a link, a FIFO or a non-pointer in place of active.json
+                self._mark_unexplained(name, "the store's pointer cannot be followed", exc)
+                return self._table.get(name)
             except RbfgateError as exc:
                 self._note_poll_error(exc)
                 return self._table.get(name)
             if record is None:
-                return self._lost(name)
+                return self._pointer_gone(name)
             target = (record.version, record.digest)
             self._pointers = MappingProxyType({**self._pointers, name: target})
             if not self._follows(name, record):
@@ -254,24 +259,40 @@ class ModelRegistry:
         if self._explained.get(name) == state and name not in self._unexplained:
             return True
         try:
-            explained = self._store.explained_active(name)
+            explained = self._store.explained_active(name, followed_seq=self._followed_seq.get(name, 0))
         except HistoryError as exc:
-            reason = (f"the store's pointer names {record.version}, which its history does not explain ({exc}); "
-                      "serving the last verified version")
-            if self._unexplained.get(name) != reason:
-                _log.error("not following %s: %s", name, reason)
-                self._on_event({"event": "pointer_unexplained", "model": name, "version": record.version,
-                                "detail": str(exc)})
-            self._unexplained = MappingProxyType({**self._unexplained, name: reason})
+            self._mark_unexplained(name, f"the store's pointer names {record.version}, which its history does not "
+                                         "explain", exc, version=record.version)
             return False
         except RbfgateError as exc:
             self._note_poll_error(exc)
             return False
-        if explained is None or (explained.version, explained.digest) != state[:2]:
+        if explained is None or (explained.version, explained.digest, explained.history_head) != state:
             return False  # the pointer moved between the two reads: the next poll looks again
         self._explained = MappingProxyType({**self._explained, name: state})
+        self._followed_seq = MappingProxyType({**self._followed_seq, name: max(
+            record.history_seq, self._followed_seq.get(name, 0))})
         self._unexplained = MappingProxyType({key: value for key, value in self._unexplained.items() if key != name})
         return True
+
+    def _mark_unexplained(self, name: str, what: str, exc: HistoryError, *, version: str | None = None) -> None:
+        """Keep serving the last verified version of ``name``; report it not ready, saying why."""
+        reason = f"{what} ({exc}); serving the last verified version"
+        if self._unexplained.get(name) != reason:
+            _log.error("not following %s: %s", name, reason)
+            self._on_event({"event": "pointer_unexplained", "model": name, "version": version, "detail": str(exc)})
+        self._unexplained = MappingProxyType({**self._unexplained, name: reason})
+
+    def _pointer_gone(self, name: str) -> LoadedModel | None:
+        """No pointer: a model not activated yet, or (beside a trail) a pointer deleted by hand."""
+        try:
+            self._store.explained_active(name)
+        except HistoryError as exc:
+            self._mark_unexplained(name, "the store's pointer is gone", exc)
+            return self._table.get(name)
+        except RbfgateError as exc:
+            self._note_poll_error(exc)
+        return self._lost(name)
 
     def _follow_outside_choice(self, name: str, head: str) -> None:
         known = self._outside.get(name)
@@ -342,6 +363,7 @@ class ModelRegistry:
         return current
 
     def _drop(self, name: str) -> None:
+        self._unexplained = MappingProxyType({key: value for key, value in self._unexplained.items() if key != name})
         if name not in self._table and name not in self._pointers and name not in self._failures:
             return
         self._table = MappingProxyType({key: value for key, value in self._table.items() if key != name})

@@ -24,9 +24,10 @@ from model_store.store.folders import StoredVersion, binding_problem
 from model_store.store.publishing import VersionRecord
 from model_store.store.state import Step, stored_versions
 
-__all__ = ["check_active", "check_chain", "check_head", "check_versions", "head_position"]
+__all__ = ["check_active", "check_chain", "check_head", "check_tail", "check_versions", "head_position"]
 
 _RESTORE = "restore history.jsonl from a backup and investigate who changed it"
+_POINTER_RESTORE = "restore active.json from a backup so that it matches the trail, and investigate who changed it"
 
 
 def check_chain(lines: list[HistoryLine], model: str, head: str | None) -> None:
@@ -125,11 +126,34 @@ def check_head(lines: list[HistoryLine], pointer: Pointer | None, model: str) ->
             f"{pointer.history_seq} (hash {pointer.history_head[:16]}...); entries were removed from the end "
             f"(truncated) or the trail was rewritten; {_RESTORE}"
         )
+    check_tail(lines, position, pointer, model)
     first_extra = lines[position + 1]
     raise HistoryError(
         f"history of {model}: entries from seq {first_extra.seq} (line {first_extra.line}) on come after the last "
         f"entry recorded in the active pointer (seq {pointer.history_seq}); they were appended by hand or left by "
         "an interrupted command (the next change to this model completes it)"
+    )
+
+
+def check_tail(lines: list[HistoryLine], position: int, pointer: Pointer, model: str) -> None:
+    """Raise ``HistoryError`` unless the entries after the pointer's head (``lines[position + 1:]``) are what one
+    interrupted command leaves.
+
+    A command appends all its entries in one write and then moves the pointer,
+    and the next change completes it first, so the entries a pointer does not
+    yet record are those of one change (one entry, or the ``prune`` entries of
+    one prune), followed by ``recover`` entries of recoveries killed in turn.
+    More is a pointer put back to an older copy of itself.
+    """
+    changes = [item for item in lines[position + 1:] if item.entry["action"] != "recover"]
+    if len(changes) <= 1 or all(item.entry["action"] == "prune" for item in changes):
+        return
+    listed = ", ".join(f"seq {item.seq} {item.entry['action']} {item.entry['version'] or ''}".rstrip()
+                       for item in changes[:4]) + (", ..." if len(changes) > 4 else "")
+    raise HistoryError(
+        f"history of {model}: the active pointer records seq {pointer.history_seq} as the last entry, but {len(changes)} "
+        f"changes come after it ({listed}); an interrupted command leaves at most one, so active.json was replaced by "
+        f"an older copy of itself; {_POINTER_RESTORE}"
     )
 
 

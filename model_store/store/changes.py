@@ -34,6 +34,7 @@ from model_store.refusal import Converter, from_json
 from model_store.store.contract import compare_contracts
 from model_store.naming import check_name
 from model_store.store.durable import atomic_write, fsync_directory
+from model_store.store.files import store_entry_kind
 from model_store.store.history import VIAS, check_text
 from model_store.store.layout import require_model
 from model_store.store.publishing import (
@@ -72,6 +73,7 @@ def publish(store: "Store", source: Path, *, actor: str, via: str = "python") ->
     name, version, digest = bundle.name, bundle.version, bundle.digest
     layout = store.layout
     with store.locked():
+        store_entry_kind(layout.root, layout.versions(name))  # no link on the way: mkdir would create it elsewhere
         layout.versions(name).mkdir(parents=True, exist_ok=True)
         state = begin_change(store, name, actor, via)
         if layout.version(name, version).is_dir():

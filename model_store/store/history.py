@@ -37,7 +37,7 @@ from typing import Any, NamedTuple
 
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import HistoryError, InputError, StoreError
-from model_store.store.durable import append_bytes
+from model_store.store.durable import append_bytes, atomic_write
 from model_store.store.entry_kinds import KINDS, VIAS, check_fields
 from model_store.store.files import UnsafeStoreEntry, read_store_file
 
@@ -54,6 +54,7 @@ __all__ = [
     "format_time",
     "make_entry",
     "read_trail",
+    "repair_end",
 ]
 
 GENESIS = "0" * 64
@@ -189,6 +190,22 @@ def read_trail(path: Path, model: str, *, root: Path | None = None) -> Trail:
     except HistoryError:
         return Trail(lines, True, False)
     return Trail(lines, False, True)
+
+
+def repair_end(path: Path, trail: Trail) -> str | None:
+    """Before appending to ``path`` (store lock held), make it end with a complete line; say what was removed.
+
+    An unfinished last line (a writer killed mid-append) is cut off, and a
+    complete last entry that lost its line end gets it back; appending after
+    either would glue the new entry to it and break the trail for good.
+    """
+    if trail.unfinished:
+        data = path.read_bytes()
+        atomic_write(path, data[: data.rfind(b"\n") + 1])
+        return "removed an incomplete last line left by an interrupted write"
+    if trail.unterminated:
+        atomic_write(path, path.read_bytes() + b"\n")
+    return None
 
 
 def _parse(raw: bytes, number: int, path: Path, model: str) -> dict[str, Any]:

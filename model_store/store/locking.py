@@ -14,34 +14,42 @@ from __future__ import annotations
 import errno
 import fcntl
 import os
+import stat
 import time
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
 from model_store.errors import LockTimeoutError, StoreError
+from model_store.store.files import UnsafeStoreEntry
 
 __all__ = ["exclusive_lock", "shared_lock"]
 
 _POLL_SECONDS = 0.02
+# Never follow a link (its target may lie outside the store, and O_CREAT would create a file there),
+# never wait on a FIFO put in the lock's place (opening one for reading blocks until a writer comes).
+_NO_LINK_NO_WAIT = os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC
 
 
 @contextmanager
 def exclusive_lock(path: Path, timeout: float, *, sleep: Callable[[float], None] = time.sleep) -> Iterator[None]:
     """Hold the store lock exclusively; raise ``StoreError`` if the store cannot be written."""
     try:
-        descriptor = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+        descriptor = os.open(path, os.O_RDWR | os.O_CREAT | _NO_LINK_NO_WAIT, 0o644)
     except FileNotFoundError as exc:
         raise StoreError(
             f"{path.parent}: cannot change this store: the store directory no longer exists; "
             "restore it or point --store at the store"
         ) from exc
     except OSError as exc:
+        if exc.errno in (errno.ELOOP, errno.ENXIO):  # a symbolic link, or a FIFO without a reader (O_NONBLOCK)
+            raise _not_a_lock(path, "a symbolic link or a special file") from exc
         raise StoreError(
             f"{path.parent}: cannot change this store: opening its lock file failed ({_describe(exc)}); "
             "the store is read-only or belongs to another user, use a writable --store"
         ) from exc
     try:
+        _check_regular(descriptor, path)
         _acquire(descriptor, fcntl.LOCK_EX, path, timeout, sleep)
         yield
     finally:
@@ -52,11 +60,14 @@ def exclusive_lock(path: Path, timeout: float, *, sleep: Callable[[float], None]
 def shared_lock(path: Path, timeout: float, *, sleep: Callable[[float], None] = time.sleep) -> Iterator[None]:
     """Hold the store lock shared, or nothing when the lock file cannot be opened for reading."""
     try:
-        descriptor = os.open(path, os.O_RDONLY)
-    except OSError:
+        descriptor = os.open(path, os.O_RDONLY | _NO_LINK_NO_WAIT)
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise _not_a_lock(path, "a symbolic link") from exc
         yield
         return
     try:
+        _check_regular(descriptor, path)
         _acquire(descriptor, fcntl.LOCK_SH, path, timeout, sleep)
         yield
     finally:
@@ -78,6 +89,19 @@ def _acquire(descriptor: int, mode: int, path: Path, timeout: float, sleep) -> N
                 "wait for it to finish and try again"
             )
         sleep(_POLL_SECONDS)
+
+
+def _check_regular(descriptor: int, path: Path) -> None:
+    mode = os.fstat(descriptor).st_mode
+    if not stat.S_ISREG(mode):
+        raise _not_a_lock(path, "not a regular file")
+
+
+def _not_a_lock(path: Path, found: str) -> UnsafeStoreEntry:
+    return UnsafeStoreEntry(
+        f"{path}: the store lock is {found}; a store holds only regular files, so it was put there by hand: "
+        "remove it (the next change creates a new lock file)"
+    )
 
 
 def _describe(exc: OSError) -> str:

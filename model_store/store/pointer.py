@@ -17,9 +17,9 @@ import json
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
-from model_store.errors import StoreError
+from model_store.errors import HistoryError, StoreError
 from model_store.store.durable import atomic_write
-from model_store.store.files import read_store_file
+from model_store.store.files import UnsafeStoreEntry, read_store_file
 from model_store.store.history import GENESIS
 
 __all__ = ["GENESIS_POINTER", "ActiveRecord", "Pointer", "read_pointer", "write_pointer"]
@@ -33,6 +33,7 @@ class ActiveRecord:
     digest: str
     activated_at: str
     history_head: str
+    history_seq: int = 0
 
 
 @dataclass(frozen=True)
@@ -48,7 +49,7 @@ class Pointer:
     def active_record(self) -> ActiveRecord | None:
         if self.version is None:
             return None
-        return ActiveRecord(self.version, self.digest, self.activated_at, self.history_head)
+        return ActiveRecord(self.version, self.digest, self.activated_at, self.history_head, self.history_seq)
 
     def moved_head(self, head: str, seq: int) -> "Pointer":
         return Pointer(self.version, self.digest, self.activated_at, head, seq)
@@ -60,13 +61,17 @@ GENESIS_POINTER = Pointer(version=None, digest=None, activated_at=None, history_
 def read_pointer(path: Path, *, root: Path | None = None) -> Pointer | None:
     """The pointer in ``path``, or None when the model has none yet.
 
-    With ``root`` (the store root) it is read without following links, and a
-    link or a FIFO in its place is a ``StoreError``.
+    With ``root`` (the store root) it is read without following links. A link
+    or a FIFO in its place, or a file that is not a pointer, was put there by
+    hand: ``HistoryError``, as for any other tampering the history reveals.
+    An OS error reading it is a ``StoreError`` (perhaps passing).
     """
     try:
         data = Path(path).read_bytes() if root is None else read_store_file(root, Path(path))
     except FileNotFoundError:
         return None
+    except UnsafeStoreEntry as exc:
+        raise HistoryError(f"active pointer {exc}") from exc
     except OSError as exc:
         raise StoreError(f"{path}: cannot read the active pointer: {exc.strerror}") from exc
     if data is None:
@@ -81,11 +86,14 @@ def read_pointer(path: Path, *, root: Path | None = None) -> Pointer | None:
             history_seq=document["history_seq"],
         )
     except (ValueError, TypeError, KeyError) as exc:
-        raise StoreError(
+        raise HistoryError(
             f"{path}: the active pointer is not valid ({exc!r}); it was edited by hand, restore it from a backup"
         ) from exc
-    if not isinstance(pointer.history_head, str) or type(pointer.history_seq) is not int:
-        raise StoreError(f"{path}: the active pointer's history fields are malformed; restore it from a backup")
+    if not isinstance(pointer.history_head, str) or type(pointer.history_seq) is not int or not all(
+        value is None or isinstance(value, str) for value in (pointer.version, pointer.digest, pointer.activated_at)
+    ):
+        raise HistoryError(f"{path}: the active pointer's fields are malformed (expected text for version, digest and "
+                           "activated_at, a whole number for history_seq); restore it from a backup")
     return pointer
 
 

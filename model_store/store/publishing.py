@@ -23,7 +23,7 @@ from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import IntegrityError, NotFoundError, RbfgateError, StoreError
 from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, parse_manifest_bytes
 from model_store.store.durable import fsync_directory, fsync_tree, temporary_name
-from model_store.store.files import read_store_file
+from model_store.store.files import UnsafeStoreEntry, read_store_file, store_entry_kind
 from model_store.store.layout import StoreLayout, version_names
 
 __all__ = [
@@ -122,7 +122,7 @@ def stage_version(
     staging_root: Path, record: VersionRecord, members: dict[str, bytes], step: StepHook
 ) -> Path:
     """Write the version into a fresh staging directory, fsync it, and check it still has ``record.digest``."""
-    staging_root.mkdir(exist_ok=True)
+    _ensure_staging(staging_root)
     staged = staging_root / temporary_name(f"{record.name}-{record.version}")
     bundle_dir = staged / "bundle"
     bundle_dir.mkdir(parents=True)
@@ -149,10 +149,9 @@ def stage_version(
 
 def clear_staging(staging_root: Path) -> list[str]:
     """Remove what interrupted publishers and pruners left; call only while holding the store lock."""
-    try:
-        leftovers = sorted(os.listdir(staging_root))
-    except FileNotFoundError:
+    if _staging_kind(staging_root) is None:
         return []
+    leftovers = sorted(os.listdir(staging_root))
     for name in leftovers:
         path = staging_root / name
         if path.is_dir() and not path.is_symlink():
@@ -166,11 +165,32 @@ def clear_staging(staging_root: Path) -> list[str]:
 
 def discard_version(version_dir: Path, staging_root: Path) -> None:
     """Take a version out of the store with one rename (readers see it or not), then delete it."""
-    staging_root.mkdir(exist_ok=True)
+    _ensure_staging(staging_root)
     doomed = staging_root / temporary_name(f"pruned-{version_dir.name}")
     os.rename(version_dir, doomed)
     fsync_directory(version_dir.parent)
     shutil.rmtree(doomed)
+
+
+def _staging_kind(staging_root: Path) -> str | None:
+    """"directory", or None when missing; refuses a link or anything else in its place.
+
+    Everything under staging/ is deleted by the next change, so staging/ must be
+    the store's own directory: a link there would make rbfgate delete (and
+    write) the contents of whatever directory it points to.
+    """
+    kind = store_entry_kind(staging_root.parent, staging_root)  # UnsafeStoreEntry for a link or a FIFO
+    if kind == "file":
+        raise UnsafeStoreEntry(
+            f"{staging_root}: is a file; staging/ is the store's own work directory, so it was put there by hand: "
+            "remove it (the next change creates the directory again)"
+        )
+    return kind
+
+
+def _ensure_staging(staging_root: Path) -> None:
+    if _staging_kind(staging_root) is None:
+        staging_root.mkdir()
 
 
 def _read(path: Path) -> bytes:

@@ -28,9 +28,9 @@ import os
 from pathlib import Path
 from typing import Any
 
-from model_store.store.audit import check_active, check_chain, check_head, check_versions, head_position
-from model_store.store.durable import TEMP_PREFIX, atomic_write
-from model_store.store.history import HistoryLine, append_entries, make_entry, read_trail
+from model_store.store.audit import check_active, check_chain, check_head, check_tail, check_versions, head_position
+from model_store.store.durable import TEMP_PREFIX
+from model_store.store.history import HistoryLine, append_entries, make_entry, read_trail, repair_end
 from model_store.store.layout import StoreLayout
 from model_store.store.pointer import GENESIS_POINTER, Pointer, read_pointer, write_pointer
 from model_store.store.folders import read_stored_versions
@@ -78,7 +78,7 @@ def recover(layout: StoreLayout, name: str, *, now: str, actor: str, via: str) -
     """
     history_path = layout.history(name)
     trail = read_trail(history_path, name, root=layout.root)
-    lines, dropped = trail.lines, trail.unfinished
+    lines = trail.lines
     pointer = read_pointer(layout.pointer(name), root=layout.root)
     check_chain(lines, name, pointer.history_head if pointer else None)
     if pointer is None:
@@ -91,20 +91,16 @@ def recover(layout: StoreLayout, name: str, *, now: str, actor: str, via: str) -
         check_head(lines, state.pointer, name)  # raises: the trail is shorter than the pointer says
     if position == len(lines) - 1:
         check_active(state.pointer, state.stack(), name)  # no interrupted change explains a mismatch
+    else:
+        check_tail(lines, position, state.pointer, name)  # more than one command's entries: not a crash
     stored = read_stored_versions(layout, name)
     interrupted = check_versions(stored, lines, name, auditing=False)
     records = [item.record for item in stored]
     _remove_temporaries(layout.model(name))
     if pointer is None:
         write_pointer(layout.pointer(name), state.pointer)
-    if dropped:  # cut off the unfinished line
-        data = history_path.read_bytes()
-        atomic_write(history_path, data[: data.rfind(b"\n") + 1])
-    elif trail.unterminated:  # a complete last entry that lost its line end: restore it before appending
-        atomic_write(history_path, history_path.read_bytes() + b"\n")
-    notes = []
-    if dropped:
-        notes.append("removed an incomplete last line left by an interrupted write")
+    repaired = repair_end(history_path, trail)
+    notes = [repaired] if repaired else []
     if position < len(lines) - 1:
         notes.append(
             f"entries seq {lines[position + 1].seq} to {lines[-1].seq} were written by an interrupted command "

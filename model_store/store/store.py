@@ -29,7 +29,7 @@ from model_store.errors import (
 from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, Manifest, parse_manifest_bytes
 from model_store.refusal import Converter, from_json
 from model_store.store import changes, domain_choice
-from model_store.store.audit import check_active, check_chain, check_head, check_versions, head_position
+from model_store.store.audit import check_active, check_chain, check_head, check_tail, check_versions, head_position
 from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_file, store_entry_kind
 from model_store.store.folders import binding_problem, read_stored_version, read_stored_versions
 from model_store.store.history import format_time, read_trail
@@ -40,7 +40,7 @@ from model_store.store.publishing import PublishOutcome, StepHook, read_record
 from model_store.store.signing import TrustedKey, check_bundle_signature
 from model_store.store.state import activation_stack, stored_versions
 from model_store.store.timeline import LiveAt, live_at
-from model_store.store.trust import trust_entries, verified_keys
+from model_store.store.trust import check_trail_kept, trust_entries, verified_keys
 
 __all__ = ["Store", "VersionInfo"]
 
@@ -123,11 +123,16 @@ class Store:
         pointer = read_pointer(self._layout.pointer(name), root=self.root)
         return pointer.active_record() if pointer is not None else None
 
-    def explained_active(self, name: str) -> ActiveRecord | None:
+    def explained_active(self, name: str, *, followed_seq: int = 0) -> ActiveRecord | None:
         """The active version, only if the verified trail explains the pointer; ``HistoryError`` saying why not.
 
         Read without the lock (pointer first, then the trail), so a change in
-        progress only ever adds entries after the pointer's head.
+        progress only ever adds entries after the pointer's head; a pointer
+        behind the trail's end is explained when what follows it is one
+        interrupted command (``audit.check_tail``). ``followed_seq`` is the
+        head's seq of a pointer state the caller already followed: a change
+        only moves the head forward, so a pointer back behind it while the
+        trail goes on is an older copy of ``active.json`` put back by hand.
         """
         pointer = read_pointer(self._layout.pointer(name), root=self.root)
         trail = read_trail(self._layout.history(name), name, root=self.root)
@@ -138,6 +143,18 @@ class Store:
         position = head_position(trail.lines, pointer.history_head)
         if position is None:
             check_head(trail.lines, pointer, name)  # raises: truncated, or the head was edited
+        if position < len(trail.lines) - 1:
+            again = read_pointer(self._layout.pointer(name), root=self.root)
+            if again != pointer:  # a change moved it meanwhile: explain the new state on the next look
+                return again.active_record() if again is not None else None
+            check_tail(trail.lines, position, pointer, name)
+            if pointer.history_seq < followed_seq:
+                raise HistoryError(
+                    f"history of {name}: the active pointer went back to seq {pointer.history_seq} (version "
+                    f"{pointer.version}) after it had recorded seq {followed_seq}, while the trail goes on to seq "
+                    f"{trail.lines[-1].seq}; a change only moves it forward, so an older copy of active.json was put "
+                    "back by hand; restore the current one from a backup so that it matches the trail"
+                )
         check_active(pointer, activation_stack([item.entry for item in trail.lines[: position + 1]]), name)
         return pointer.active_record()
 
@@ -211,6 +228,7 @@ class Store:
         check_head(lines, pointer, name)
         check_active(pointer, activation_stack([item.entry for item in lines]), name)
         check_versions(stored, lines, name, auditing=True)
+        check_trail_kept(self._layout, [item.entry for item in lines], name)
         return len(lines)
 
     def history_document(self, name: str, *, verify: bool = True) -> dict[str, Any]:

@@ -14,7 +14,12 @@ refused until the settings and the trail are restored.
 
 A store made before the trail existed has keys and no ``trust_head``: its keys
 are taken as they are until the next change to the store, which records them
-as ``trust-add`` entries ("recorded when the trust trail began") first.
+as ``trust-add`` entries ("recorded when the trust trail began") first. A
+change killed while doing so leaves some of those entries and settings still
+without ``trust_head``; the next change completes it (``trust-recover``).
+Settings without ``trust_head`` in a store whose model histories hold entries
+written since the trail exists (they carry ``via``) lost their trail by hand:
+that would end signature checks unseen, so it is refused, not started anew.
 """
 
 from __future__ import annotations
@@ -24,14 +29,15 @@ from typing import Any
 
 from model_store.errors import HistoryError, StoreError
 from model_store.store.audit import check_chain, head_position
-from model_store.store.history import GENESIS, HistoryLine, append_entries, make_entry, read_trail
-from model_store.store.layout import StoreLayout, read_settings, write_settings
+from model_store.store.history import GENESIS, HistoryLine, Trail, append_entries, make_entry, read_trail, repair_end
+from model_store.store.layout import StoreLayout, model_names, read_settings, write_settings
 from model_store.store.signing import TrustedKey
 
-__all__ = ["TRUST_TRAIL", "change_trust", "recover_trust", "trust_entries", "verified_keys"]
+__all__ = ["TRUST_TRAIL", "change_trust", "check_trail_kept", "recover_trust", "trust_entries", "verified_keys"]
 
 TRUST_TRAIL = "trust trail"  # how messages name it
 _RESTORE = "restore rbfgate-store.json and trust.jsonl from a backup and investigate who changed them"
+_STARTED = "recorded when the trust trail began"
 
 
 @dataclass
@@ -39,6 +45,7 @@ class _TrustState:
     settings: dict[str, Any]
     lines: list[HistoryLine]
     tracked: bool
+    trail: Trail
 
 
 def trust_entries(layout: StoreLayout) -> list[dict[str, Any]]:
@@ -65,12 +72,18 @@ def recover_trust(layout: StoreLayout, *, now: str, actor: str, via: str) -> Non
     """Before a change (store lock held): start the trail of a legacy store, or finish an interrupted trust change."""
     state = _read(layout)
     settings = state.settings
+    repaired = repair_end(layout.trust_trail, state.trail)
     if not state.tracked:
+        _check_not_dropped(layout)
+        recorded = {item.entry["key_id"] for item in state.lines}
         drafts = [
             _draft(now, key.added_by or actor, via, "trust-add", key,
-                   f"recorded when the trust trail began: trusted since {key.added_at or 'an unknown time'}")
-            for key in _keys(settings)
+                   f"{_STARTED}: trusted since {key.added_at or 'an unknown time'}")
+            for key in _keys(settings) if key.key_id not in recorded
         ]
+        if state.lines or repaired:
+            drafts.append(_note(now, actor, via, "completed the start of the trust trail, interrupted after seq "
+                                f"{state.lines[-1].seq if state.lines else 0}" + (f"; {repaired}" if repaired else "")))
         _commit(layout, settings, state.lines, drafts)
         return
     position = head_position(state.lines, settings["trust_head"])
@@ -78,12 +91,28 @@ def recover_trust(layout: StoreLayout, *, now: str, actor: str, via: str) -> Non
         verified_keys(layout)  # raises, naming the truncation
     if position == len(state.lines) - 1:
         _check_keys(settings, state.lines)
+        if repaired:
+            _commit(layout, settings, state.lines, [_note(now, actor, via, f"completed an interrupted trust change: "
+                                                                             f"{repaired}")])
         return
     _check_keys(settings, state.lines[: position + 1])  # the settings were right before the interrupted change
     later = [item.entry for item in state.lines[position + 1:]]
-    note = {"time": now, "actor": actor, "via": via, "action": "trust-recover", "version": None, "digest": None,
-            "reason": f"completed an interrupted trust change: applied entries seq {later[0]['seq']} to {later[-1]['seq']}"}
-    _commit(layout, settings, state.lines, [note])
+    reason = f"completed an interrupted trust change: applied entries seq {later[0]['seq']} to {later[-1]['seq']}"
+    _commit(layout, settings, state.lines, [_note(now, actor, via, reason + (f"; {repaired}" if repaired else ""))])
+
+
+def check_trail_kept(layout: StoreLayout, entries: list[dict[str, Any]], model: str) -> None:
+    """Raise ``HistoryError`` when the settings have no trust trail although ``model``'s history was written
+    since trails exist (an entry with ``via``): the trail and its head were removed by hand."""
+    if "trust_head" in read_settings(layout):
+        return
+    first = next((entry for entry in entries if "via" in entry), None)
+    if first is not None:
+        raise HistoryError(
+            f"{TRUST_TRAIL}: rbfgate-store.json records no trust trail (no trust_head), but the history of {model} "
+            f"holds entries written by a version of rbfgate that keeps one (from seq {first['seq']}); the trail and "
+            f"its head were removed by hand, which would end signature checks unseen; {_RESTORE}"
+        )
 
 
 def change_trust(layout: StoreLayout, action: str, key: TrustedKey, *, now: str, actor: str, via: str,
@@ -116,19 +145,41 @@ def _commit(layout, settings, lines: list[HistoryLine], drafts: list[dict[str, A
 
 def _read(layout: StoreLayout) -> _TrustState:
     settings = read_settings(layout)
-    lines = read_trail(layout.trust_trail, TRUST_TRAIL, root=layout.root).lines
+    trail = read_trail(layout.trust_trail, TRUST_TRAIL, root=layout.root)
+    lines = trail.lines
     tracked = "trust_head" in settings
     if not tracked:
-        if lines:
+        if lines and not _interrupted_start(settings, lines):
             raise HistoryError(
                 f"{TRUST_TRAIL}: trust.jsonl has {len(lines)} entries but rbfgate-store.json no longer records its "
                 f"head (trust_head); the settings were rewritten by hand; {_RESTORE}"
             )
-        return _TrustState(settings, lines, False)
+        return _TrustState(settings, lines, False, trail)
     if not isinstance(settings["trust_head"], str):
         raise StoreError(f"{layout.settings}: trust_head is malformed; {_RESTORE}")
     check_chain(lines, TRUST_TRAIL, settings["trust_head"])
-    return _TrustState(settings, lines, True)
+    return _TrustState(settings, lines, True, trail)
+
+
+def _interrupted_start(settings: dict[str, Any], lines: list[HistoryLine]) -> bool:
+    """Whether ``lines`` are what a change killed while it started the trail leaves: the settings' keys
+    recorded as "recorded when the trust trail began", chained from the start, before the settings moved."""
+    check_chain(lines, TRUST_TRAIL, None)
+    keys = {(key.key_id, key.public_key) for key in _keys(settings)}
+    seen = [(item.entry.get("key_id"), item.entry.get("public_key")) for item in lines]
+    return len(set(seen)) == len(seen) and set(seen) <= keys and all(
+        item.entry["action"] == "trust-add" and str(item.entry["reason"]).startswith(_STARTED) for item in lines
+    )
+
+
+def _check_not_dropped(layout: StoreLayout) -> None:
+    """Before starting a trail: no model may hold entries written since trails exist (``check_trail_kept``)."""
+    for name in model_names(layout):
+        try:
+            entries = [item.entry for item in read_trail(layout.history(name), name, root=layout.root).lines]
+        except HistoryError:
+            continue  # that model's own changes are refused; its trail is no evidence either way
+        check_trail_kept(layout, entries, name)
 
 
 def _check_keys(settings: dict[str, Any], lines: list[HistoryLine]) -> None:
@@ -162,6 +213,11 @@ def _keys(settings: dict[str, Any]) -> list[TrustedKey]:
         return [TrustedKey(**key) for key in settings.get("trusted_keys", [])]
     except TypeError as exc:
         raise StoreError(f"rbfgate-store.json: a trusted key entry is malformed ({exc}); {_RESTORE}") from exc
+
+
+def _note(now: str, actor: str, via: str, reason: str) -> dict[str, Any]:
+    return {"time": now, "actor": actor, "via": via, "action": "trust-recover", "version": None, "digest": None,
+            "reason": reason}
 
 
 def _draft(now: str, actor: str, via: str, action: str, key: TrustedKey, reason: str) -> dict[str, Any]:

@@ -77,6 +77,23 @@ def encode(entry: dict) -> bytes:
     return json.dumps(entry, sort_keys=True).encode("utf-8")
 
 
+def strip_via(store, name: str) -> list[bytes]:
+    """Rewrite the trail as rbfgate wrote it before ``via`` existed: the same entries without it, chained anew."""
+    previous = "0" * 64  # the prev_hash of a first entry (README, history format)
+    lines = []
+    for line in trail_lines(store, name):
+        entry = {key: value for key, value in json.loads(line).items() if key != "via"}
+        entry = rehash({**entry, "prev_hash": previous})
+        previous = entry["hash"]
+        lines.append(json.dumps(entry, sort_keys=True).encode("utf-8"))
+    write_trail_lines(store, name, lines)
+    pointer_path = store.layout.pointer(name)
+    pointer = json.loads(pointer_path.read_text())
+    pointer["history_head"] = previous
+    pointer_path.write_text(json.dumps(pointer))
+    return lines
+
+
 def tree_snapshot(root: Path) -> dict[str, str]:
     """Relative path -> SHA-256 of every file under ``root`` (to show that nothing changed)."""
     return {

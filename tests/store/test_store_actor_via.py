@@ -4,10 +4,9 @@ from __future__ import annotations
 
 import json
 
-from store_support import iris_bundle, python_env, rehash, run_cli, trail_lines, two_releases, write_trail_lines
+from store_support import iris_bundle, python_env, rehash, run_cli, strip_via, trail_lines, two_releases, write_trail_lines
 
 from model_store.store import Store
-from model_store.store.history import GENESIS
 
 
 def test_the_cli_records_via_cli_with_the_actor_given_or_the_os_user(tmp_path, bundle_factory):
@@ -27,26 +26,9 @@ def test_the_python_api_records_via_python_unless_told(tmp_path, bundle_factory)
     assert [entry["via"] for entry in store.history("iris")] == ["python", "http"]
 
 
-def _strip_via(store, name: str) -> list[bytes]:
-    """Rewrite the trail as rbfgate wrote it before ``via`` existed: the same entries without it, chained anew."""
-    previous = GENESIS
-    lines = []
-    for line in trail_lines(store, name):
-        entry = {key: value for key, value in json.loads(line).items() if key != "via"}
-        entry = rehash({**entry, "prev_hash": previous})
-        previous = entry["hash"]
-        lines.append(json.dumps(entry, sort_keys=True).encode("utf-8"))
-    write_trail_lines(store, name, lines)
-    pointer_path = store.layout.pointer(name)
-    pointer = json.loads(pointer_path.read_text())
-    pointer["history_head"] = previous
-    pointer_path.write_text(json.dumps(pointer))
-    return lines
-
-
 def test_a_trail_written_before_via_existed_still_verifies_and_is_extended_without_rewriting(tmp_path, bundle_factory):
     store = two_releases(tmp_path / "store", bundle_factory)
-    old_lines = _strip_via(store, "iris")
+    old_lines = strip_via(store, "iris")
     assert store.verify_history("iris") == 4
     store.rollback("iris", reason="after the upgrade", actor="bob", via="cli")
     lines = trail_lines(store, "iris")

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 
 import pytest
-from store_support import iris_bundle, run_cli
+from store_support import iris_bundle, run_cli, strip_via
 
 from model_store.errors import HistoryError
 from model_store.store import Store
@@ -69,16 +69,78 @@ def test_a_trust_trail_cut_off_with_its_settings_is_reported(signed_store):
         store.trusted_keys()
 
 
-def test_a_store_made_before_the_trust_trail_records_its_keys_at_the_next_change(signed_store, bundle_factory):
-    store, _ = signed_store
-    key = store.trusted_keys()[0]
+def _as_before_the_trust_trail(store) -> None:
+    """What a store made before the trust trail holds: trusted keys in the settings, no trail, no via."""
+    strip_via(store, "iris")
     settings = json.loads(store.layout.settings.read_text())
     del settings["trust_head"], settings["trust_seq"]
     store.layout.settings.write_text(json.dumps(settings))
     store.layout.trust_trail.unlink()
+
+
+def test_a_store_made_before_the_trust_trail_records_its_keys_at_the_next_change(signed_store, bundle_factory):
+    store, _ = signed_store
+    key = store.trusted_keys()[0]
+    _as_before_the_trust_trail(store)
     assert store.trusted_keys() == [key]  # taken as they are until the next change
     store.activate("iris", "1.0.0", reason="re-verify", actor="bob")
     [entry] = store.trust_history()
     assert (entry["action"], entry["key_id"]) == ("trust-add", key.key_id)
     assert entry["reason"].startswith("recorded when the trust trail began")
     assert store.verify_history("iris") == 3
+
+
+def test_a_trust_trail_removed_with_its_head_and_keys_is_refused_not_started_anew(signed_store, bundle_factory):
+    """Deleting trust.jsonl, trust_head and the keys makes the store look older than the trail: its model
+    histories (entries with via) show it is not, so signatures cannot be switched off that way."""
+    store, _ = signed_store
+    settings = json.loads(store.layout.settings.read_text())
+    del settings["trust_head"], settings["trust_seq"]
+    settings["trusted_keys"] = []
+    store.layout.settings.write_text(json.dumps(settings))
+    store.layout.trust_trail.unlink()
+    with pytest.raises(HistoryError, match="no trust trail .* removed by hand"):
+        store.publish(iris_bundle(bundle_factory, "2.0.0", C=2.0), actor="mallory")  # unsigned
+    with pytest.raises(HistoryError, match="no trust trail"):
+        store.verify_history("iris")
+    assert not store.layout.trust_trail.exists()  # nothing was started on its behalf
+
+
+def _kill_between_trail_and_settings(store, monkeypatch) -> None:
+    """A change killed after it appended trust entries, before it rewrote the settings."""
+    import model_store.store.trust as trust
+
+    class Killed(BaseException):
+        pass
+
+    def killed(*args, **kwargs):
+        raise Killed
+
+    monkeypatch.setattr(trust, "write_settings", killed)
+    with pytest.raises(Killed):
+        store.activate("iris", "1.0.0", reason="re-verify", actor="bob")
+    monkeypatch.undo()
+
+
+def test_a_change_killed_while_it_started_the_trust_trail_is_completed_by_the_next(signed_store, monkeypatch):
+    store, _ = signed_store
+    key = store.trusted_keys()[0]
+    _as_before_the_trust_trail(store)
+    _kill_between_trail_and_settings(store, monkeypatch)
+    assert store.trusted_keys() == [key]  # the settings still say what is trusted
+    store.activate("iris", "1.0.0", reason="after the crash", actor="bob")
+    actions = [(entry["action"], entry.get("key_id")) for entry in store.trust_history()]
+    assert actions == [("trust-add", key.key_id), ("trust-recover", None)]
+    assert store.trusted_keys() == [key] and store.verify_history("iris") == 3
+
+
+@pytest.mark.parametrize("tail", [b'{"action": "trust-add", "actor": "ro', b""], ids=["unfinished", "unterminated"])
+def test_the_next_trust_change_repairs_the_end_of_the_trail_before_appending(signed_store, tmp_path, tail):
+    store, _ = signed_store
+    path = store.layout.trust_trail
+    path.write_bytes(path.read_bytes() + tail if tail else path.read_bytes().rstrip(b"\n"))
+    second = generate_key_files(tmp_path / "second")
+    store.add_trusted_key(parse_public_key(str(second.public_path)), label="second", actor="admin")
+    assert len(store.trusted_keys()) == 2  # the trail still reads: the new entry was not glued to the cut line
+    assert store.trust_history()[-1]["action"] == "trust-add"
+    assert store.verify_history("iris") == 2
