@@ -96,7 +96,10 @@ class Store:
     def versions(self, name: str) -> list[VersionInfo]:
         """Every stored version in publish order, marking the active one."""
         require_model(self._layout, name)
-        active = self.active(name)
+        try:
+            active = self.active(name)
+        except HistoryError:  # a pointer put there by hand marks nothing active; verify and the service say why
+            active = None
         records = []
         for version in version_names(self._layout, name):
             try:
@@ -246,8 +249,19 @@ class Store:
         return document
 
     def outside_action(self, name: str) -> str:
-        """``refuse`` or ``flag``: what the model does with records outside its domain (from the history)."""
-        return domain_choice.outside_action_from(self.history(name))
+        """``refuse`` or ``flag``: what the model does with records outside its domain (from the history).
+
+        The choice in force is the last one the pointer's head covers: a choice whose command was killed before
+        it moved the pointer is not in force until the next change completes it, like an interrupted activation.
+        """
+        entries = self.history(name)
+        try:
+            pointer = read_pointer(self._layout.pointer(name), root=self.root)
+        except HistoryError:
+            pointer = None
+        if pointer is not None:
+            entries = [entry for entry in entries if entry["seq"] <= pointer.history_seq]
+        return domain_choice.outside_action_from(entries)
 
     def live_at(self, name: str, moment: datetime) -> LiveAt:
         """The version live at ``moment``, from the verified trail; ``HistoryError`` when it does not verify."""

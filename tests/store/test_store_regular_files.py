@@ -6,7 +6,7 @@ import os
 import threading
 
 import pytest
-from store_support import two_releases
+from store_support import iris_bundle, two_releases
 
 from model_store.errors import CheckFailedError, HistoryError, RbfgateError, StoreError
 
@@ -69,3 +69,55 @@ def test_a_fifo_in_place_of_an_array_is_refused_at_once_instead_of_hanging(store
     reader.join(60)  # a bound for a broken build, which would block in open() forever
     assert not reader.is_alive(), "load_verified blocked on a FIFO"
     assert "dual_coef.npy: is a FIFO (named pipe)" in outcome["error"]
+
+
+def _bounded(call):
+    """Run ``call`` on a thread; return what it raised (None when it returned), failing if it blocks."""
+    outcome = {}
+
+    def run():
+        try:
+            call()
+            outcome["error"] = None
+        except RbfgateError as exc:
+            outcome["error"] = exc
+
+    reader = threading.Thread(target=run, daemon=True)
+    reader.start()
+    reader.join(60)  # a bound for a broken build, which would block in open() forever
+    assert not reader.is_alive(), "blocked on a FIFO"
+    return outcome["error"]
+
+
+def test_a_linked_staging_directory_is_refused_and_what_it_points_to_is_left_alone(store, tmp_path, bundle_factory):
+    elsewhere = tmp_path / "precious"
+    (elsewhere / "sub").mkdir(parents=True)
+    (elsewhere / "notes.txt").write_text("not the store's")
+    store.layout.staging.rmdir()
+    os.symlink(elsewhere, store.layout.staging)  # every change empties staging/ first
+    with pytest.raises(StoreError, match="staging: is a symbolic link"):
+        store.activate("iris", "1.0.0", reason="again", actor="bob")
+    with pytest.raises(StoreError, match="staging: is a symbolic link"):
+        store.publish(iris_bundle(bundle_factory, "2.0.0", C=2.0), actor="bob")
+    assert sorted(path.name for path in elsewhere.iterdir()) == ["notes.txt", "sub"]
+    assert store.active("iris").version == "1.1.0"
+
+
+def test_a_fifo_in_place_of_the_lock_is_refused_at_once_instead_of_hanging(store):
+    store.layout.lock.unlink()
+    os.mkfifo(store.layout.lock)
+    for call in (lambda: store.verify_history("iris"), lambda: store.activate("iris", "1.0.0", reason="x", actor="b")):
+        error = _bounded(call)
+        assert isinstance(error, StoreError) and "lock is not a regular file" in str(error)
+
+
+def test_a_linked_lock_is_refused_and_creates_nothing_where_it_points(store, tmp_path):
+    target = tmp_path / "not-the-store" / "lock"
+    target.parent.mkdir()
+    store.layout.lock.unlink()
+    os.symlink(target, store.layout.lock)
+    with pytest.raises(StoreError, match="lock is a symbolic link"):
+        store.activate("iris", "1.0.0", reason="again", actor="bob")
+    with pytest.raises(StoreError, match="lock is a symbolic link"):
+        store.verify_history("iris")
+    assert not target.exists()

@@ -1,0 +1,65 @@
+"""A pointer put back to an older copy, garbled, replaced by a link or deleted is never followed: the last verified
+version keeps serving, /readyz is 503 and /models/{model} says why.
+
+Store: tests/service/http_api/conftest.py (iris 1.0.0 active, 2.0.0 published; cancer 1.0.0 active).
+"""
+
+from __future__ import annotations
+
+import os
+
+import pytest
+
+from model_store.store import Store
+
+from .cases import assert_problem
+
+
+def _serving(client) -> str:
+    return client.get("/models/iris").json()["served_by_this_worker"]["version"]
+
+
+def _unexplained(client) -> str:
+    ready = assert_problem(client.get("/readyz"), 503)
+    [entry] = [model for model in ready["models"] if model["model"] == "iris"]
+    assert entry["unexplained_pointer"] and "iris" in ready["detail"]
+    summary = client.get("/models/iris")
+    assert summary.status_code == 200  # the model page still answers, saying why
+    assert summary.json()["unexplained_pointer"] == entry["unexplained_pointer"]
+    return entry["unexplained_pointer"]
+
+
+def test_a_pointer_put_back_to_an_older_copy_is_not_followed(make_client, store):
+    client = make_client(store.root)
+    older = store.layout.pointer("iris").read_bytes()  # a copy taken while 1.0.0 was active
+    Store(store.root).activate("iris", "2.0.0", reason="rollout", actor="ops", via="cli", accept_breaking=True)
+    client.app.state.services.registry.refresh_all()
+    assert _serving(client) == "2.0.0"
+
+    store.layout.pointer("iris").write_bytes(older)  # every field of it once was true
+    client.app.state.services.registry.refresh_all()
+    assert _serving(client) == "2.0.0"  # not back to 1.0.0
+    assert "an older copy of active.json was put back by hand" in _unexplained(client)
+
+
+@pytest.mark.parametrize("damage", ["garbled", "link", "deleted"])
+def test_a_pointer_that_is_not_a_pointer_file_is_not_followed(make_client, store, tmp_path, damage):
+    client = make_client(store.root)
+    path = store.layout.pointer("iris")
+    copy = tmp_path / "active-copy.json"
+    copy.write_bytes(path.read_bytes())
+    path.unlink()
+    if damage == "garbled":
+        path.write_text('{"version": "2.0.0"')
+    elif damage == "link":
+        os.symlink(copy, path)  # the same content, from outside the store
+    client.app.state.services.registry.refresh_all()
+    assert _serving(client) == "1.0.0"
+    expected = {"garbled": "not valid", "link": "symbolic link", "deleted": "is missing"}[damage]
+    assert expected in _unexplained(client)
+
+    if path.is_symlink() or path.exists():
+        path.unlink()
+    path.write_bytes(copy.read_bytes())  # restored from a backup
+    client.app.state.services.registry.refresh_all()
+    assert client.get("/readyz").status_code == 200
