@@ -19,8 +19,8 @@ from dataclasses import dataclass
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import HistoryError, NotFoundError, RbfgateError
 from model_store.manifest import MANIFEST_FILE, parse_manifest_bytes
-from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_file
-from model_store.store.layout import StoreLayout, version_names
+from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_file, store_entry_kind
+from model_store.store.layout import StoreLayout, stray_entries, version_names
 from model_store.store.publishing import VersionRecord, read_record
 
 __all__ = ["StoredVersion", "binding_problem", "read_stored_version", "read_stored_versions"]
@@ -60,7 +60,23 @@ def read_stored_version(layout: StoreLayout, name: str, folder: str) -> StoredVe
 
 
 def read_stored_versions(layout: StoreLayout, name: str) -> list[StoredVersion]:
-    """Every folder under ``versions/`` of ``name``; call it holding the lock (no prune in between)."""
+    """Every folder under ``versions/`` of ``name``; call it holding the lock (no prune in between).
+
+    ``HistoryError`` when ``versions/`` is not the model's own directory or holds an entry no version can be
+    named: both were put there by hand.
+    """
+    versions = layout.versions(name)
+    try:
+        if store_entry_kind(layout.root, versions) == "file":
+            raise UnsafeStoreEntry(f"{versions}: is a file where the directory of the versions belongs")
+    except UnsafeStoreEntry as exc:
+        raise HistoryError(f"history of {name}: {exc}") from exc
+    stray = stray_entries(layout, name)
+    if stray:
+        raise HistoryError(
+            f"history of {name}: versions/{stray[0]} cannot be a version (expected a version name: 1 to 64 characters "
+            f"of A-Z a-z 0-9 . _ -, starting with a letter or digit), so it was added by hand; remove it"
+        )
     return [read_stored_version(layout, name, folder) for folder in version_names(layout, name)]
 
 

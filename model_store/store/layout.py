@@ -25,7 +25,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from model_store.errors import NotFoundError, StoreError
+from model_store.errors import InvalidNameError, NotFoundError, StoreError
 from model_store.naming import check_name
 from model_store.store.durable import TEMP_PREFIX, atomic_write
 from model_store.store.files import read_store_file
@@ -41,6 +41,7 @@ __all__ = [
     "read_settings",
     "require_model",
     "resolve_store_root",
+    "stray_entries",
     "version_names",
     "write_settings",
 ]
@@ -106,17 +107,39 @@ def model_names(layout: StoreLayout) -> list[str]:
         return []
     except OSError as exc:
         raise StoreError(f"{layout.models}: cannot list models: {exc.strerror}") from exc
-    return sorted(name for name in names if not name.startswith(".") and version_names(layout, name))
+    # Only entries that can be model names: rbfgate never makes others (an editor's "iris~", say), and one
+    # of them must not stop every model from being listed or followed.
+    return sorted(name for name in names if _is_name(name) and version_names(layout, name))
 
 
 def version_names(layout: StoreLayout, name: str) -> list[str]:
-    """Sorted names of the stored versions of ``name``; none when the model does not exist."""
+    """Sorted names of the stored versions of ``name``; none when the model does not exist.
+
+    Entries that cannot be versions are left out (``stray_entries`` lists them for verify).
+    """
+    return [entry for entry in _version_entries(layout, name) if _is_name(entry)]
+
+
+def stray_entries(layout: StoreLayout, name: str) -> list[str]:
+    """Entries under ``versions/`` that no version can be named (rbfgate never makes them; hidden ones aside)."""
+    return [entry for entry in _version_entries(layout, name) if not entry.startswith(".") and not _is_name(entry)]
+
+
+def _version_entries(layout: StoreLayout, name: str) -> list[str]:
     try:
-        return sorted(entry for entry in os.listdir(layout.versions(name)) if not entry.startswith("."))
+        return sorted(os.listdir(layout.versions(name)))
     except (FileNotFoundError, NotADirectoryError):
         return []
     except OSError as exc:
         raise StoreError(f"{layout.versions(name)}: cannot list versions: {exc.strerror}") from exc
+
+
+def _is_name(entry: str) -> bool:
+    try:
+        check_name(entry)
+    except InvalidNameError:
+        return False
+    return True
 
 
 def require_model(layout: StoreLayout, name: str) -> None:

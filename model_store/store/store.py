@@ -179,8 +179,13 @@ class Store:
         return self._load_checked(name, version, with_members=True)
 
     def manifest(self, name: str, version: str) -> tuple[dict[str, Any], Manifest, str]:
-        """The stored manifest (document, parsed, digest), read without following links; its arrays are not read."""
+        """The stored manifest (document, parsed, digest), read without following links; its arrays are not read.
+
+        The folder must be bound to its publish entry (``folders``), so that metadata never shows one
+        version's manifest under another's name.
+        """
         path = self.bundle_dir(name, version) / MANIFEST_FILE
+        publish = self._check_binding(name, version)
         try:
             data = read_store_file(self.root, path)
         except UnsafeStoreEntry as exc:
@@ -188,7 +193,10 @@ class Store:
         if data is None:
             raise IntegrityError(f"stored bundle {name} {version}: {MANIFEST_FILE} is missing; publish a new version")
         document, manifest = parse_manifest_bytes(data, source=str(path))
-        return document, manifest, sha256_bytes(canonical_json(document))
+        digest = sha256_bytes(canonical_json(document))
+        if digest != publish["digest"]:
+            raise IntegrityError(f"stored bundle {name} {version} changed while it was read; try again")
+        return document, manifest, digest
 
     def signature(self, name: str, version: str) -> bytes | None:
         """The stored ``signature.json`` (read without following links), or None when the version is unsigned."""
@@ -282,18 +290,8 @@ class Store:
     def _load_checked(self, name: str, version: str, *, with_members: bool) -> tuple[Bundle, dict[str, bytes]]:
         """Check the folder is bound to its publish entry and holds regular files only, then load and verify it."""
         path = self.bundle_dir(name, version)
-        publish = self._publish_entry(name, version)
+        publish = self._check_binding(name, version)
         try:
-            stored = read_stored_version(self._layout, name, version)
-            problem = binding_problem(name, stored)
-            if problem is not None:
-                raise problem
-            if stored.record.digest != publish["digest"] or stored.record.publish_seq != publish["seq"]:
-                raise HistoryError(
-                    f"stored version {name} {version}: its record names digest {stored.record.digest[:16]}... and "
-                    f"publish seq {stored.record.publish_seq}, but the history published it at seq {publish['seq']} "
-                    f"with digest {str(publish['digest'])[:16]}...; the version folder was replaced by hand"
-                )
             names = check_tree(self.root, path)
             members = {entry: read_store_file(self.root, path / entry) for entry in names if with_members}
             signature = read_store_file(self.root, path / SIGNATURE_FILE)
@@ -319,6 +317,21 @@ class Store:
             listed = {MANIFEST_FILE, SIGNATURE_FILE, *bundle.manifest.files}
             members = {entry: data for entry, data in members.items() if entry in listed and data is not None}
         return bundle, members
+
+    def _check_binding(self, name: str, version: str) -> dict[str, Any]:
+        """The publish entry of ``version``, after checking its folder says what that entry recorded."""
+        publish = self._publish_entry(name, version)
+        stored = read_stored_version(self._layout, name, version)
+        problem = binding_problem(name, stored)
+        if problem is not None:
+            raise problem
+        if stored.record.digest != publish["digest"] or stored.record.publish_seq != publish["seq"]:
+            raise HistoryError(
+                f"stored version {name} {version}: its record names digest {stored.record.digest[:16]}... and "
+                f"publish seq {stored.record.publish_seq}, but the history published it at seq {publish['seq']} "
+                f"with digest {str(publish['digest'])[:16]}...; the version folder was replaced by hand"
+            )
+        return publish
 
     def _publish_entry(self, name: str, version: str) -> dict[str, Any]:
         """The publish entry that put ``version`` in the store, from the hash-verified trail."""

@@ -62,6 +62,12 @@ def test_swapped_version_folders_are_detected(store):
         store.load_verified("iris", "1.3.0")  # never 1.2.0's bundle under the name 1.3.0
 
 
+def test_the_manifest_of_a_swapped_folder_is_never_read_as_the_other_version(store):
+    _swap(store)
+    with pytest.raises(HistoryError, match="versions/1.3.0 holds the record of iris 1.2.0"):
+        store.manifest("iris", "1.3.0")  # what metadata pages and the contract comparison read
+
+
 def test_a_folder_copied_over_another_is_detected(store):
     target = store.layout.version("iris", "1.3.0")
     shutil.rmtree(target)
@@ -95,3 +101,15 @@ def test_activate_exits_1_while_history_verify_exits_1(tmp_path, bundle_factory)
     assert run_cli("history", "iris", "--store", root, "--verify").returncode == 1
     result = run_cli("activate", "iris", "1.3.0", "--store", root, "--reason", "upgrade")
     assert result.returncode == 1 and "versions/1.3.0 holds the record of iris 1.2.0" in result.stderr
+
+
+def test_an_entry_no_version_can_be_named_is_reported_not_taken_for_bad_input(store):
+    (store.layout.versions("iris") / "1.3.0 copy").mkdir()  # what a file manager's "duplicate" makes
+    _refused_everywhere(store, r"versions/1.3.0 copy cannot be a version \(expected a version name")
+    assert [info.version for info in store.versions("iris")] == ["1.2.0", "1.3.0"]  # listing still works
+
+
+def test_an_entry_no_model_can_be_named_does_not_hide_the_models(store):
+    (store.layout.models / "iris~").mkdir()
+    assert store.models() == ["iris"]
+    assert store.verify_history("iris") > 0

@@ -1,5 +1,6 @@
 """A pointer put back to an older copy, garbled, replaced by a link or deleted is never followed: the last verified
-version keeps serving, /readyz is 503 and /models/{model} says why.
+version keeps serving, /readyz is 503 and /models/{model} says why. Metadata never shows one version's manifest
+under another version's name.
 
 Store: tests/service/http_api/conftest.py (iris 1.0.0 active, 2.0.0 published; cancer 1.0.0 active).
 """
@@ -63,3 +64,24 @@ def test_a_pointer_that_is_not_a_pointer_file_is_not_followed(make_client, store
     path.write_bytes(copy.read_bytes())  # restored from a backup
     client.app.state.services.registry.refresh_all()
     assert client.get("/readyz").status_code == 200
+
+
+def test_metadata_of_a_swapped_version_folder_is_refused_not_shown_under_the_wrong_name(make_client, store):
+    client = make_client(store.root)
+    versions = store.layout.versions("iris")
+    os.rename(versions / "1.0.0", versions / "swap")
+    os.rename(versions / "2.0.0", versions / "1.0.0")
+    os.rename(versions / "swap", versions / "2.0.0")
+    for path in ("/models/iris/versions/2.0.0", "/models/iris/versions/2.0.0/openapi.json"):
+        problem = assert_problem(client.get(path), 409)
+        assert "versions/2.0.0 holds the record of iris 1.0.0" in problem["detail"]
+
+
+def test_a_stray_directory_among_the_models_stops_neither_listing_nor_following(make_client, store):
+    client = make_client(store.root)
+    (store.layout.models / "iris~").mkdir()  # an editor's backup, or a copy made by hand
+    Store(store.root).activate("iris", "2.0.0", reason="rollout", actor="ops", via="cli", accept_breaking=True)
+    client.app.state.services.registry.refresh_all()
+    assert _serving(client) == "2.0.0"
+    assert [model["model"] for model in client.get("/models").json()["models"]] == ["cancer", "iris"]
+    assert client.get("/readyz").json()["store_error"] is None
