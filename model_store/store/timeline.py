@@ -25,11 +25,14 @@ from model_store.store.state import Step, apply_entry
 __all__ = ["AT_PATTERN", "LiveAt", "live_at", "parse_moment"]
 
 # RFC 3339 section 5.6 date-time; "T" may be lower case or a space (section 5.6, NOTE), the offset is required.
-AT_PATTERN = r"^\d{4}-\d{2}-\d{2}[Tt ]\d{2}:\d{2}:\d{2}(\.\d+)?([Zz]|[+-]\d{2}:\d{2})$"
+# Digits are ASCII digits (RFC 3339 uses the DIGIT rule of RFC 5234, %x30-39), not any Unicode digit.
+AT_PATTERN = r"^[0-9]{4}-[0-9]{2}-[0-9]{2}[Tt ][0-9]{2}:[0-9]{2}:[0-9]{2}(\.[0-9]+)?([Zz]|[+-][0-9]{2}:[0-9]{2})$"
 _DATE_TIME = re.compile(
-    r"(\d{4})-(\d{2})-(\d{2})[Tt ](\d{2}):(\d{2}):(\d{2})(\.\d+)?(?:([Zz])|([+-])(\d{2}):(\d{2}))"
+    r"([0-9]{4})-([0-9]{2})-([0-9]{2})[Tt ]([0-9]{2}):([0-9]{2}):([0-9]{2})(\.[0-9]+)?"
+    r"(?:([Zz])|([+-])([0-9]{2}):([0-9]{2}))"
 )
 _EXAMPLE = "e.g. 2026-11-30T14:00:00Z or 2026-11-30T15:00:00+01:00"
+_LAST_MICROSECOND = timedelta(microseconds=999_999)
 
 
 @dataclass(frozen=True)
@@ -51,7 +54,13 @@ class LiveAt:
 
 
 def parse_moment(text: str) -> datetime:
-    """An aware datetime from an RFC 3339 date-time; ``InputError`` saying what is wrong otherwise."""
+    """An aware datetime from an RFC 3339 date-time; ``InputError`` saying what is wrong otherwise.
+
+    A fraction of a second is cut to whole microseconds, never rounded up: entries are stamped in whole
+    seconds, so 14:59:59.9999999Z stays before an entry of 15:00:00Z. A leap second (second 60, RFC 3339
+    section 5.7) is valid at 23:59:60 UTC on the last day of a month and counts as the end of that minute
+    (23:59:59.999999Z): after every entry of 23:59:59, before any of the next day.
+    """
     match = _DATE_TIME.fullmatch(str(text).strip())
     if match is None:
         raise InputError(
@@ -59,20 +68,30 @@ def parse_moment(text: str) -> datetime:
             "give the date, 'T', the time and 'Z' or an offset from UTC"
         )
     year, month, day, hour, minute, second, fraction, zulu, sign, offset_hours, offset_minutes = match.groups()
+    if not zulu and (int(offset_hours) > 23 or int(offset_minutes) > 59):  # time-numoffset, RFC 3339 section 5.6
+        raise InputError(f"time {text!r}: the offset {sign}{offset_hours}:{offset_minutes} is not an offset from UTC "
+                         f"(hours 00-23, minutes 00-59); {_EXAMPLE}")
     if int(year) == 0:  # RFC 3339 allows year 0000, which Python's datetime cannot hold: before any entry anyway
         return datetime.min.replace(tzinfo=timezone.utc)
+    leap = int(second) == 60
     try:
         offset = timedelta(0) if zulu else (1 if sign == "+" else -1) * timedelta(
             hours=int(offset_hours), minutes=int(offset_minutes)
         )
-        moment = datetime(int(year), int(month), int(day), int(hour), int(minute), int(second),
-                          tzinfo=timezone(offset))
-        moment = moment.astimezone(timezone.utc) + timedelta(seconds=float(fraction or 0))
+        moment = datetime(int(year), int(month), int(day), int(hour), int(minute), 59 if leap else int(second),
+                          tzinfo=timezone(offset)).astimezone(timezone.utc)
     except ValueError as exc:
         raise InputError(f"time {text!r} is not a valid date-time ({exc}); {_EXAMPLE}") from None
     except OverflowError:  # within an offset of datetime's first or last moment
         return (datetime.min if int(year) < 5000 else datetime.max).replace(tzinfo=timezone.utc)
-    return moment
+    if leap:
+        if (moment.hour, moment.minute) != (23, 59) or (moment + timedelta(seconds=1)).day != 1:
+            raise InputError(
+                f"time {text!r}: second 60 is a leap second, which falls only at 23:59:60 UTC on the last day of a "
+                f"month (RFC 3339 section 5.7); this one would be at {format_time(moment)[:-3]}60Z; {_EXAMPLE}"
+            )
+        return moment + _LAST_MICROSECOND
+    return moment + timedelta(microseconds=int((fraction or ".")[1:7].ljust(6, "0")))
 
 
 def live_at(model: str, entries: list[dict[str, Any]], moment: datetime) -> LiveAt:

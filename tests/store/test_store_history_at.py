@@ -7,12 +7,15 @@ so 15:00:00+01:00 and 14:00:00Z are the same moment.
 from __future__ import annotations
 
 import json
+import re
 from datetime import datetime, timedelta, timezone
 
 import pytest
 from store_support import iris_bundle, run_cli, trail_lines, write_trail_lines
 
+from model_store.errors import InputError
 from model_store.store import Store
+from model_store.store.timeline import parse_moment
 
 _START = datetime(2026, 11, 30, 12, 0, 0, tzinfo=timezone.utc)
 
@@ -55,6 +58,29 @@ def test_an_offset_names_the_same_moment_as_utc(store):
 def test_an_entry_counts_from_its_own_second(store):
     assert _at(store, "2026-11-30T15:00:00Z")["version"] == "1.1.0"
     assert _at(store, "2026-11-30T14:59:59.999Z")["version"] == "1.0.0"
+
+
+def test_digits_past_the_microsecond_never_round_up_into_the_next_entry(store):
+    assert _at(store, "2026-11-30T14:59:59.9999999Z")["version"] == "1.0.0"  # the 15:00:00 entry is later
+    assert _at(store, "2026-11-30T14:59:59." + "9" * 30 + "Z")["version"] == "1.0.0"
+
+
+def test_a_leap_second_is_the_end_of_its_minute_in_any_offset():
+    # RFC 3339 section 5.8 gives both strings as the same leap second (the one at the end of 1990).
+    utc, pacific = parse_moment("1990-12-31T23:59:60Z"), parse_moment("1990-12-31T15:59:60-08:00")
+    assert utc == pacific
+    assert datetime(1990, 12, 31, 23, 59, 59, tzinfo=timezone.utc) < utc < datetime(1991, 1, 1, tzinfo=timezone.utc)
+
+
+@pytest.mark.parametrize("text, problem", [
+    ("2026-11-30T14:00:60Z", "second 60 is a leap second, which falls only at 23:59:60 UTC"),  # RFC 3339 section 5.7
+    ("2026-11-30T14:00:00+01:60", "offset +01:60 is not an offset from UTC"),  # time-minute is 00-59 (section 5.6)
+    ("2026-11-30T14:00:00+24:00", "offset +24:00 is not an offset from UTC"),  # time-hour is 00-23
+    ("\u0662\u0660\u0662\u0666-11-30T14:00:00Z", "not an RFC 3339 date-time"),  # Arabic-Indic digits: not DIGIT
+])
+def test_times_outside_the_rfc_3339_grammar_are_refused(text, problem):
+    with pytest.raises(InputError, match=re.escape(problem)):
+        parse_moment(text)
 
 
 def test_after_the_rollback_the_version_is_live_by_the_rollback_and_not_ended(store):
