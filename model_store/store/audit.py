@@ -30,8 +30,8 @@ _RESTORE = "restore history.jsonl from a backup and investigate who changed it"
 _POINTER_RESTORE = "restore active.json from a backup so that it matches the trail, and investigate who changed it"
 
 
-def check_chain(lines: list[HistoryLine], model: str, head: str | None) -> None:
-    """Raise ``HistoryError`` naming the first entry where the hash chain breaks."""
+def check_chain(lines: list[HistoryLine], model: str, head: str | None, *, restore: str = _RESTORE) -> None:
+    """Raise ``HistoryError`` naming the first entry where the hash chain breaks; ``restore`` says what to do."""
     referenced = {item.entry["prev_hash"] for item in lines}
     if head is not None:
         referenced.add(head)
@@ -45,11 +45,11 @@ def check_chain(lines: list[HistoryLine], model: str, head: str | None) -> None:
                     f"line {item.line} holds an entry claiming seq {item.seq} where seq {expected_seq} belongs, and "
                     "its content does not match its hash: it was inserted (or edited)"
                 )
-            raise HistoryError(f"history of {model}: {found}; {_RESTORE}")
+            raise HistoryError(f"history of {model}: {found}; {restore}")
         if item.seq == expected_seq and item.entry["prev_hash"] == expected_prev:
             expected_seq, expected_prev = item.seq + 1, item.entry["hash"]
             continue
-        raise HistoryError(f"history of {model}: {_diagnose(lines, index, expected_seq, referenced, head)}; {_RESTORE}")
+        raise HistoryError(f"history of {model}: {_diagnose(lines, index, expected_seq, referenced, head)}; {restore}")
 
 
 def _diagnose(lines: list[HistoryLine], index: int, expected_seq: int, referenced: set[str], head: str | None) -> str:

@@ -25,10 +25,10 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from model_store.errors import InvalidNameError, NotFoundError, StoreError
+from model_store.errors import HistoryError, InvalidNameError, NotFoundError, StoreError
 from model_store.naming import check_name
 from model_store.store.durable import TEMP_PREFIX, atomic_write
-from model_store.store.files import read_store_file
+from model_store.store.files import UnsafeStoreEntry, read_store_file, store_entry_kind
 from model_store.store.history import GENESIS
 
 __all__ = [
@@ -143,8 +143,16 @@ def _is_name(entry: str) -> bool:
 
 
 def require_model(layout: StoreLayout, name: str) -> None:
-    """Raise ``NotFoundError`` (listing the models there are) unless the store holds model ``name``."""
-    if not layout.model(name).is_dir():
+    """Raise ``NotFoundError`` (listing the models there are) unless the store holds model ``name``;
+    ``HistoryError`` naming a link, FIFO or file put in the place of its directory."""
+    try:
+        kind = store_entry_kind(layout.root, layout.model(name))
+    except UnsafeStoreEntry as exc:
+        raise HistoryError(f"history of {name}: {exc}") from exc
+    if kind == "file":
+        raise HistoryError(f"history of {name}: {layout.model(name)} is a file where the model's directory belongs; "
+                           "it was put there by hand: restore the directory from a backup")
+    if kind is None:
         raise NotFoundError(f"no model {name!r} in the store {layout.root}; models: {model_names(layout) or 'none'}")
 
 

@@ -68,16 +68,29 @@ def rollback_refusal(name: str, entries: list[dict[str, Any]]) -> str:
     if not rollbacks:
         reason = f"{first.version} is the only version ever made active (at seq {first.seq})"
     else:
-        undone = sorted({entry["version"] for entry in entries if entry["action"] == "activate"} - {first.version})
+        undone = [step for step in _pushed(entries) if step.seq > first.seq]  # re-activations of 1.0.0 too
         reason = (
             f"{first.version} was the first version activated (seq {first.seq}), and the rollbacks at seq "
             f"{', '.join(str(entry['seq']) for entry in rollbacks)} have undone every activation after it "
-            f"(of {', '.join(undone)}); a rollback never goes forward again to a version a rollback left"
+            f"(of {', '.join(f'{step.version} at seq {step.seq}' for step in undone)}); a rollback never goes "
+            "forward again to a version a rollback left"
         )
     return (
         f"cannot roll back {name}: {reason}, so there is no earlier step to return to; "
         f"use 'rbfgate activate {name} VERSION' to make any stored version active"
     )
+
+
+def _pushed(entries: list[dict[str, Any]]) -> list[Step]:
+    """Every step an activation pushed onto the stack, oldest first."""
+    stack: list[Step] = []
+    pushed = []
+    for entry in entries:
+        size = len(stack)
+        apply_entry(stack, entry)
+        if entry["action"] == "activate" and len(stack) > size:
+            pushed.append(stack[-1])
+    return pushed
 
 
 @dataclass

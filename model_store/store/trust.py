@@ -157,14 +157,14 @@ def _read(layout: StoreLayout) -> _TrustState:
         return _TrustState(settings, lines, False, trail)
     if not isinstance(settings["trust_head"], str):
         raise StoreError(f"{layout.settings}: trust_head is malformed; {_RESTORE}")
-    check_chain(lines, TRUST_TRAIL, settings["trust_head"])
+    check_chain(lines, TRUST_TRAIL, settings["trust_head"], restore=_RESTORE)
     return _TrustState(settings, lines, True, trail)
 
 
 def _interrupted_start(settings: dict[str, Any], lines: list[HistoryLine]) -> bool:
     """Whether ``lines`` are what a change killed while it started the trail leaves: the settings' keys
     recorded as "recorded when the trust trail began", chained from the start, before the settings moved."""
-    check_chain(lines, TRUST_TRAIL, None)
+    check_chain(lines, TRUST_TRAIL, None, restore=_RESTORE)
     keys = {(key.key_id, key.public_key) for key in _keys(settings)}
     seen = [(item.entry.get("key_id"), item.entry.get("public_key")) for item in lines]
     return len(set(seen)) == len(seen) and set(seen) <= keys and all(

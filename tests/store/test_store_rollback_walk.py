@@ -35,8 +35,16 @@ def test_a_second_rollback_after_a_round_trip_states_the_real_reason(store):
     message = str(caught.value)
     assert "only version ever made active" not in message  # untrue: 2.0.0 was active too
     assert "1.0.0 was the first version activated (seq 4)" in message
-    assert "rollbacks at seq 6 have undone every activation after it (of 2.0.0)" in message
+    assert "rollbacks at seq 6 have undone every activation after it (of 2.0.0 at seq 5)" in message
     assert store.active("iris").version == "1.0.0"
+
+
+def test_the_refusal_lists_every_activation_undone_including_a_return_to_the_first_version(store):
+    _activate(store, "1.0.0", "2.0.0", "1.0.0")  # stack: 1.0.0, 2.0.0, 1.0.0
+    walked = [store.rollback("iris", reason="back", actor="bob")["version"] for _ in range(2)]
+    assert walked == ["2.0.0", "1.0.0"]
+    with pytest.raises(CheckFailedError, match=r"\(of 2\.0\.0 at seq 5, 1\.0\.0 at seq 6\)"):
+        store.rollback("iris", reason="again", actor="bob")
 
 
 def test_rollbacks_walk_back_one_activation_each(store):

@@ -144,3 +144,14 @@ def test_the_next_trust_change_repairs_the_end_of_the_trail_before_appending(sig
     assert len(store.trusted_keys()) == 2  # the trail still reads: the new entry was not glued to the cut line
     assert store.trust_history()[-1]["action"] == "trust-add"
     assert store.verify_history("iris") == 2
+
+
+def test_a_reordered_trust_trail_names_the_files_to_restore(signed_store, tmp_path):
+    store, _ = signed_store
+    second = generate_key_files(tmp_path / "second")
+    store.add_trusted_key(parse_public_key(str(second.public_path)), label="second", actor="admin")
+    first, last = store.layout.trust_trail.read_bytes().splitlines()
+    store.layout.trust_trail.write_bytes(last + b"\n" + first + b"\n")
+    with pytest.raises(HistoryError, match="reordered; restore rbfgate-store.json and trust.jsonl") as raised:
+        store.trusted_keys()
+    assert "history.jsonl" not in str(raised.value)
