@@ -14,6 +14,9 @@ import pytest
 from model_store.store import Store
 
 from .cases import assert_problem
+from .conftest import build_store
+from .server import ServeProcess
+from .test_service_switching import _wait_until  # the bounded wait of the switching tests
 
 
 def _serving(client) -> str:
@@ -85,3 +88,24 @@ def test_a_stray_directory_among_the_models_stops_neither_listing_nor_following(
     assert _serving(client) == "2.0.0"
     assert [model["model"] for model in client.get("/models").json()["models"]] == ["cancer", "iris"]
     assert client.get("/readyz").json()["store_error"] is None
+
+
+def test_a_real_server_with_two_workers_keeps_serving_when_an_older_pointer_is_put_back(tmp_path, service_models):
+    store = build_store(tmp_path / "store", service_models)
+    older = store.layout.pointer("iris").read_bytes()
+    record = {"records": service_models.iris1.records(service_models.iris1.X[:1])}
+    with ServeProcess(tmp_path, "--store", store.root, "--workers", "2", "--poll-interval", "0.2") as server:
+        with server.client() as client:
+            def all_answer(check, times: int = 12) -> bool:  # requests land on either worker
+                return all(check(client) for _ in range(times))
+
+            Store(store.root).activate("iris", "2.0.0", reason="rollout", actor="ops", via="cli",
+                                       accept_breaking=True)
+            assert _wait_until(lambda: all_answer(lambda c: c.post("/score/iris", json=record).json()["version"]
+                                                  == "2.0.0"), 60)
+            store.layout.pointer("iris").write_bytes(older)
+            assert _wait_until(lambda: all_answer(lambda c: c.get("/readyz").status_code == 503), 60)
+            assert all_answer(lambda c: c.post("/score/iris", json=record).json()["version"] == "2.0.0")
+            [iris] = [m for m in client.get("/readyz").json()["models"] if m["model"] == "iris"]
+            assert "older copy of active.json" in iris["unexplained_pointer"]
+    assert any('"pointer_unexplained"' in line for line in server.log_lines())
