@@ -64,6 +64,7 @@ ACTIONS = tuple(KINDS)
 _LEGACY_ACTIONS = frozenset((*ACTIONS[:9], "outside-domain-refuse", "outside-domain-flag"))
 _LEGACY_OPTIONAL = frozenset({"accepted_breaking"})
 _MAX_TEXT = 1000
+_TIME_FORMAT = "%Y-%m-%dT%H:%M:%SZ"
 
 
 class Trail(NamedTuple):
@@ -91,7 +92,7 @@ class HistoryLine:
 
 def format_time(moment: datetime) -> str:
     """RFC 3339 UTC with whole seconds and the ``Z`` suffix."""
-    return moment.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    return moment.astimezone(timezone.utc).strftime(_TIME_FORMAT)
 
 
 def entry_hash(entry: dict[str, Any]) -> str:
@@ -230,10 +231,21 @@ def _parse(raw: bytes, number: int, path: Path, model: str) -> dict[str, Any]:
     for key in ("time", "actor", "action", "version", "digest", "reason"):
         if entry[key] is not None and not isinstance(entry[key], str):
             raise HistoryError(f"{where}: {key} {entry[key]!r} should be text or null; the trail was edited")
+    if not _is_entry_time(entry["time"]):
+        raise HistoryError(f"{where}: time {entry['time']!r} is not an RFC 3339 UTC time in whole seconds "
+                           "(e.g. 2026-12-01T21:40:00Z), as rbfgate writes them; the trail was edited")
     problem = _shape_problem(entry)
     if problem is not None:
         raise HistoryError(f"{where}: {problem}; the trail was edited")
     return entry
+
+
+def _is_entry_time(value: Any) -> bool:
+    try:
+        return isinstance(value, str) and format_time(datetime.strptime(value, _TIME_FORMAT).replace(
+            tzinfo=timezone.utc)) == value
+    except ValueError:
+        return False
 
 
 def _shape_problem(entry: dict[str, Any]) -> str | None:

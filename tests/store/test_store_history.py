@@ -148,3 +148,14 @@ def test_changes_are_refused_while_the_trail_fails_verification(store):
         store.activate("iris", "1.0.0", reason="emergency", actor="alice")
     assert store.layout.history("iris").read_bytes() == tampered  # the evidence is left as it is
     assert store.active("iris").version == "1.1.0"
+
+
+def test_a_forged_entry_whose_time_is_not_an_entry_time_is_reported_not_a_crash_of_history_at(store):
+    """Even a forger who rechains the last entry and moves the pointer gets a named problem, not a traceback."""
+    lines = trail_lines(store, "iris")
+    forged = rehash({**json.loads(lines[-1]), "time": "2026-12-01T21:40:00.5Z"})
+    write_trail_lines(store, "iris", [*lines[:-1], encode(forged)])
+    pointer = json.loads(store.layout.pointer("iris").read_text())
+    store.layout.pointer("iris").write_text(json.dumps({**pointer, "history_head": forged["hash"]}))
+    with pytest.raises(HistoryError, match=r"line 6: time '2026-12-01T21:40:00.5Z' is not an RFC 3339 UTC time"):
+        store.live_at("iris", datetime(2030, 1, 1, tzinfo=timezone.utc))
