@@ -16,12 +16,12 @@ import argparse
 import sys
 from importlib.metadata import entry_points
 
-from model_store.cli import bundle_commands, demo_command, store_commands
+from model_store.cli import bundle_commands, demo_command, score_command, store_commands
 from model_store.errors import RbfgateError
 
 __all__ = ["build_parser", "main"]
 
-_LOCAL_MODULES = (demo_command, bundle_commands, store_commands)
+_LOCAL_MODULES = (demo_command, bundle_commands, score_command, store_commands)
 
 
 def build_parser() -> argparse.ArgumentParser:
