@@ -150,7 +150,7 @@ def _client(run: DaskRun):
             client.close()
         return
     cluster = LocalCluster(n_workers=run.workers or os.cpu_count() or 1, threads_per_worker=1, processes=True,
-                           dashboard_address=None, silence_logs=logging.CRITICAL)
+                           dashboard_address=":0", silence_logs=logging.CRITICAL)
     try:
         with Client(cluster) as client:
             yield client

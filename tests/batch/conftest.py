@@ -70,7 +70,7 @@ def dask_cluster():
 
     from distributed import Client, LocalCluster
 
-    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0",
                            silence_logs=logging.CRITICAL)
     client = Client(cluster)
     yield cluster, client
