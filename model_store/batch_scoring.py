@@ -15,6 +15,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
+from threadpoolctl import threadpool_limits
 from tqdm import tqdm
 
 from model_store.batch_inputs import InputPart, check_part, discover_parts, kept_types, open_part
@@ -24,7 +25,7 @@ from model_store.chunk_scoring import output_schema, score_chunk
 from model_store.errors import InputError, TableError
 from model_store.result_columns import result_columns, result_names
 
-__all__ = ["ScoreSummary", "check_keep", "output_columns", "score_csv", "score_file", "summary_document"]
+__all__ = ["ScoreSummary", "check_keep", "output_columns", "score_file", "summary_document"]
 
 
 @dataclass(frozen=True)
@@ -58,11 +59,6 @@ def check_keep(bundle: Bundle, keep: Sequence[str]) -> list[str]:
     return keep
 
 
-def score_csv(bundle: Bundle, source: Path, out: Path, *, progress: bool | None = None) -> ScoreSummary:
-    """Score a CSV file into a CSV file (the demo's and the original command's form)."""
-    return score_file(bundle, source, out, progress=progress)
-
-
 def score_file(bundle: Bundle, source: Path, out: Path, *, keep: Sequence[str] = (), origin: str | None = None,
                progress: bool | None = None) -> ScoreSummary:
     """Score every row of ``source`` (CSV/Parquet file or directory of parts) into ``out``."""
@@ -81,6 +77,10 @@ def score_file(bundle: Bundle, source: Path, out: Path, *, keep: Sequence[str] =
     staging = target.stage()
     writers: list[PartWriter] = []
     scored = refused = 0
+    # One BLAS thread: the scorer's thin products gain little from more, and a second OpenBLAS
+    # thread competing with the reader for the same cores made scoring 5 to 10 times slower on a
+    # busy 2-core machine (measured; tests/benchmarks/file_bench.py). As the service workers do.
+    limits = threadpool_limits(limits=1, user_api="blas")
     try:
         if target.format == "csv":
             writers.append(PartWriter(staging / "joined.csv", schema, "csv"))
@@ -107,6 +107,7 @@ def score_file(bundle: Bundle, source: Path, out: Path, *, keep: Sequence[str] =
         target.abort()
         raise
     finally:
+        limits.restore_original_limits()
         bar.close()
     return summary
 

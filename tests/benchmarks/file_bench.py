@@ -149,22 +149,34 @@ def _write_parquet(folder: Path, source: Path, parts: int) -> Path:
     return folder
 
 
+# Started from a small process of its own: Linux carries the resident size of the process that
+# forks into the child's ru_maxrss (exec records the old memory's high-water mark), so a child of
+# this benchmark, which holds the test data, would report at least the benchmark's own size.
+_MEASURE = textwrap.dedent(
+    """
+    import os, subprocess, sys, time
+    started = time.perf_counter()
+    child = subprocess.Popen(sys.argv[1:], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    error = child.stderr.read()
+    _, status, usage = os.wait4(child.pid, 0)
+    seconds = time.perf_counter() - started
+    sys.stderr.write(error.decode(errors="replace")[-2000:])
+    print(os.waitstatus_to_exitcode(status), seconds, usage.ru_maxrss)
+    """
+)
+
+
 def _run_once(command: list[str], fresh: Path | None = None) -> tuple[float, float]:
     """(wall seconds, peak RSS MiB) of one run of ``command`` as a child process."""
     if fresh is not None and fresh.exists():
         import shutil
 
         shutil.rmtree(fresh)
-    started = time.perf_counter()
-    child = subprocess.Popen(command, cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    _, status, usage = os.wait4(child.pid, 0)
-    seconds = time.perf_counter() - started
-    child.returncode = os.waitstatus_to_exitcode(status)
-    error = child.stderr.read().decode(errors="replace")
-    child.stderr.close()
-    if child.returncode != 0:
-        raise RuntimeError(f"{' '.join(command[:4])} ... exited {child.returncode}: {error[-2000:]}")
-    return seconds, usage.ru_maxrss / 1024  # Linux reports ru_maxrss in KiB
+    done = subprocess.run([sys.executable, "-c", _MEASURE, *command], cwd=REPO, capture_output=True, text=True)
+    code, seconds, max_rss_kib = done.stdout.split()
+    if int(code) != 0 or done.returncode != 0:
+        raise RuntimeError(f"{' '.join(command[:4])} ... exited {code}: {done.stderr}")
+    return float(seconds), int(max_rss_kib) / 1024  # Linux reports ru_maxrss in KiB
 
 
 def _measure(name, command, rows, repeats, log, fresh=None) -> Measured:

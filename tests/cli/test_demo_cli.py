@@ -31,6 +31,7 @@ def test_demo_trains_scores_publishes_and_activates(tmp_path, capsys):
     with open(out / "incoming_scored.csv", newline="") as handle:
         rows = list(csv.DictReader(handle))
     assert [row["status"] for row in rows].count("refused") == 3  # the three planted bad pallets
+    assert list(rows[0])[0] == "pallet_id" and rows[0]["pallet_id"]  # the ids travel with the results
     assert rows[-1]["problems"].startswith("core_temp_c=19.0 outside")
     store = Store(out / "store")
     active = store.active("pallet-checks")
