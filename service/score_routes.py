@@ -129,8 +129,11 @@ def _account(services: Services, model: LoadedModel, batch: ScoredBatch, note: d
 
 
 def _flat_problems(batch: ScoredBatch) -> list[dict[str, Any]]:
-    return [
-        {"record": index, **problem.to_dict()}
-        for index, problems in sorted(batch.checked.problems.items())
-        for problem in problems
-    ]
+    ids = batch.checked.ids
+    flat = []
+    for index, problems in sorted(batch.checked.problems.items()):
+        head: dict[str, Any] = {"record": index}
+        if ids is not None and ids[index] is not None:
+            head["id"] = ids[index]  # the caller's id, beside the index, so either finds the record
+        flat.extend({**head, **problem.to_dict()} for problem in problems)
+    return flat
