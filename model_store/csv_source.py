@@ -199,7 +199,7 @@ class CsvSource:
 
     def _fields(self, text: str, number: int) -> list[str]:
         try:
-            return next(csv.reader(io.StringIO(text)), [""]) or [""]
+            return next(csv.reader(io.StringIO(text, newline="")), [""]) or [""]
         except csv.Error as exc:
             raise CsvError(str(self.path), f"unreadable record {number - 1}: {exc}") from exc
 
@@ -244,14 +244,25 @@ class _Utf8Stream(io.RawIOBase):
         self._decoder = codecs.getincrementaldecoder("utf-8")()
         self._lines_before = 0  # newlines in the bytes already passed on
         self._line_start = 0    # bytes since the last newline, for the byte position in a line
+        self._held = b""        # a carriage return kept back for the next read
         self.error: CsvError | None = None
 
     def readable(self) -> bool:
         return True
 
     def readinto(self, buffer) -> int:
-        count = self._handle.readinto(buffer)
-        data = memoryview(buffer)[:count].tobytes()
+        view = memoryview(buffer).cast("B")
+        start = len(self._held)
+        view[:start] = self._held
+        self._held = b""
+        count = start + (self._handle.readinto(view[start:]) or 0)
+        if count > 1 and view[count - 1] == 0x0D:
+            # Never end a block on a carriage return: Arrow (pyarrow 26) then drops the line feed
+            # that follows it in the next block, even inside a quoted value ("a\r\nb" read as
+            # "a\rb"). The byte starts the next read instead; Arrow takes short reads as blocks.
+            self._held = bytes(view[count - 1:count])
+            count -= 1
+        data = view[:count].tobytes()
         try:
             self._decoder.decode(data, final=count == 0)
         except UnicodeDecodeError as exc:

@@ -128,3 +128,17 @@ def test_a_non_utf8_byte_is_named_by_its_line_even_inside_a_short_row(tmp_path, 
     (tmp_path / "in.csv").write_bytes((",".join(FEATURES) + "\n" + (good + "\n") * 3).encode() + b"1,\xe9\n")
     assert main(["score", bundle.source, str(tmp_path / "in.csv"), "--out", str(tmp_path / "o.csv")]) == 2
     assert "line 5 is not UTF-8 text (byte 3 of the line)" in capsys.readouterr().err
+
+
+def test_a_quoted_line_break_survives_a_block_boundary_after_its_carriage_return(tmp_path, iris_calibrated):
+    """Found by the test above: Arrow drops the line feed of a quoted CR LF when a block ends
+    between the two bytes; the reader never ends a block on a CR."""
+    bundle, _, X = iris_calibrated
+    ids = [f"line {i}\r\nnext" for i in range(30)]
+    columns = {"id": ids, **{name: [repr(float(X[0, j]))] * 30 for j, name in enumerate(FEATURES)}}
+    buffer = io.StringIO()
+    csv.writer(buffer, lineterminator="\n").writerows([list(columns), *zip(*columns.values())])
+    (tmp_path / "in.csv").write_bytes(buffer.getvalue().encode())
+    for block in range(100, 140):  # some block boundary falls on every byte of a record
+        source = model_store.csv_source.CsvSource(tmp_path / "in.csv", block_bytes=block)
+        assert [v for chunk in source.chunks(["id"]) for v in chunk.columns["id"].to_pylist()] == ids, block
