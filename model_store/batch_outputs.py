@@ -115,7 +115,8 @@ class OutputTarget:
 
     def commit(self, csv_parts: list[Path] | None, document: dict) -> None:
         """Move the staged output into place; ``csv_parts`` (header first) are joined into the CSV file."""
-        assert self.staging is not None
+        if self.staging is None:
+            raise RuntimeError("OutputTarget.commit() called before stage()")
         for stray in self.staging.glob(".*"):
             stray.unlink()  # an attempt killed mid-write leaves its hidden temporary file
         if self.format == "parquet":

@@ -15,6 +15,7 @@ import sys
 from collections.abc import Mapping
 from pathlib import Path
 
+from model_store.cli.store_commands import count_argument
 from model_store.errors import InputError
 
 __all__ = ["register"]
@@ -43,7 +44,7 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
                         "default: a local cluster started for this run")
     parser.add_argument("--workers", type=_positive, metavar="N",
                         help="with --engine dask and no --scheduler: worker processes (default: one per core)")
-    parser.add_argument("--retries", type=_non_negative, default=2, metavar="N",
+    parser.add_argument("--retries", type=count_argument, default=2, metavar="N",
                         help="with --engine dask: times a failed part is tried again (default 2)")
     parser.add_argument("--store", metavar="DIR", help="store directory (default: $RBFGATE_STORE, else "
                         "$XDG_DATA_HOME/rbfgate/store, else ~/.local/share/rbfgate/store)")
@@ -57,19 +58,9 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
 
 
 def _positive(text: str) -> int:
-    value = _non_negative(text)
+    value = count_argument(text)
     if value == 0:
         raise argparse.ArgumentTypeError("give 1 or more")
-    return value
-
-
-def _non_negative(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"{value} is negative; give 0 or more")
     return value
 
 

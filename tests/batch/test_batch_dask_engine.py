@@ -44,14 +44,19 @@ def _score(*arguments) -> int:
     return main(["score", *map(str, arguments)])
 
 
+def _both_engines(bundle, parts, tmp_path, scheduler):
+    """The Parquet output tables of --engine local and of --engine dask on the same parts."""
+    assert _score(bundle.source, parts, "--out", tmp_path / "local.parquet", "--keep", "id") == 0
+    assert _score(bundle.source, parts, "--out", tmp_path / "dask.parquet", "--keep", "id", "--engine", "dask",
+                  "--scheduler", scheduler) == 0
+    return pq.read_table(tmp_path / "local.parquet"), pq.read_table(tmp_path / "dask.parquet")
+
+
 def test_dask_and_local_give_the_same_results_on_parquet_parts(tmp_path, iris_calibrated, dask_cluster):
     bundle, _, X = iris_calibrated
     cluster, _ = dask_cluster
     parts = numeric_parquet_parts(tmp_path / "in", iris_table(X, 40_000), parts=8)
-    assert _score(bundle.source, parts, "--out", tmp_path / "local.parquet", "--keep", "id") == 0
-    assert _score(bundle.source, parts, "--out", tmp_path / "dask.parquet", "--keep", "id", "--engine", "dask",
-                  "--scheduler", cluster.scheduler_address) == 0
-    local, dask = pq.read_table(tmp_path / "local.parquet"), pq.read_table(tmp_path / "dask.parquet")
+    local, dask = _both_engines(bundle, parts, tmp_path, cluster.scheduler_address)
     assert local.num_rows == 40_000 and set(local["status"].to_pylist()) == {"scored", "refused"}
     assert_same_results(local, dask)
     assert sorted(p.name for p in (tmp_path / "dask.parquet").iterdir()) == [f"part-{i:05d}.parquet" for i in range(8)]
@@ -169,9 +174,6 @@ def test_a_million_rows_in_eight_parts_are_identical_between_engines(tmp_path, i
     bundle, _, X = iris_calibrated
     cluster, _ = dask_cluster
     parts = numeric_parquet_parts(tmp_path / "in", iris_table(X, 1_000_000), parts=8)
-    assert _score(bundle.source, parts, "--out", tmp_path / "local.parquet", "--keep", "id") == 0
-    assert _score(bundle.source, parts, "--out", tmp_path / "dask.parquet", "--keep", "id", "--engine", "dask",
-                  "--scheduler", cluster.scheduler_address) == 0
-    local = pq.read_table(tmp_path / "local.parquet")
+    local, dask = _both_engines(bundle, parts, tmp_path, cluster.scheduler_address)
     assert local.num_rows == 1_000_000 and local["status"].to_pylist().count("refused") > 1000
-    assert_same_results(local, pq.read_table(tmp_path / "dask.parquet"))
+    assert_same_results(local, dask)

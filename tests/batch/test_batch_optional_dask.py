@@ -46,3 +46,5 @@ def test_dask_lives_in_the_batch_extra_only():
     serving_install = [line for line in (REPO / "deploy" / "Dockerfile").read_text().splitlines()
                        if "pip install" in line and "[serve]" in line]
     assert serving_install and all("batch" not in line for line in serving_install)
+    guard = [line for line in (REPO / "deploy" / "Dockerfile").read_text().splitlines() if "find_spec" in line]
+    assert guard and "'dask'" in guard[0] and "'distributed'" in guard[0]  # the image build fails if one slips in
