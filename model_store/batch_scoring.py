@@ -5,7 +5,8 @@ a Parquet batch of ``batch_inputs.PARQUET_BATCH_ROWS`` rows), checked and
 scored with ``chunk_scoring.score_chunk`` and written at once, so memory
 holds one chunk and its results whatever the table's size. Rows with a
 missing, empty, non-numeric, NaN, infinite or out-of-range feature are refused
-(never scored) and the rest are scored. The output is staged beside the target
+(never scored) and the rest are scored; a scored row whose domain verdict is ``outside`` is
+refused as ``outside_domain`` unless the action is ``flag``. The output is staged beside the target
 and moved into place at the end (``batch_outputs``).
 """
 
@@ -22,6 +23,7 @@ from model_store.batch_inputs import InputPart, check_part, discover_parts, kept
 from model_store.batch_outputs import OutputTarget, PartWriter, identity, part_name
 from model_store.bundle import Bundle
 from model_store.chunk_scoring import output_schema, score_chunk
+from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION
 from model_store.errors import InputError, TableError
 from model_store.result_columns import result_columns, result_names
 
@@ -60,8 +62,11 @@ def check_keep(bundle: Bundle, keep: Sequence[str]) -> list[str]:
 
 
 def score_file(bundle: Bundle, source: Path, out: Path, *, keep: Sequence[str] = (), origin: str | None = None,
-               progress: bool | None = None) -> ScoreSummary:
-    """Score every row of ``source`` (CSV/Parquet file or directory of parts) into ``out``."""
+               progress: bool | None = None, outside_action: str = DEFAULT_OUTSIDE_ACTION) -> ScoreSummary:
+    """Score every row of ``source`` (CSV/Parquet file or directory of parts) into ``out``.
+
+    ``outside_action``: ``refuse`` rows whose domain verdict is outside (``outside_domain``), or ``flag`` them.
+    """
     keep = check_keep(bundle, keep)
     parts = discover_parts(source)
     target = OutputTarget(out)
@@ -90,7 +95,7 @@ def score_file(bundle: Bundle, source: Path, out: Path, *, keep: Sequence[str] =
             if target.format == "parquet":
                 writers.append(PartWriter(staging / part_name(index, "parquet"), schema, "parquet", metadata=about))
             for chunk in reader.chunks(needed, first_row=next_row):
-                result = score_chunk(bundle, columns, chunk, keep, schema)
+                result = score_chunk(bundle, columns, chunk, keep, schema, outside_action)
                 writers[-1].write(result.table)
                 scored, refused = scored + result.scored, refused + result.refused
                 next_row += len(chunk)

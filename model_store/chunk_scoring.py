@@ -16,6 +16,7 @@ import pyarrow as pa
 from model_store.bundle import Bundle
 from model_store.column_checks import check_columns
 from model_store.csv_source import Chunk
+from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION, apply_outside_policy
 from model_store.result_columns import ResultColumn, result_columns, result_table
 
 __all__ = ["ChunkResult", "output_schema", "score_chunk"]
@@ -43,15 +44,21 @@ def output_schema(bundle: Bundle, kept: Sequence[pa.Field], *, with_row: bool = 
 
 
 def score_chunk(bundle: Bundle, columns: list[ResultColumn], chunk: Chunk, keep: Sequence[str],
-                schema: pa.Schema) -> ChunkResult:
-    """Refuse what the policy refuses, score the rest, and lay out one output row per input row."""
+                schema: pa.Schema, outside_action: str = DEFAULT_OUTSIDE_ACTION) -> ChunkResult:
+    """Refuse what the policy refuses, score the rest, and lay out one output row per input row.
+
+    ``outside_action`` (``refuse`` or ``flag``) says what becomes of a scored row whose domain
+    verdict is ``outside`` (``model_store.domain_policy``).
+    """
     features = bundle.manifest.features
     checked = check_columns(features, [chunk.columns[feature.name] for feature in features], n_rows=len(chunk),
                             malformed=chunk.malformed)
     scores = bundle.scorer.score(checked.values) if len(checked.accepted) else None
+    outside = apply_outside_policy(checked, scores, outside_action)
     problems = {position: "; ".join(problem.describe() for problem in found)
                 for position, found in checked.problems.items()}
     results = result_table(bundle, columns, rows=chunk.rows if columns[0].name == "row" else None,
-                           scored=checked.accepted, scores=scores, problems=problems)
+                           scored=checked.accepted, scores=scores, problems=problems, outside=outside)
     kept = [chunk.columns[name] for name in keep]
-    return ChunkResult(pa.Table.from_arrays([*kept, *results], schema=schema), len(checked.accepted))
+    return ChunkResult(pa.Table.from_arrays([*kept, *results], schema=schema),
+                       len(checked.accepted) - int(outside.sum()))

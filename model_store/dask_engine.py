@@ -42,6 +42,7 @@ from model_store.batch_scoring import ScoreSummary, check_keep, summary_document
 from model_store.bundle import Bundle
 from model_store.bundle_transport import bundle_bytes, verified_bundle
 from model_store.chunk_scoring import output_schema, score_chunk
+from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION
 from model_store.errors import InputError, RbfgateError, TableError
 from model_store.result_columns import result_columns
 
@@ -96,10 +97,12 @@ class _PartTask:
     staging: str
     output_format: str
     metadata: dict
+    outside_action: str
 
 
 def score_with_dask(bundle: Bundle, source: Path, out: Path, *, keep: Sequence[str] = (), origin: str | None = None,
-                    progress: bool | None = None, run: DaskRun = DaskRun()) -> ScoreSummary:
+                    progress: bool | None = None, run: DaskRun = DaskRun(),
+                    outside_action: str = DEFAULT_OUTSIDE_ACTION) -> ScoreSummary:
     """Score ``source`` into ``out`` on a Dask cluster; the same output as ``score_file``."""
     keep = check_keep(bundle, keep)
     parts = discover_parts(source)
@@ -118,7 +121,7 @@ def score_with_dask(bundle: Bundle, source: Path, out: Path, *, keep: Sequence[s
         futures = []
         try:
             tasks = [_PartTask(part, index, offsets[index], bundle.digest, tuple(keep), kept, str(staging),
-                               target.format, about) for index, part in enumerate(parts)]
+                               target.format, about, outside_action) for index, part in enumerate(parts)]
             futures = [client.submit(_score_part, task, key=f"rbfgate-score-{task.index:05d}-{token}",
                                      retries=run.retries, pure=False) for task in tasks]
             done = _gather(futures, len(parts), progress)
@@ -225,7 +228,7 @@ def _score_part(task: _PartTask):
         scored = refused = 0
         try:
             for chunk in reader.chunks(needed, first_row=task.first_row):
-                result = score_chunk(bundle, columns, chunk, task.keep, schema)
+                result = score_chunk(bundle, columns, chunk, task.keep, schema, task.outside_action)
                 writer.write(result.table)
                 scored, refused = scored + result.scored, refused + result.refused
             writer.commit()

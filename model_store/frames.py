@@ -28,31 +28,35 @@ from model_store.bundle_transport import bundle_bytes, verified_bundle
 from model_store.chunk_scoring import output_schema, score_chunk
 from model_store.column_checks import column_kind
 from model_store.csv_source import Chunk
+from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION
 from model_store.errors import InputError
 from model_store.result_columns import result_columns, result_names
 
 __all__ = ["score_frame"]
 
 
-def score_frame(bundle: Bundle, frame, *, keep: Sequence[str] = ()):
-    """Results for every row of ``frame`` (pandas.DataFrame or dask.dataframe.DataFrame), same type back."""
+def score_frame(bundle: Bundle, frame, *, keep: Sequence[str] = (), outside_action: str = DEFAULT_OUTSIDE_ACTION):
+    """Results for every row of ``frame`` (pandas.DataFrame or dask.dataframe.DataFrame), same type back.
+
+    ``outside_action``: ``refuse`` rows whose domain verdict is outside, or ``flag`` them (answered).
+    """
     keep = list(keep)
     _check_names(bundle, list(frame.columns), keep)
     if _is_dask(frame):
         import dask
 
         data = dask.delayed(bundle_bytes(bundle), pure=True)
-        meta = _score_pandas(bundle, frame._meta, keep)
-        return frame.map_partitions(_score_partition, data, bundle.digest, keep, meta=meta)
-    return _score_pandas(bundle, frame, keep)
+        meta = _score_pandas(bundle, frame._meta, keep, outside_action)
+        return frame.map_partitions(_score_partition, data, bundle.digest, keep, outside_action, meta=meta)
+    return _score_pandas(bundle, frame, keep, outside_action)
 
 
 def _is_dask(frame) -> bool:
     return type(frame).__module__.split(".")[0] in ("dask", "dask_expr")
 
 
-def _score_partition(frame, data: bytes, digest: str, keep: list[str]):
-    return _score_pandas(verified_bundle(data, digest), frame, keep)
+def _score_partition(frame, data: bytes, digest: str, keep: list[str], outside_action: str):
+    return _score_pandas(verified_bundle(data, digest), frame, keep, outside_action)
 
 
 def _check_names(bundle: Bundle, columns: list, keep: list[str]) -> None:
@@ -68,14 +72,14 @@ def _check_names(bundle: Bundle, columns: list, keep: list[str]) -> None:
             raise InputError(f"keep: {name!r} is also a result column; rename that column of the frame first")
 
 
-def _score_pandas(bundle: Bundle, frame, keep: list[str]):
+def _score_pandas(bundle: Bundle, frame, keep: list[str], outside_action: str):
     import pandas as pd
 
     columns = {name: _arrow_column(frame[name], name) for name in bundle.feature_names}
     chunk = Chunk(np.arange(1, len(frame) + 1, dtype=np.int64), columns)
     result_cols = result_columns(bundle, with_row=False)
     schema = output_schema(bundle, [], with_row=False)
-    table = score_chunk(bundle, result_cols, chunk, [], schema).table
+    table = score_chunk(bundle, result_cols, chunk, [], schema, outside_action).table
     results = table.to_pandas(types_mapper={pa.int64(): pd.Int64Dtype()}.get)
     results.index = frame.index
     if keep:

@@ -12,6 +12,7 @@ column that only a score fills.
     decision            binary; decision[<class>] for each class when multiclass
     probability[<c>]    when the bundle is calibrated
     nearest_distance, nearest_similarity, nearest_label, nearest_percentile
+    domain_verdict, domain_score   null without a domain model; kept for rows refused as outside_domain
     problems            null when scored, else each feature and why ("; "-separated)
 """
 
@@ -38,8 +39,9 @@ class ResultColumn:
 
     name: str
     type: pa.DataType
-    values: Callable[[Scores], np.ndarray] | None  # None: filled by the writer (row, status, problems)
+    values: Callable[[Scores], np.ndarray | None] | None  # None: filled by the writer (row, status, problems)
     labels: bool = False  # holds class labels: built from label indices, not from values
+    domain: bool = False  # also filled for rows refused as outside_domain (their verdict is the reason)
 
 
 def result_columns(bundle: Bundle, *, with_row: bool = True) -> list[ResultColumn]:
@@ -71,6 +73,8 @@ def _per_bundle_columns(bundle: Bundle) -> list[ResultColumn]:
         ResultColumn("nearest_similarity", _FLOAT, lambda s: s.nearest_similarity),
         ResultColumn("nearest_label", label_type, lambda s: _nearest_label_index(bundle, s), labels=True),
         ResultColumn("nearest_percentile", _FLOAT, lambda s: s.nearest_percentile),
+        ResultColumn("domain_verdict", _TEXT, lambda s: s.domain_verdict, domain=True),
+        ResultColumn("domain_score", _FLOAT, lambda s: s.domain_score, domain=True),
     ]
 
 
@@ -90,17 +94,22 @@ def result_table(
     scored: np.ndarray,
     scores: Scores | None,
     problems: dict[int, str],
+    outside: np.ndarray | None = None,
 ) -> list[pa.Array]:
     """Arrays for ``columns`` over n rows.
 
     rows:     (n,) int64 row numbers, or None when ``columns`` has no ``row``
-    scored:   (n_scored,) positions (0..n-1, increasing) of the rows that were scored
+    scored:   (n_scored,) positions (0..n-1, increasing) of the rows that went through the scorer
     scores:   the Scores of exactly those rows, in that order (None when none was scored)
     problems: position -> the problems text of every refused row
+    outside:  (n_scored,) bool, the scored rows then refused as outside_domain (None: none)
     """
-    n = len(rows) if rows is not None else len(scored) + len(problems)
-    mask = np.ones(n, dtype=bool)  # True where the row was refused (null in score columns)
-    mask[scored] = False
+    n = len(rows) if rows is not None else len(problems) + len(scored) - int(np.sum(outside) if outside is not None else 0)
+    unscored = np.ones(n, dtype=bool)  # True where the scorer never saw the row
+    unscored[scored] = False
+    mask = unscored.copy()  # True where the row was refused (null in score columns)
+    if outside is not None:
+        mask[scored[outside]] = True
     arrays = []
     for column in columns:
         if column.name == "row":
@@ -115,15 +124,18 @@ def result_table(
         elif column.labels:
             arrays.append(_labels(bundle, column, mask, scored, scores))
         else:
-            arrays.append(_values(column, mask, scored, scores))
+            arrays.append(_values(column, unscored if column.domain else mask, scored, scores))
     return arrays
 
 
 def _values(column: ResultColumn, mask, scored, scores) -> pa.Array:
     numeric = pa.types.is_floating(column.type) or pa.types.is_integer(column.type)
+    values = column.values(scores) if scores is not None else None
+    if values is None and scores is not None:
+        return pa.nulls(len(mask), type=column.type)  # a bundle without a domain model, say
     full = np.zeros(len(mask), dtype=column.type.to_pandas_dtype()) if numeric else np.full(len(mask), None, object)
-    if scores is not None:
-        full[scored] = column.values(scores)
+    if values is not None:
+        full[scored] = values
     return pa.array(full, type=column.type, mask=mask)
 
 

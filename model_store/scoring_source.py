@@ -15,8 +15,10 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 from model_store.bundle import Bundle, load_bundle
+from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION
 from model_store.errors import InputError, NotFoundError
 from model_store.store import Store
+from model_store.store.domain_choice import outside_action_from
 from model_store.store.state import activation_stack
 
 __all__ = ["ScoringModel", "from_bundle_path", "from_store", "parse_moment", "version_live_at"]
@@ -24,10 +26,12 @@ __all__ = ["ScoringModel", "from_bundle_path", "from_store", "parse_moment", "ve
 
 @dataclass(frozen=True)
 class ScoringModel:
-    """The verified bundle and a one-line description of where it came from (for the output's metadata)."""
+    """The verified bundle, a one-line description of where it came from (for the output's metadata),
+    and what becomes of rows outside its domain: the store's choice for the model, else ``refuse``."""
 
     bundle: Bundle
     origin: str
+    outside_action: str = DEFAULT_OUTSIDE_ACTION
 
 
 def from_bundle_path(path: Path) -> ScoringModel:
@@ -42,7 +46,11 @@ def from_store(store: Store, name: str, *, version: str | None = None, at: str |
     if at is not None:
         moment = parse_moment(at)
         store.verify_history(name)  # an audit answer must not rest on an edited trail
-        version = version_live_at(store.history(name), moment)
+    entries = store.history(name)
+    if at is not None:
+        # The outside-domain choice in force then, with the version live then.
+        entries = [entry for entry in entries if _entry_time(entry) <= moment]
+        version = version_live_at(entries, moment)
         if version is None:
             raise NotFoundError(f"no version of {name} was active at {at}; 'rbfgate history {name}' shows when "
                                 "versions were activated")
@@ -61,7 +69,8 @@ def from_store(store: Store, name: str, *, version: str | None = None, at: str |
             raise
         raise NotFoundError(f"{name} {version} was live at {at} but is no longer in the store (pruned); "
                             "restore it from a backup to re-run with it") from exc
-    return ScoringModel(bundle, f"store {store.root}, model {name}, version {version} ({how})")
+    return ScoringModel(bundle, f"store {store.root}, model {name}, version {version} ({how})",
+                        outside_action_from(entries))
 
 
 def parse_moment(text: str) -> datetime:

@@ -53,6 +53,9 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
     which.add_argument("--version", metavar="V", help="with --model: this version (default: the active one)")
     which.add_argument("--at", metavar="TIME", help="with --model: the version live at this RFC 3339 time, "
                        "e.g. 2026-12-01T21:40:00Z (from the model's verified history)")
+    parser.add_argument("--flag-outside", action="store_true",
+                        help="answer rows whose domain verdict is outside (flagged in domain_verdict) instead of "
+                        "refusing them as outside_domain (with --model: default the store's choice for the model)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar (it shows only on a terminal)")
     parser.set_defaults(handler=lambda args: _score(args, environ))
 
@@ -70,11 +73,13 @@ def _score(args, environ) -> int:
     source, model = _model_and_input(args, environ)
     keep = [name.strip() for name in args.keep.split(",")] if args.keep else []
     progress = False if args.no_progress else None
+    outside_action = "flag" if args.flag_outside else model.outside_action
     if args.engine == "local":
         for flag in ("scheduler", "workers"):
             if getattr(args, flag) is not None:
                 raise InputError(f"--{flag} applies to --engine dask only")
-        summary = score_file(model.bundle, source, args.out, keep=keep, origin=model.origin, progress=progress)
+        summary = score_file(model.bundle, source, args.out, keep=keep, origin=model.origin, progress=progress,
+                             outside_action=outside_action)
     else:
         if args.scheduler is not None and args.workers is not None:
             raise InputError("--workers sizes the local cluster; an existing cluster (--scheduler) has its own workers")
@@ -83,6 +88,7 @@ def _score(args, environ) -> int:
         summary = score_with_dask(
             model.bundle, source, args.out, keep=keep, origin=model.origin, progress=progress,
             run=DaskRun(scheduler=args.scheduler, workers=args.workers, retries=args.retries),
+            outside_action=outside_action,
         )
     print(f"{summary.scored} scored, {summary.refused} refused", file=sys.stderr)
     return 0

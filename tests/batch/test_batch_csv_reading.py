@@ -3,8 +3,9 @@
 Reference: Python's ``csv`` module (RFC 4180 quoting: quoted commas, quotes and line breaks)
 plus the reading rules the README states (blank lines skipped and not counted, rows numbered
 from 1, more fields than the header refused as malformed, fewer fields leave features
-missing) and the refusal policy ``check_records(..., from_text)``. Generated files mix all of
-these and are read in blocks far smaller than the file, so records cross block boundaries.
+missing) and the refusal policy as the service applies it: ``check_records(..., from_text)``, then
+the domain verdict (``apply_outside_policy``). Generated files mix all of these and are read in
+blocks far smaller than the file, so records cross block boundaries.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from hypothesis import strategies as st
 
 import model_store.csv_source
 from model_store.cli import main
+from model_store.domain_policy import apply_outside_policy
 from model_store.refusal import Problem, check_records, from_text
 
 from .conftest import FEATURES, read_csv_rows
@@ -63,7 +65,10 @@ def _reference(text: str, bundle) -> list[tuple[str, str, str, str]]:
         if len(fields) > len(header):
             problems = Problem("(row)", len(fields), "malformed_row", None).describe()
         else:
+            # The record policy as the service applies it: ranges first, then the domain verdict.
             checked = check_records(bundle.manifest.features, [record], from_text, allow_extra=True)
+            scores = bundle.scorer.score(checked.values) if len(checked.accepted) else None
+            apply_outside_policy(checked, scores, "refuse")
             problems = "; ".join(p.describe() for p in checked.problems.get(0, []))
         out.append((str(number), "refused" if problems else "scored", problems, record.get("id", "")))
     return out
