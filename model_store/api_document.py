@@ -24,6 +24,7 @@ component in ``_components`` if it needs one). OpenAPI 3.1 schema objects are JS
 
 from __future__ import annotations
 
+import re
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -298,7 +299,30 @@ def _result_union() -> dict[str, Any]:
 
 
 def _per_class(classes: list[str], value: dict[str, Any], description: str) -> dict[str, Any]:
-    return {**_object({label: dict(value) for label in classes}, classes), "description": description}
+    """One property per class, or a map keyed by the classes when they do not make distinct names.
+
+    Client generators make an attribute name of each property by dropping everything but letters and
+    digits and folding case (common practice; openapi-python-client turns both ``-1`` and ``1`` into
+    ``field_1``), and a clash makes them drop the type and every type that uses it. Labels such as
+    -1 and 1 therefore get an object whose keys are exactly the classes: ``propertyNames`` with
+    ``minProperties`` = ``maxProperties`` = the number of classes (JSON Schema 2020-12, sections
+    10.3.2.4 and 6.5), which validates the same answers.
+    """
+    if _distinct_names(classes):
+        return {**_object({label: dict(value) for label in classes}, classes), "description": description}
+    return {
+        "type": "object",
+        "description": f"{description}; keyed by class label (the labels do not make distinct attribute names)",
+        "propertyNames": {"enum": list(classes)},
+        "additionalProperties": dict(value),
+        "minProperties": len(classes),
+        "maxProperties": len(classes),
+    }
+
+
+def _distinct_names(labels: list[str]) -> bool:
+    folded = [re.sub(r"[^0-9a-z]", "", label.casefold()) for label in labels]
+    return all(folded) and len(set(folded)) == len(folded)
 
 
 def _object(properties: dict[str, Any], required: list[str]) -> dict[str, Any]:
