@@ -40,6 +40,8 @@ __all__ = [
     "ResultField",
     "api_document",
     "problem_type_uri",
+    "record_id_schema",
+    "record_properties",
 ]
 
 OPENAPI_VERSION = "3.1.0"
@@ -182,11 +184,7 @@ def _components(manifest: Manifest, digest: str, max_records: int) -> dict[str, 
     schemas: dict[str, Any] = {
         "Label": _label_schema(manifest),
         "RefusalReason": {"type": "string", "enum": list(REASONS), "description": "why a record was refused"},
-        "RecordId": {
-            "description": f"your id for the record, echoed on its result; a string of 1 to {MAX_ID_LENGTH} "
-                           f"characters or an integer of at most {MAX_ID_LENGTH} digits; not a feature",
-            "anyOf": [{"type": "string", "minLength": 1, "maxLength": MAX_ID_LENGTH}, {"type": "integer"}],
-        },
+        "RecordId": record_id_schema(),
         "Record": _record_schema(manifest),
         "ScoreRequest": {
             "type": "object",
@@ -260,8 +258,24 @@ def _components(manifest: Manifest, digest: str, max_records: int) -> dict[str, 
     return schemas
 
 
-def _record_schema(manifest: Manifest) -> dict[str, Any]:
-    properties: dict[str, Any] = {RECORD_ID: _ref("RecordId")}
+def record_id_schema() -> dict[str, Any]:
+    """JSON Schema 2020-12 of a record's ``id``, exactly as ``model_store.refusal`` accepts it."""
+    largest = 10**MAX_ID_LENGTH - 1  # the largest integer of MAX_ID_LENGTH digits
+    return {
+        "description": f"your id for the record, echoed on its result; a string of 1 to {MAX_ID_LENGTH} "
+                       f"characters or an integer of at most {MAX_ID_LENGTH} digits; not a feature",
+        "anyOf": [{"type": "string", "minLength": 1, "maxLength": MAX_ID_LENGTH},
+                  {"type": "integer", "minimum": -largest, "maximum": largest}],
+    }
+
+
+def record_properties(manifest: Manifest, record_id: dict[str, Any]) -> dict[str, Any]:
+    """The members of one record: ``id`` (schema ``record_id``) and each feature as the refusal policy
+    checks it (``type: number``, inclusive ``minimum``/``maximum``, unit in ``x-unit`` and the description).
+
+    A feature named ``id`` (only in bundles exported before the name was reserved) stays a feature.
+    """
+    properties: dict[str, Any] = {RECORD_ID: record_id}
     for feature in manifest.features:
         low, high = feature.allowed
         text = feature.description or feature.name
@@ -270,10 +284,14 @@ def _record_schema(manifest: Manifest) -> dict[str, Any]:
         if feature.unit:
             prop["x-unit"] = feature.unit
         properties[feature.name] = prop
+    return properties
+
+
+def _record_schema(manifest: Manifest) -> dict[str, Any]:
     return {
         "type": "object",
         "description": "one record; a record outside these ranges, or with any other member, is refused",
-        "properties": properties,
+        "properties": record_properties(manifest, _ref("RecordId")),
         "required": manifest.feature_names,
         "additionalProperties": False,
     }

@@ -2,16 +2,18 @@
 
 Each feature is a required property of type ``number`` with ``minimum`` and
 ``maximum`` set to its allowed range (both inclusive, as in the refusal
-policy); ``additionalProperties: false`` mirrors the refusal of unknown
-features. JSON Schema's ``number`` excludes booleans and strings, and JSON has
-no NaN or Infinity, so a record is valid under this schema exactly when the
-refusal policy accepts it.
+policy), and the optional record ``id``; ``additionalProperties: false``
+mirrors the refusal of unknown features. JSON Schema's ``number`` excludes
+booleans and strings, and JSON has no NaN or Infinity, so a record is valid
+under this schema exactly when the refusal policy accepts it. The members are
+the per-model OpenAPI document's ``Record`` (``model_store.api_document``).
 """
 
 from __future__ import annotations
 
 from typing import Any
 
+from model_store.api_document import record_id_schema, record_properties
 from model_store.manifest import Manifest
 
 __all__ = ["DIALECT", "record_schema"]
@@ -21,14 +23,6 @@ DIALECT = "https://json-schema.org/draft/2020-12/schema"
 
 def record_schema(manifest: Manifest, digest: str) -> dict[str, Any]:
     """The schema of one record for ``manifest`` (whose bundle digest is ``digest``)."""
-    properties: dict[str, Any] = {}
-    for feature in manifest.features:
-        low, high = feature.allowed
-        described = [part for part in (feature.description, f"unit: {feature.unit}" if feature.unit else None) if part]
-        prop: dict[str, Any] = {"type": "number", "minimum": low, "maximum": high}
-        if described:
-            prop["description"] = "; ".join(described)
-        properties[feature.name] = prop
     return {
         "$schema": DIALECT,
         "title": f"one record for {manifest.name} {manifest.version}",
@@ -37,7 +31,7 @@ def record_schema(manifest: Manifest, digest: str) -> dict[str, Any]:
             f"POST /score/{manifest.name}/versions/{manifest.version}"
         ),
         "type": "object",
-        "properties": properties,
+        "properties": record_properties(manifest, record_id_schema()),
         "required": manifest.feature_names,
         "additionalProperties": False,
     }
