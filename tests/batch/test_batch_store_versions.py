@@ -95,9 +95,9 @@ def test_version_names_the_version_and_parquet_metadata_records_it(store_with_hi
 
 
 @pytest.mark.parametrize("arguments, message, code", [
-    (["--at", "2026-10-01T00:00:00Z"], "no version of iris was active at", 2),
-    (["--at", "2026-11-05"], "give a date, a time and a time zone", 2),
-    (["--at", "yesterday"], "not an RFC 3339 time", 2),
+    (["--at", "2026-10-01T00:00:00Z"], "no version of iris was live at", 2),
+    (["--at", "2026-11-05"], "is not an RFC 3339 date-time with an offset", 2),
+    (["--at", "yesterday"], "is not an RFC 3339 date-time with an offset", 2),
     (["--version", "9.9.9"], "9.9.9 is not in the store", 2),
 ])
 def test_unanswerable_store_requests_are_one_line_errors(store_with_history, tmp_path, capsys, arguments, message, code):
