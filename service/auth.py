@@ -56,6 +56,8 @@ class AccessRule:
 
 _PUBLIC = AccessRule(frozenset(), "health and metrics", public=True)
 _PROBLEM_PAGES = AccessRule(frozenset(), "reading what a problem type means", public=True)
+# Pages and their files hold no model data; the data they fetch has the rules below.
+_VIEW_PAGES = AccessRule(frozenset(), "opening a page (its data needs the data routes' roles)", public=True)
 _SCORE = AccessRule(frozenset({"score"}), "scoring", open_without_tokens=True)
 _METADATA = AccessRule(frozenset({"score", "operate", "audit"}), "reading model metadata", open_without_tokens=True)
 _BUNDLE = AccessRule(frozenset({"operate", "audit"}), "downloading a bundle (it holds training rows)")
@@ -81,6 +83,21 @@ ACCESS_RULES: Mapping[tuple[str, str], AccessRule] = {
     ("GET", "/metrics"): _PUBLIC,
     ("GET", "/openapi.json"): _METADATA,
     ("GET", "/problems/{kind}"): _PROBLEM_PAGES,
+    # The pages (service.view_routes): each data route has the rule of the JSON route it draws.
+    ("GET", "/"): _VIEW_PAGES,
+    ("GET", "/view/"): _VIEW_PAGES,
+    ("GET", "/view/models/{model}"): _VIEW_PAGES,
+    ("GET", "/view/models/{model}/versions/{version}"): _VIEW_PAGES,
+    ("GET", "/view/models/{model}/try"): _VIEW_PAGES,
+    ("GET", "/view/models/{model}/preview"): _VIEW_PAGES,
+    ("GET", "/view/assets/{name:path}"): _VIEW_PAGES,
+    ("GET", "/view/data/session"): _VIEW_PAGES,  # answers who the caller is; refuses nobody
+    ("GET", "/view/data/models"): _METADATA,
+    ("GET", "/view/data/models/{model}/versions/{version}/card"): _METADATA,
+    ("GET", "/view/data/models/{model}/timeline"): _HISTORY,
+    ("GET", "/view/data/models/{model}/live"): _HISTORY,
+    ("POST", "/view/data/models/{model}/try"): _SCORE,
+    ("POST", "/view/data/models/{model}/preview"): _OPERATE,
 }
 
 

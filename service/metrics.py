@@ -129,6 +129,29 @@ class ServiceMetrics:
     def load_recovered(self, model: str, version: str) -> None:
         self.load_failing.labels(model, version).set(0)
 
+    def traffic(self) -> dict[str, dict[str, int]]:
+        """Per model, summed over versions and (in multiprocess mode) workers: scoring requests and
+        records scored and refused, ``{model: {"requests", "scored", "refused"}}``."""
+        totals: dict[str, dict[str, int]] = {}
+        for metric in self._collected():
+            for sample in metric.samples:
+                if sample.name == "rbfgate_score_requests_total":
+                    key = "requests"
+                elif sample.name == "rbfgate_records_total":
+                    key = sample.labels["status"]
+                else:
+                    continue
+                counts = totals.setdefault(sample.labels["model"], {"requests": 0, "scored": 0, "refused": 0})
+                counts[key] = counts.get(key, 0) + int(sample.value)
+        return totals
+
+    def _collected(self):
+        if self.multiprocess_dir is None:
+            return self._registry.collect()
+        registry = CollectorRegistry()
+        multiprocess.MultiProcessCollector(registry, path=self.multiprocess_dir)
+        return registry.collect()
+
     def render(self) -> tuple[bytes, str]:
         """The exposition text and its content type."""
         if self.multiprocess_dir is None:

@@ -32,7 +32,7 @@ from model_store.naming import check_name
 from service.context import Services
 from service.schema import record_schema
 
-__all__ = ["add_model_routes"]
+__all__ = ["add_model_routes", "history_document"]
 
 _CHUNK = 1 << 16
 _TAR = "application/x-tar"
@@ -134,13 +134,18 @@ def add_model_routes(app: FastAPI, services: Services) -> None:
     @app.get("/models/{model}/history")
     def model_history(model: str) -> dict[str, Any]:
         """Every activation and rollback, oldest first, with the result of checking its hash chain."""
-        _versions(services, model)
-        entries = store.history(model)
-        try:
-            verification = {"ok": True, "entries": store.verify_history(model), "detail": None}
-        except HistoryError as exc:
-            verification = {"ok": False, "entries": len(entries), "detail": str(exc)}
-        return {"model": model, "entries": entries, "verification": verification}
+        return history_document(services, model)
+
+
+def history_document(services: Services, model: str) -> dict[str, Any]:
+    """The history route's answer: every entry, oldest first, and the result of checking its chain."""
+    _versions(services, model)
+    entries = services.store.history(model)
+    try:
+        verification = {"ok": True, "entries": services.store.verify_history(model), "detail": None}
+    except HistoryError as exc:
+        verification = {"ok": False, "entries": len(entries), "detail": str(exc)}
+    return {"model": model, "entries": entries, "verification": verification}
 
 
 def _model_summary(services: Services, name: str) -> dict[str, Any]:
