@@ -45,6 +45,7 @@ def page_html(kind: str, *, model: str | None = None, version: str | None = None
 <meta charset="utf-8">
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <title>{html.escape(heading)} - rbfgate</title>
+<link rel="icon" href="data:,">
 <link rel="stylesheet" href="{_ASSETS}view.css">
 </head>
 <body {attributes}>
@@ -77,6 +78,7 @@ def offline_card_html(card: dict[str, Any]) -> str:
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <meta http-equiv="Content-Security-Policy" content="default-src 'none'; script-src 'unsafe-inline'; style-src 'unsafe-inline'; img-src data:">
 <title>{title}</title>
+<link rel="icon" href="data:,">
 <style>
 {asset_text("view.css")}
 </style>
