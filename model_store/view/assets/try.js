@@ -34,7 +34,7 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
     fields[name] = {input: input, refusal: refusal, wrapper: wrapper};
     form.append(wrapper);
   }
-  const submit = el("button", {type: "submit"}, `Score with ${version}`);
+  const submit = el("button", {type: "submit", form: "record-form"}, `Score with ${version}`);
   const reset = el("button", {type: "button", class: "secondary", onclick: () => {
     for (const [name, field] of Object.entries(fields)) field.input.value = fmt(typical[name], 4);
   }}, "Typical record");
@@ -62,7 +62,7 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
   function reasonText(problem) {
     const range = problem.allowed ? `[${fmt(problem.allowed[0])}, ${fmt(problem.allowed[1])}]` : "";
     switch (problem.reason) {
-      case "out_of_range": return `refused: ${fmt(problem.value)} is outside the allowed range ${range}`;
+      case "out_of_range": return `refused: ${problem.value} is outside the allowed range ${range}`;
       case "missing": return "refused: missing; every feature is required";
       case "not_a_number": return `refused: ${JSON.stringify(problem.value)} is not a number`;
       default: return `refused: ${problem.reason.replace(/_/g, " ")}${problem.value !== null && problem.value !== undefined ? " (" + fmt(problem.value) + ")" : ""}`;
