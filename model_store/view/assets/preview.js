@@ -12,6 +12,7 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
   }
   const described = await api(path("/models", page.model));
   let active = described.active ? described.active.version : null;
+  let rollbackTarget = null;  // the version a rollback would return to, from the timeline
   const candidates = described.versions.filter((item) => item.version !== active).reverse();
   const select = el("select", {id: "candidate", name: "candidate"},
     (candidates.length ? candidates : described.versions).map((item) => el("option", {value: item.version}, `${item.version} (published ${item.published_at})`)));
@@ -100,7 +101,6 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
       el("div", {class: "actions"}, activate, rollbackButton(reason, outcome)), outcome);
   }
 
-  let rollbackTarget = null;
   function rollbackButton(reason, outcome) {
     if (!rollbackTarget) return el("span", {class: "muted"}, "No earlier activation to roll back to.");
     return el("button", {type: "button", class: "secondary", id: "rollback", onclick: () => {
