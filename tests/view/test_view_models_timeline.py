@@ -4,8 +4,9 @@ from __future__ import annotations
 
 import httpx
 
+from tests.service.http_api.server import ServeProcess
 from tests.view.browser import drawn_marks
-from tests.view.conftest import MODEL, SWITCHES
+from tests.view.conftest import MODEL, SWITCHES, make_store
 
 
 def _typical(bundle) -> dict[str, float]:
@@ -27,6 +28,14 @@ def test_models_page_lists_the_model_with_its_active_version_last_switch_and_tra
     assert drawn_marks(page)["traffic"][0] >= 2  # scored and refused bars
     tab.screenshot(tmp_path / "models.png")
     tab.assert_clean()
+
+
+def test_serve_prints_the_address_of_the_pages(tmp_path, demo_bundles):
+    store = make_store(tmp_path / "store", demo_bundles)
+    with ServeProcess(tmp_path, "--store", str(store)) as server:
+        assert f"pages at {server.url}/view/" in server.stderr_path.read_text()
+        answer = httpx.get(f"{server.url}/view/")
+    assert answer.status_code == 200 and answer.headers["content-type"].startswith("text/html")
 
 
 def test_the_root_redirects_to_the_pages(site):

@@ -26,7 +26,7 @@ def test_preview_shows_flips_changes_and_contract_then_activates_with_a_reason_t
         expected = client.post(f"/models/{MODEL}/preview", json={"version": "2.0.0"}).json()["report"]
     assert page.inner_text("#flips").split()[0] == str(expected["label_flips"]["count"])
     assert "10 inputs" in page.inner_text("#report")  # the records this worker scored
-    assert "calibration_changed" in page.inner_text("#contract")  # sigmoid -> isotonic
+    assert "calibration changed" in page.inner_text("#contract")  # sigmoid -> isotonic
     assert drawn_marks(page)["changes"][0] > 0
     tab.screenshot(tmp_path / "preview.png")
     reason = "isotonic calibration reviewed by the risk desk"

@@ -69,9 +69,12 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
     if (!contract.changes.length) {
       report.append(el("p", {id: "contract"}, "Unchanged: same features, units, ranges, classes and probabilities."));
     } else {
-      report.append(table(["change", "subject", "active", "candidate", "breaking", "detail"], contract.changes.map((change) => [
-        change.kind, change.subject === null ? "-" : String(change.subject), JSON.stringify(change.active), JSON.stringify(change.candidate),
-        el("span", {class: "badge " + (change.breaking ? "bad" : "ok")}, change.breaking ? "breaking" : "compatible"), change.detail]), "contract"));
+      const shown = (value) => Array.isArray(value) ? `[${value.map((item) => fmt(item)).join(", ")}]` : (value === null ? "-" : String(value));
+      report.append(table(["change", "active", "candidate", "breaking"], contract.changes.map((change) => [
+        el("span", {}, change.kind.replace(/_/g, " "), change.subject === null ? "" : `: ${change.subject}`,
+          el("div", {class: "legend-note"}, change.detail)),
+        shown(change.active), shown(change.candidate),
+        el("span", {class: "badge " + (change.breaking ? "bad" : "ok")}, change.breaking ? "breaking" : "compatible")]), "contract"));
     }
     offerSwitch(r.candidate.version, contract.breaking.length > 0);
   }
