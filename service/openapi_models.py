@@ -12,14 +12,14 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from model_store.manifest import FeatureSpec, FileEntry, KernelSpec
+from model_store.manifest import DomainSpec, FeatureSpec, FileEntry, KernelSpec, RefusalReport
 from model_store.naming import MAX_NAME_LENGTH
 from model_store.refusal import MAX_ID_LENGTH, REASONS
 
 __all__ = [
     "ActivateRequest", "Alive", "DOCUMENTED_MODELS", "History", "ModelDetail", "ModelList", "NAME_PATTERN",
-    "Preview", "PreviewRequest", "Problem", "Readiness", "RecordsRefusedProblem", "RollbackRequest", "ScoreRequest",
-    "ScoreResponse", "Switched", "VersionDetail",
+    "OutsideDomainChoice", "OutsideDomainRequest", "Preview", "PreviewRequest", "Problem", "Readiness",
+    "RecordsRefusedProblem", "RollbackRequest", "ScoreRequest", "ScoreResponse", "Switched", "VersionDetail",
 ]
 
 # model_store.naming.check_name; its "no '..'" rule is not expressed (a name with '..' is a 404).
@@ -48,8 +48,9 @@ class Problem(BaseModel):
 
 
 class RecordProblem(_Doc):
-    feature: str
-    value: Any = Field(description="the value sent (a nested value or over-long text is abbreviated)")
+    feature: str | None = Field(description="the feature, or null for a record-level problem (outside_domain)")
+    value: Any = Field(description="the value sent (a nested value or over-long text is abbreviated); the domain "
+                       "score for outside_domain")
     reason: Literal[REASONS]  # type: ignore[valid-type]
     allowed: tuple[float, float] | None = Field(description="the allowed range [low, high], inclusive")
 
@@ -62,6 +63,12 @@ class NearestSupport(_Doc):
     percentile: float = Field(ge=0, le=100, description="of the distance among the reference rows")
 
 
+class DomainAnswer(_Doc):
+    verdict: Literal["typical", "unusual", "outside"] = Field(
+        description="from the bundle's domain thresholds (GET /models/{model}/versions/{version}, domain.thresholds)")
+    score: float = Field(description="the one-class SVM decision over the reference rows; larger is more typical")
+
+
 class ScoredResult(_Doc):
     id: str | int | None = _ID
     status: Literal["scored"]
@@ -69,12 +76,14 @@ class ScoredResult(_Doc):
     decision: float | dict[str, float] = Field(description="a number for a binary model, class -> number otherwise")
     probability: dict[str, float] | None = Field(description="class -> probability; null when uncalibrated")
     nearest_support: NearestSupport
+    domain: DomainAnswer | None = Field(description="null for a bundle without a domain model (format 1)")
 
 
 class RefusedResult(_Doc):
     id: str | int | None = _ID
     status: Literal["refused"]
     problems: list[RecordProblem] = Field(min_length=1)
+    domain: DomainAnswer | None = Field(None, description="present when the record was refused as outside_domain")
 
 
 class FlatRecordProblem(RecordProblem):
@@ -148,6 +157,8 @@ class PublishedVersion(_Doc):
 
 class ModelDetail(ModelSummary):
     versions: list[PublishedVersion]
+    outside_domain: Literal["refuse", "flag"] = Field(
+        description="what the model does with records whose domain verdict is outside (chosen by operators)")
 
 
 class Classifier(_Doc):
@@ -188,6 +199,8 @@ class VersionDetail(_Doc):
     calibration: dict[str, str]
     training: dict[str, Any] | None
     reference_distance: dict[str, Any] | None
+    domain: DomainSpec | None = Field(description="the domain model and its verdict thresholds; null for format 1")
+    refusal_report: RefusalReport | None
     golden: GoldenSummary
     files: dict[str, FileEntry]
     links: VersionLinks
@@ -228,6 +241,17 @@ class ActivateRequest(_Doc):
 
 class RollbackRequest(_Doc):
     reason: str = Field(min_length=1, max_length=1000, description=_REASON)
+
+
+class OutsideDomainRequest(_Doc):
+    action: Literal["refuse", "flag"] = Field(description="refuse records outside the domain, or answer them flagged")
+    reason: str = Field(min_length=1, max_length=1000, description=_REASON)
+
+
+class OutsideDomainChoice(_Doc):
+    model: str
+    outside_domain: Literal["refuse", "flag"]
+    entry: "HistoryEntry"
 
 
 class PreviewRequest(_Doc):
@@ -273,6 +297,7 @@ class Readiness(_Doc):
 
 
 DOCUMENTED_MODELS = [
-    Problem, RecordsRefusedProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, ActivateRequest,
-    RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness,
+    Problem, RecordsRefusedProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History,
+    ActivateRequest, RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness, OutsideDomainRequest,
+    OutsideDomainChoice,
 ]
