@@ -43,6 +43,7 @@ from model_store.view.timeline import live_at, parse_moment, timeline_data
 from service.auth import ACCESS_RULES, AccessRule
 from service.body import parse_json, read_body
 from service.context import Services, version_headers
+from service.metrics import TRAFFIC_KEYS
 from service.model_routes import history_document
 from service.operation_routes import preview_body, preview_document
 from service.problems import ServiceProblem
@@ -131,14 +132,15 @@ def add_view_routes(app: FastAPI, services: Services) -> None:
         models = []
         for name in store.models():
             record = store.active(name)
-            counts = traffic.get(name, {"requests": 0, "scored": 0, "refused": 0})
+            counts = traffic.get(name, dict.fromkeys(TRAFFIC_KEYS, 0))
             records = counts["scored"] + counts["refused"]
             models.append({
                 "model": name,
                 "active": None if record is None else {"version": record.version, "activated_at": record.activated_at},
                 "last_switch": _last_switch(store.history(name)) if history_allowed else None,
                 "traffic": {"requests": counts["requests"], "records": {"scored": counts["scored"], "refused": counts["refused"]},
-                            "refused_share": counts["refused"] / records if records else None},
+                            "refused_share": counts["refused"] / records if records else None,
+                            "domain_verdicts": {verdict: counts[verdict] for verdict in ("typical", "unusual", "outside")}},
             })
         shown = {item["model"]: item["traffic"]["records"] for item in models if item["traffic"]["requests"]}
         return {"models": models, "charts": {"traffic": charts.traffic_chart(shown) if shown else None}}

@@ -67,7 +67,8 @@ def bundle_card(bundle: Bundle, identity: Mapping[str, Any]) -> dict[str, Any]:
             "p99": float(np.interp(0.99, np.linspace(0, 1, len(quantiles)), quantiles)),
             "max": float(quantiles[-1]),
         },
-        "refusal_report": None,
+        "domain": None if manifest.domain is None else manifest.domain.model_dump(),
+        "refusal_report": None if manifest.refusal_report is None else manifest.refusal_report.model_dump(),
         "notes": notes,
     }
     card["charts"] = _charts(card, metrics, quantiles, manifest.is_calibrated, notes)
@@ -75,7 +76,7 @@ def bundle_card(bundle: Bundle, identity: Mapping[str, Any]) -> dict[str, Any]:
 
 
 def _charts(card, metrics, quantiles, calibrated: bool, notes: list[str]) -> dict[str, Any]:
-    result: dict[str, Any] = {"confusion": None, "reliability": None, "features": {}, "distance": None}
+    result: dict[str, Any] = {"confusion": None, "reliability": None, "features": {}, "distance": None, "domain": None}
     confusion = metrics.get("confusion_matrix") if metrics else None
     if confusion is not None:
         result["confusion"] = charts.confusion_matrix_chart(confusion["labels"], confusion["counts"],
@@ -91,6 +92,11 @@ def _charts(card, metrics, quantiles, calibrated: bool, notes: list[str]) -> dic
             feature["name"], feature["unit"], tuple(feature["allowed"]), feature["quantiles"], feature["training"],
             feature["kernel_width"], feature["inferred_low"],
         )
+    domain = card["domain"]
+    if domain is not None:
+        result["domain"] = charts.domain_score_chart(domain["thresholds"]["unusual_below"], domain["thresholds"]["outside_below"])
+    else:
+        notes.append("the bundle has no domain model (format rbfgate-bundle/1): answers carry no domain verdict")
     percentiles = [{"distance": card["distance"]["p95"], "label": "95th percentile"},
                    {"distance": card["distance"]["p99"], "label": "99th percentile"}]
     result["distance"] = charts.distance_histogram_chart(quantiles, percentiles)
@@ -141,7 +147,7 @@ def _features(bundle: Bundle, training: Mapping[str, Any], notes: list[str]) -> 
             "quantiles": None if quantiles is None else {"levels": quantiles[0], "values": quantiles[1][feature.name]},
             # Along one feature, sigma in the scaled space is sigma x |scale| raw units.
             "kernel_width": sigma * abs(manifest.scaler.scale[index]),
-            "inferred_low": 0.0 if getattr(feature, "non_negative", False) else None,
+            "inferred_low": 0.0 if feature.non_negative else None,
         })
     return features
 

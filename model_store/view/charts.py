@@ -22,6 +22,7 @@ __all__ = [
     "change_distribution_chart",
     "confusion_matrix_chart",
     "distance_histogram_chart",
+    "domain_score_chart",
     "feature_strip_chart",
     "reliability_chart",
     "timeline_chart",
@@ -210,6 +211,39 @@ def distance_histogram_chart(
                                             {"field": "percentile", "type": "quantitative", "format": ".1f",
                                              "title": "percentile among reference rows"}]}})
     return _spec({"layer": layers}, height=180)
+
+
+def domain_score_chart(unusual_below: float, outside_below: float) -> dict[str, Any]:
+    """The domain model's score axis with the service's two thresholds: below ``outside_below`` a
+    record is outside (refused unless the operators chose to flag), below ``unusual_below``
+    unusual, above it typical. The bundle keeps no distribution of reference scores, so the plot
+    shows the verdict regions, and the tried record (data set ``record``: ``[{"score", "verdict"}]``)."""
+    span = max(unusual_below - outside_below, abs(unusual_below) * 0.5, 1e-6)
+    low, high = outside_below - 2 * span, unusual_below + 3 * span
+    regions = [
+        {"from": low, "to": outside_below, "verdict": "outside"},
+        {"from": outside_below, "to": unusual_below, "verdict": "unusual"},
+        {"from": unusual_below, "to": high, "verdict": "typical"},
+    ]
+    x = {"type": "quantitative", "title": "domain score (one-class SVM decision; higher is more typical)",
+         "scale": {"zero": False, "nice": False}}
+    color = {"field": "verdict", "type": "nominal", "title": "verdict",
+             "scale": {"domain": ["outside", "unusual", "typical"], "range": ["#fecaca", "#fde68a", "#bbf7d0"]}}
+    thresholds = [{"score": outside_below, "label": "outside below"}, {"score": unusual_below, "label": "unusual below"}]
+    return _spec({"layer": [
+        {"data": {"values": regions}, "mark": {"type": "rect", "y": 4, "y2": 46},
+         "encoding": {"x": {"field": "from", **x}, "x2": {"field": "to"}, "color": color,
+                      "tooltip": [{"field": "verdict"}, {"field": "from", "type": "quantitative", "format": ".4g"},
+                                  {"field": "to", "type": "quantitative", "format": ".4g"}]}},
+        {"data": {"values": thresholds}, "mark": {"type": "rule", "color": "#7c3aed", "strokeWidth": 2, "y": 0, "y2": 50},
+         "encoding": {"x": {"field": "score", **x}, "tooltip": [{"field": "label", "title": "threshold"},
+                                                                  {"field": "score", "type": "quantitative", "format": ".4g"}]}},
+        {"data": {"name": RECORD_DATA, "values": []},
+         "mark": {"type": "point", "shape": "diamond", "filled": True, "size": 160, "y": 25, "color": _ACCENT,
+                  "stroke": "white", "strokeWidth": 1},
+         "encoding": {"x": {"field": "score", **x}, "tooltip": [{"field": "score", "type": "quantitative", "title": "this record"},
+                                                                  {"field": "verdict"}]}},
+    ]}, height=50)
 
 
 def timeline_chart(intervals: Sequence[Mapping[str, Any]], switches: Sequence[Mapping[str, Any]]) -> dict[str, Any]:

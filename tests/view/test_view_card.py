@@ -13,7 +13,7 @@ from tests.view.conftest import MODEL
 def _assert_every_plot_drawn(page, bundle) -> None:
     marks = drawn_marks(page)
     assert len(marks["feature"]) == len(bundle.feature_names), marks
-    plots = ["confusion", "reliability", "distance"]  # both versions are calibrated
+    plots = ["confusion", "reliability", "distance", "domain"]  # both versions are calibrated and have a domain model
     assert all(marks[name] and min(marks[name]) > 0 for name in plots), marks
     assert min(marks["feature"]) > 0, marks
 
@@ -29,6 +29,10 @@ def test_card_page_shows_identity_classes_metrics_and_every_plot_to_an_audit_tok
     for label, count in zip(bundle.classes, bundle.manifest.classifier.support_per_class):
         assert page.inner_text(f"xpath=//td[text()='{label}']/following-sibling::td[1]") == str(count)
     assert "balanced accuracy" in text and "On the holdout rows." in text
+    thresholds = bundle.manifest.domain.thresholds
+    assert f"outside below {thresholds.outside_below:.4g}" in text.replace("e-0", "e-")
+    report = page.inner_text("#refusal-report")
+    assert f"{100 * bundle.manifest.refusal_report.reference.refused_total:.2f} %" in report
     _assert_every_plot_drawn(page, bundle)
     with page.expect_download() as download:
         page.click("#download")

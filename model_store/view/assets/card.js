@@ -110,17 +110,50 @@
       el("p", {class: "legend-note"},
         `How far reference rows lie from the nearest support vector (scaled space; ${fmt(distance.rows)} rows): `,
         `median ${fmt(distance.median)}, 95 % within ${fmt(distance.p95)}, 99 % within ${fmt(distance.p99)}, `,
-        `largest ${fmt(distance.max)}. Every answer reports a record's distance and its percentile among these rows.`));
+        `largest ${fmt(distance.max)}. Every answer reports a record's distance and its percentile among these rows; `,
+        `the refusal rules are the allowed ranges and the domain model below, not this distance.`));
     container.append(section);
     const box = el("div", {});
     section.append(box);
     return draw(box, card.charts.distance, "distance");
   }
 
+  function percent(share) { return `${(100 * share).toFixed(2)} %`; }
+
   function refusalReport(card) {
-    if (!card.refusal_report) return null;
     const report = card.refusal_report;
-    return panel("Refusal report", el("pre", {class: "mono"}, JSON.stringify(report, null, 2)));
+    if (!report) return null;
+    const columns = [["rows", "rows", fmt], ["refused_range", "refused by a range", percent],
+      ["refused_domain", "refused outside the domain", percent], ["flagged_unusual", "answered, flagged unusual", percent],
+      ["refused_total", "refused in all", percent]];
+    const rows = [["reference", report.reference], ["holdout", report.holdout]].filter(([, shares]) => shares);
+    return panel("Refusal report",
+      el("p", {class: "legend-note"}, `What the refusal policy does to the rows the bundle was exported with; `
+        + `the domain thresholds were set so that about ${percent(report.refuse_rate)} of real rows are refused.`),
+      el("div", {class: "table-wrap"}, el("table", {id: "refusal-report"},
+        el("thead", {}, el("tr", {}, el("th", {}, "rows from"), columns.map(([, label]) => el("th", {}, label)))),
+        el("tbody", {}, rows.map(([name, shares]) => el("tr", {}, el("td", {}, name),
+          columns.map(([key, , show]) => el("td", {}, show(shares[key])))))))));
+  }
+
+  // The domain model and the service's thresholds; resolves to the chart's Vega view (or null).
+  async function renderDomain(container, card) {
+    const domain = card.domain;
+    if (!domain) return null;
+    const calibration = domain.calibration;
+    const section = panel("Domain",
+      el("p", {class: "legend-note"}, "A one-class SVM in the classifier's scaled space says whether a record looks like the "
+        + "rows the model was fitted on. Every answer carries its verdict and score; records outside are refused "
+        + "(reason outside_domain) unless the operators chose to flag them."),
+      facts([
+        ["model", `${domain.method}, nu ${fmt(domain.nu)}, gamma ${fmt(domain.gamma)}, ${fmt(domain.support_vectors)} support vectors, fitted on ${fmt(domain.fit_rows)} rows`],
+        ["thresholds", `outside below ${fmt(domain.thresholds.outside_below)}, unusual below ${fmt(domain.thresholds.unusual_below)}`],
+        ["set from", `${fmt(calibration.rows)} ${calibration.source} rows: about ${percent(calibration.refuse_rate)} outside, ${percent(calibration.unusual_rate)} unusual`],
+      ]));
+    container.append(section);
+    const box = el("div", {});
+    section.append(box);
+    return draw(box, card.charts.domain, "domain");
   }
 
   async function render(container, card, options) {
@@ -130,13 +163,14 @@
     await metrics(container, card);
     const features = await renderFeatures(container, card);
     const distance = await renderDistance(container, card);
+    const domain = await renderDomain(container, card);
     const report = refusalReport(card);
     if (report) container.append(report);
     if (card.notes.length) {
       container.append(panel("Notes", el("ul", {}, card.notes.map((note) => el("li", {}, note)))));
     }
-    return {features: features, distance: distance};
+    return {features: features, distance: distance, domain: domain};
   }
 
-  globalThis.rbfCard = {render: render, renderFeatures: renderFeatures, renderDistance: renderDistance};
+  globalThis.rbfCard = {render: render, renderDistance: renderDistance, renderDomain: renderDomain, renderFeatures: renderFeatures};
 })();

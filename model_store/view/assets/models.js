@@ -21,7 +21,8 @@ globalThis.rbfClient.start(async ({main, session}) => {
       el("td", {}, active ? active.activated_at : "-",
         switched ? el("div", {class: "muted"}, `${switched.action} by ${switched.actor}${switched.via ? " via " + switched.via : ""}: ${switched.reason || ""}`) : null),
       el("td", {}, `${fmt(traffic.requests)} requests, ${fmt(traffic.records.scored)} scored, ${fmt(traffic.records.refused)} refused`,
-        traffic.refused_share !== null ? el("div", {class: "muted"}, `${(100 * traffic.refused_share).toFixed(1)} % of records refused`) : null),
+        traffic.refused_share !== null ? el("div", {class: "muted"}, `${(100 * traffic.refused_share).toFixed(1)} % of records refused`) : null,
+        traffic.requests ? el("div", {class: "muted"}, "domain verdicts: " + Object.entries(traffic.domain_verdicts).map(([verdict, count]) => `${count} ${verdict}`).join(", ")) : null),
       el("td", {}, el("a", {href: base}, "Timeline"), " · ",
         active ? el("a", {href: path(base + "/versions", active.version)}, "Card") : null, active ? " · " : null,
         el("a", {href: base + "/try"}, "Try"), " · ", el("a", {href: base + "/preview"}, "Preview")));

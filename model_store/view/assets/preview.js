@@ -58,6 +58,11 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
     report.append(el("h3", {}, "Labels: active (rows) by candidate (columns)"),
       table(["active \\ candidate", ...flipTable.candidate_classes.map(String)],
         flipTable.active_classes.map((label, index) => [String(label), ...flipTable.counts[index].map(String)]), "flip-table"));
+    const verdicts = r.domain_verdict_changes;
+    if (verdicts && verdicts.verdicts) {
+      report.append(el("h3", {}, `Domain verdicts: active (rows) by candidate (columns); ${verdicts.changed} would change`),
+        table(["active \\ candidate", ...verdicts.verdicts], verdicts.verdicts.map((verdict, index) => [verdict, ...verdicts.counts[index].map(String)]), "verdict-table"));
+    }
     if (data.charts.changes) {
       report.append(el("h3", {}, "Distribution of changes"));
       const box = el("div", {});

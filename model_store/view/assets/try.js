@@ -46,7 +46,8 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
     submit.disabled = true;
     answer.append(el("p", {class: "problem"}, `Scoring needs role score; ${session.caller ? `token ${session.caller.name} has role ${session.caller.role}` : "this caller may not score"}.`));
   }
-  const views = {features: await globalThis.rbfCard.renderFeatures(main, card), distance: await globalThis.rbfCard.renderDistance(main, card)};
+  const views = {features: await globalThis.rbfCard.renderFeatures(main, card), distance: await globalThis.rbfCard.renderDistance(main, card),
+    domain: await globalThis.rbfCard.renderDomain(main, card)};
 
   const NUMBER = /^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$/;
   function record() {
@@ -65,11 +66,12 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
       case "out_of_range": return `refused: ${problem.value} is outside the allowed range ${range}`;
       case "missing": return "refused: missing; every feature is required";
       case "not_a_number": return `refused: ${JSON.stringify(problem.value)} is not a number`;
+      case "outside_domain": return `refused: outside the domain the model was fitted on (domain score ${fmt(problem.value)})`;
       default: return `refused: ${problem.reason.replace(/_/g, " ")}${problem.value !== null && problem.value !== undefined ? " (" + fmt(problem.value) + ")" : ""}`;
     }
   }
 
-  async function place(values, refusedFeatures, nearest) {
+  async function place(values, refusedFeatures, nearest, domain) {
     const jobs = [];
     for (const [name, view] of Object.entries(views.features)) {
       const value = values[name];
@@ -77,6 +79,7 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
       jobs.push(view.data("record", rows).runAsync());
     }
     jobs.push(views.distance.data("record", nearest ? [{distance: nearest.distance, percentile: nearest.percentile}] : []).runAsync());
+    if (views.domain) jobs.push(views.domain.data("record", domain ? [{score: domain.score, verdict: domain.verdict}] : []).runAsync());
     await Promise.all(jobs);
   }
 
@@ -116,7 +119,7 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
     if (result.status === "scored") {
       answer.dataset.status = "scored";
       answer.append(...scoredAnswer(result));
-      await place(values, refused, result.nearest_support);
+      await place(values, refused, result.nearest_support, result.domain);
       return;
     }
     answer.dataset.status = "refused";
@@ -131,6 +134,6 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
         answer.append(el("p", {class: "problem"}, problem.feature ? `${problem.feature}: ${reasonText(problem)}` : reasonText(problem)));
       }
     }
-    await place(values, refused, null);
+    await place(values, refused, null, result.domain);
   });
 });
