@@ -44,9 +44,8 @@ class Site:
     bundles: dict[str, Bundle]
 
 
-@pytest.fixture(scope="session")
-def demo_bundles(tmp_path_factory) -> dict[str, Bundle]:
-    folder = tmp_path_factory.mktemp("demo-data")
+def train_demo_bundles(folder: Path) -> dict[str, Bundle]:
+    """Both versions, trained on the same invented pallet data in ``folder``."""
     files = write_demo_files(folder, rows=600, seed=11)
     bundles = {}
     for version, C, calibration, margin in (("1.0.0", 3.0, "sigmoid", 0.05), ("2.0.0", 30.0, "isotonic", 0.10)):
@@ -57,6 +56,11 @@ def demo_bundles(tmp_path_factory) -> dict[str, Bundle]:
                           "humidity_pct": {"unit": "%RH", "bounds": [0, 100]}},
         ))
     return bundles
+
+
+@pytest.fixture(scope="session")
+def demo_bundles(tmp_path_factory) -> dict[str, Bundle]:
+    return train_demo_bundles(tmp_path_factory.mktemp("demo-data"))
 
 
 def make_store(root: Path, bundles: dict[str, Bundle]) -> Path:

@@ -16,6 +16,10 @@ def _assert_every_plot_drawn(page, bundle) -> None:
     plots = ["confusion", "reliability", "distance", "domain"]  # both versions are calibrated and have a domain model
     assert all(marks[name] and min(marks[name]) > 0 for name in plots), marks
     assert min(marks["feature"]) > 0, marks
+    overflowing = page.evaluate("""() => [...document.querySelectorAll('.chart')].filter((chart) =>
+        chart.querySelector('svg').getBoundingClientRect().width > chart.getBoundingClientRect().width + 1
+    ).map((chart) => chart.dataset.chart)""")
+    assert overflowing == []  # each plot fits the width of its cell
 
 
 def test_card_page_shows_identity_classes_metrics_and_every_plot_to_an_audit_token(site, browser, tmp_path):

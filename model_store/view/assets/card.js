@@ -64,18 +64,10 @@
     section.append(facts(names.filter(([key]) => key in card.metrics).map(([key, label]) => [label, card.metrics[key]])));
     const grid = el("div", {class: "grid"});
     section.append(grid);
-    const jobs = [];
-    if (card.charts.confusion) {
-      const box = el("div", {});
-      grid.append(box);
-      jobs.push(draw(box, card.charts.confusion, "confusion"));
-    }
-    if (card.charts.reliability) {
-      const box = el("div", {});
-      grid.append(box);
-      jobs.push(draw(box, card.charts.reliability, "reliability"));
-    }
-    await Promise.all(jobs);
+    // Every cell first, then the plots: a plot takes its width from its cell when it is drawn.
+    const plots = [["confusion", card.charts.confusion], ["reliability", card.charts.reliability]].filter(([, spec]) => spec)
+      .map(([name, spec]) => { const box = el("div", {}); grid.append(box); return [box, spec, name]; });
+    await Promise.all(plots.map(([box, spec, name]) => draw(box, spec, name)));
   }
 
   // One strip per feature; resolves to {name: Vega view} so the try page can place a record.
