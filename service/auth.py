@@ -12,7 +12,9 @@ Roles (``service.tokens.ROLES``):
              domain; reads metadata, schemas, bundles and history
     audit    reads metadata, schemas, bundles and history
 
-Without a tokens file, scoring and metadata are open; history, bundle
+The pages under ``/view/`` and their files are public (they hold no model
+data); the ``/view/data/...`` routes they fetch have the rule of the JSON
+route each draws. Without a tokens file, scoring and metadata are open; history, bundle
 downloads and version changes are refused with 403 and an explanation (the
 bundle holds support vectors, which are training rows).
 

@@ -19,7 +19,8 @@ Pages and assets are public: a page is a fixed shell with no model data, which f
 with the caller's bearer token. Each data route has the role rule of the JSON route it draws
 (``service.auth``), and is built by the same functions, so a page shows nothing its caller could
 not read as JSON. Page assembly and plot specifications live in ``model_store.view``; this module
-only routes. ``try`` differs from ``POST /score/{model}`` in two ways only: an answer where every
+only routes. The routes stay out of ``/openapi.json``: they serve the pages, not API clients,
+and may change with them. ``try`` differs from ``POST /score/{model}`` in two ways only: an answer where every
 record is refused is a 200 document (the page shows each refusal by its field), and trying is not
 traffic, so it stays out of the metrics and the preview's sample of recent records.
 """
@@ -75,32 +76,32 @@ def add_view_routes(app: FastAPI, services: Services) -> None:
     store = services.store
     limit = services.settings.max_body_bytes
 
-    @app.get("/")
+    @app.get("/", include_in_schema=False)
     def root() -> Response:
         """The pages start at /view/."""
         return RedirectResponse("/view/", status_code=307)
 
-    @app.get("/view/")
+    @app.get("/view/", include_in_schema=False)
     def models_page() -> Response:
         return _page("models")
 
-    @app.get("/view/models/{model}")
+    @app.get("/view/models/{model}", include_in_schema=False)
     def timeline_page(model: str) -> Response:
         return _page("timeline", model=check_name(model, what="model name"))
 
-    @app.get("/view/models/{model}/versions/{version}")
+    @app.get("/view/models/{model}/versions/{version}", include_in_schema=False)
     def card_page(model: str, version: str) -> Response:
         return _page("card", model=check_name(model, what="model name"), version=check_name(version, what="model version"))
 
-    @app.get("/view/models/{model}/try")
+    @app.get("/view/models/{model}/try", include_in_schema=False)
     def try_page(model: str) -> Response:
         return _page("try", model=check_name(model, what="model name"))
 
-    @app.get("/view/models/{model}/preview")
+    @app.get("/view/models/{model}/preview", include_in_schema=False)
     def preview_page(model: str) -> Response:
         return _page("preview", model=check_name(model, what="model name"))
 
-    @app.get("/view/assets/{name:path}")
+    @app.get("/view/assets/{name:path}", include_in_schema=False)
     def asset(name: str, request: Request) -> Response:
         data = asset_bytes(name)  # NotFoundError for any name not listed in ASSET_TYPES
         tag = '"' + hashlib.sha256(data).hexdigest()[:32] + '"'
@@ -109,7 +110,7 @@ def add_view_routes(app: FastAPI, services: Services) -> None:
             return Response(status_code=304, headers=headers)
         return Response(data, media_type=ASSET_TYPES[name], headers=headers)
 
-    @app.get("/view/data/session")
+    @app.get("/view/data/session", include_in_schema=False)
     def session(request: Request) -> dict[str, Any]:
         """Whether tokens are on, who the presented token belongs to, and what its role may do."""
         authenticator = services.authenticator
@@ -124,7 +125,7 @@ def add_view_routes(app: FastAPI, services: Services) -> None:
         may = {key: _admits(ACCESS_RULES[route], authenticator.enabled, role) for key, route in _PERMISSIONS.items()}
         return {"tokens": authenticator.enabled, "caller": caller, "detail": detail, "may": may}
 
-    @app.get("/view/data/models")
+    @app.get("/view/data/models", include_in_schema=False)
     def models_data(request: Request) -> dict[str, Any]:
         """GET /models, with each model's last switch (for callers who may read history) and its traffic."""
         history_allowed = _caller_admitted(services, request, ("GET", "/models/{model}/history"))
@@ -145,27 +146,27 @@ def add_view_routes(app: FastAPI, services: Services) -> None:
         shown = {item["model"]: item["traffic"]["records"] for item in models if item["traffic"]["requests"]}
         return {"models": models, "charts": {"traffic": charts.traffic_chart(shown) if shown else None}}
 
-    @app.get("/view/data/models/{model}/versions/{version}/card")
+    @app.get("/view/data/models/{model}/versions/{version}/card", include_in_schema=False)
     async def card_data(model: str, version: str) -> dict[str, Any]:
         """The model card of one published version (the same checks as loading it to serve)."""
         check_name(model, what="model name")
         check_name(version, what="model version")
         return await run_in_threadpool(store_card, store, model, version)
 
-    @app.get("/view/data/models/{model}/timeline")
+    @app.get("/view/data/models/{model}/timeline", include_in_schema=False)
     def timeline(model: str) -> dict[str, Any]:
         """GET /models/{model}/history, with which version was live when and its plot."""
         document = history_document(services, model)
         return {**document, "timeline": timeline_data(document["entries"], now=store.now())}
 
-    @app.get("/view/data/models/{model}/live")
+    @app.get("/view/data/models/{model}/live", include_in_schema=False)
     def live(model: str, at: str = "") -> dict[str, Any]:
         """The version live at ``at`` (RFC 3339), from the model's history."""
         moment = parse_moment(at)
         document = history_document(services, model)
         return {"model": model, **live_at(document["entries"], moment)}
 
-    @app.post("/view/data/models/{model}/try")
+    @app.post("/view/data/models/{model}/try", include_in_schema=False)
     async def try_records(model: str, request: Request) -> Response:
         """Score records with the active version, as POST /score/{model} does, answering 200 with the results."""
         body = await read_body(request, limit)
@@ -181,7 +182,7 @@ def add_view_routes(app: FastAPI, services: Services) -> None:
 
         return await run_in_threadpool(run)
 
-    @app.post("/view/data/models/{model}/preview")
+    @app.post("/view/data/models/{model}/preview", include_in_schema=False)
     async def preview_data(model: str, request: Request) -> dict[str, Any]:
         """POST /models/{model}/preview's answer, and the plot of its change distribution."""
         version = preview_body(await read_body(request, limit))
