@@ -39,7 +39,7 @@ from service.score_routes import add_score_routes
 from service.settings import Settings
 from service.view_routes import add_view_routes
 
-__all__ = ["create_app", "create_app_from_environ"]
+__all__ = ["create_app", "create_app_from_environ", "poll_deadline"]
 
 _MULTIPROCESS_ENVIRON_KEY = "PROMETHEUS_MULTIPROC_DIR"
 
@@ -58,7 +58,7 @@ def create_app(
     metrics = ServiceMetrics(environ.get(_MULTIPROCESS_ENVIRON_KEY) or None)
     store = store if store is not None else Store(settings.store_root)
     authenticator = Authenticator(settings.tokens_file)
-    registry = ModelRegistry(store, metrics, on_event=write_log)
+    registry = ModelRegistry(store, metrics, on_event=write_log, poll_deadline=poll_deadline(settings.poll_seconds))
     services = Services(
         settings=settings,
         store=store,
@@ -68,16 +68,20 @@ def create_app(
         recent=RecentRecords(settings.sample_size),
         write_log=write_log,
     )
-    poller = Poller(settings.poll_seconds, [registry.refresh_all, authenticator.refresh])
+    # Two threads: a store read that hangs (a stuck network filesystem) must never keep a revoked token working.
+    pollers = [Poller(settings.poll_seconds, [registry.refresh_all], name="rbfgate-store-poll"),
+               Poller(settings.poll_seconds, [authenticator.refresh], name="rbfgate-token-poll")]
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
         await run_in_threadpool(registry.refresh_all)
-        poller.start()
+        for poller in pollers:
+            poller.start()
         try:
             yield
         finally:
-            poller.stop()
+            for poller in pollers:
+                poller.stop()
             metrics.worker_exited()
 
     app = FastAPI(
@@ -100,6 +104,16 @@ def create_app(
     app.add_middleware(RequestIdMiddleware)  # outermost: every answer the app gives carries X-Request-ID
     app.state.services = services
     return app
+
+
+def poll_deadline(poll_seconds: float) -> float:
+    """How long one store poll may run before the worker reports not ready: 10 intervals, at least 2 s.
+
+    A poll reads one small pointer per model and, after a switch, loads one
+    bundle (about 1 s for 100,000 support vectors x 50 features, see the
+    README's performance section), so only a hung read takes this long.
+    """
+    return max(2.0, 10.0 * poll_seconds)
 
 
 def create_app_from_environ() -> FastAPI:

@@ -100,7 +100,6 @@ ACCESS_RULES: Mapping[tuple[str, str], AccessRule] = {
     ("GET", "/view/data/models"): _METADATA,
     ("GET", "/view/data/models/{model}/versions/{version}/card"): _METADATA,
     ("GET", "/view/data/models/{model}/timeline"): _HISTORY,
-    ("GET", "/view/data/models/{model}/live"): _HISTORY,
     ("POST", "/view/data/models/{model}/try"): _SCORE,
     ("POST", "/view/data/models/{model}/preview"): _OPERATE,
 }

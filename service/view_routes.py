@@ -11,7 +11,6 @@
     GET  /view/data/models                                   models, active versions, this worker's traffic
     GET  /view/data/models/{model}/versions/{version}/card   the model card document
     GET  /view/data/models/{model}/timeline                  history, its verification, the timeline plot
-    GET  /view/data/models/{model}/live?at=TIME              the version live at a moment
     POST /view/data/models/{model}/try                       score records, answered 200 even when all are refused
     POST /view/data/models/{model}/preview                   the preview route's answer plus its plot
 
@@ -40,7 +39,7 @@ from model_store.view import charts
 from model_store.view.assets import ASSET_TYPES, asset_bytes
 from model_store.view.pages import page_html
 from model_store.view.sources import store_card
-from model_store.view.timeline import live_at, parse_moment, timeline_data
+from model_store.view.timeline import timeline_data
 from service.auth import ACCESS_RULES, AccessRule
 from service.body import parse_json, read_body
 from service.context import Services, version_headers
@@ -158,13 +157,6 @@ def add_view_routes(app: FastAPI, services: Services) -> None:
         """GET /models/{model}/history, with which version was live when and its plot."""
         document = history_document(services, model)
         return {**document, "timeline": timeline_data(document["entries"], now=store.now())}
-
-    @app.get("/view/data/models/{model}/live", include_in_schema=False)
-    def live(model: str, at: str = "") -> dict[str, Any]:
-        """The version live at ``at`` (RFC 3339), from the model's history."""
-        moment = parse_moment(at)
-        document = history_document(services, model)
-        return {"model": model, **live_at(document["entries"], moment)}
 
     @app.post("/view/data/models/{model}/try", include_in_schema=False)
     async def try_records(model: str, request: Request) -> Response:

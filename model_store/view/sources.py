@@ -28,8 +28,7 @@ def store_card(store, model: str, version: str) -> dict[str, Any]:
     """The card of a published version; ``store`` is a ``model_store.store.Store``."""
     bundle = store.load_verified(model, version)  # checksums, digest, golden self-test, signature policy
     info = next(item for item in store.versions(model) if item.version == version)
-    signature_path = store.bundle_dir(model, version) / SIGNATURE_FILE
-    signature = signature_path.read_bytes() if signature_path.is_file() else None
+    signature = store.signature(model, version)
     trusted = store.trusted_keys()
     identity = {
         "origin": {"kind": "store", "published_at": info.published_at, "active": info.active},

@@ -12,14 +12,12 @@ and the store cannot disagree about what an activation or a rollback did.
 
 from __future__ import annotations
 
-from datetime import datetime, timezone
 from typing import Any
 
-from model_store.errors import InputError
 from model_store.store.state import activation_stack
 from model_store.view import charts
 
-__all__ = ["SWITCH_ACTIONS", "live_at", "parse_moment", "timeline_data"]
+__all__ = ["SWITCH_ACTIONS", "timeline_data"]
 
 SWITCH_ACTIONS = ("activate", "rollback")
 
@@ -50,33 +48,3 @@ def timeline_data(entries: list[dict[str, Any]], *, now: str) -> dict[str, Any]:
     return {"intervals": intervals, "switches": switches, "live": live,
             "rollback_to": stack[-2][0] if len(stack) >= 2 else None,
             "chart": charts.timeline_chart(intervals, switches) if switches else None}
-
-
-def live_at(entries: list[dict[str, Any]], moment: datetime) -> dict[str, Any]:
-    """The version live at ``moment`` and the switch that made it live (None before the first)."""
-    switches = [entry for entry in entries if entry["action"] in SWITCH_ACTIONS and _time(entry) <= moment]
-    if not switches:
-        return {"at": _format(moment), "version": None, "since": None, "entry": None}
-    last = switches[-1]
-    stack = activation_stack(entries[: entries.index(last) + 1])
-    return {"at": _format(moment), "version": stack[-1][0] if stack else None, "since": last["time"], "entry": last}
-
-
-def parse_moment(text: str) -> datetime:
-    """An RFC 3339 date-time with an offset (``Z`` or ``+01:00``), as an aware datetime."""
-    try:
-        moment = datetime.fromisoformat(text.strip().replace("z", "Z"))
-    except ValueError:
-        moment = None
-    if moment is None or moment.tzinfo is None:
-        raise InputError(f"time {text[:40]!r}: expected an RFC 3339 date-time with an offset, "
-                         "e.g. 2026-12-01T21:40:00Z")
-    return moment.astimezone(timezone.utc)
-
-
-def _time(entry: dict[str, Any]) -> datetime:
-    return datetime.strptime(entry["time"], "%Y-%m-%dT%H:%M:%SZ").replace(tzinfo=timezone.utc)
-
-
-def _format(moment: datetime) -> str:
-    return moment.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")

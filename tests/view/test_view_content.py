@@ -12,13 +12,13 @@ from sklearn.calibration import calibration_curve
 from sklearn.metrics.pairwise import rbf_kernel
 from sklearn.model_selection import train_test_split
 
-from model_store.errors import InputError, NotFoundError
+from model_store.errors import NotFoundError
 from model_store.store import Store
 from model_store.store.preview import preview
 from model_store.view.assets import ASSET_DIR, asset_bytes
 from model_store.view.card import bundle_card
 from model_store.view.charts import change_distribution_chart, distance_histogram_chart
-from model_store.view.timeline import live_at, parse_moment, timeline_data
+from model_store.view.timeline import timeline_data
 from model_store.tables import read_table
 from tests.view.conftest import MODEL, make_store
 
@@ -95,24 +95,11 @@ def test_change_distribution_counts_every_row_scored_by_both_once(demo_bundles, 
 
 
 ENTRIES = [
-    {"time": "2026-01-01T00:00:00Z", "action": "publish", "version": "1", "actor": "a", "reason": None, "digest": "d1"},
-    {"time": "2026-01-02T00:00:00Z", "action": "activate", "version": "1", "actor": "a", "reason": "r1", "digest": "d1"},
-    {"time": "2026-01-03T00:00:00Z", "action": "activate", "version": "2", "actor": "b", "reason": "r2", "digest": "d2"},
-    {"time": "2026-01-04T00:00:00Z", "action": "rollback", "version": "1", "actor": "c", "reason": "r3", "digest": "d1"},
+    {"seq": 1, "time": "2026-01-01T00:00:00Z", "action": "publish", "version": "1", "actor": "a", "reason": None, "digest": "d1"},
+    {"seq": 2, "time": "2026-01-02T00:00:00Z", "action": "activate", "version": "1", "actor": "a", "reason": "r1", "digest": "d1"},
+    {"seq": 3, "time": "2026-01-03T00:00:00Z", "action": "activate", "version": "2", "actor": "b", "reason": "r2", "digest": "d2"},
+    {"seq": 4, "time": "2026-01-04T00:00:00Z", "action": "rollback", "version": "1", "actor": "c", "reason": "r3", "digest": "d1"},
 ]
-
-
-@pytest.mark.parametrize(("moment", "version"), [
-    ("2026-01-01T12:00:00Z", None), ("2026-01-02T00:00:00Z", "1"), ("2026-01-03T05:00:00+05:00", "2"),
-    ("2026-01-03T23:59:59Z", "2"), ("2026-01-05T00:00:00Z", "1"),
-])
-def test_live_at_follows_activations_and_rollbacks(moment, version):
-    assert live_at(ENTRIES, parse_moment(moment))["version"] == version
-
-
-def test_live_at_needs_an_rfc_3339_time_with_an_offset():
-    with pytest.raises(InputError, match="RFC 3339"):
-        parse_moment("2026-01-03 10:00")
 
 
 def test_timeline_has_one_stretch_per_live_version_and_knows_the_rollback_target():

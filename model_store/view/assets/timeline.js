@@ -7,7 +7,7 @@ globalThis.rbfClient.start(async ({main, page}) => {
   const check = data.verification;
   main.append(el("section", {class: "panel"}, el("h2", {}, "History chain"),
     el("p", {}, el("span", {class: "badge " + (check.ok ? "ok" : "bad"), id: "chain"}, check.ok ? "verified" : "NOT verified"),
-      check.ok ? ` ${check.entries} entries, hash chain and active pointer agree.` : ` ${check.detail}`)));
+      check.ok ? ` ${check.entries} entries, hash chain and active pointer agree.` : ` ${check.problem}`)));
 
   const plot = el("section", {class: "panel"}, el("h2", {}, "Live versions over time"));
   main.append(plot);
@@ -26,11 +26,12 @@ globalThis.rbfClient.start(async ({main, page}) => {
     event.preventDefault();
     answer.replaceChildren();
     try {
-      const found = await api(path("/view/data/models", page.model, "live") + "?at=" + encodeURIComponent(input.value.trim()));
-      answer.append(found.version
-        ? el("p", {class: "answer"}, "Live at ", found.at, ": ", el("span", {class: "label"}, found.version),
-            ` (since ${found.since}, ${found.entry.action} by ${found.entry.actor}: ${found.entry.reason || ""})`)
-        : el("p", {class: "answer"}, `No version was live at ${found.at}.`));
+      // The store's own lookup, GET /models/{model}/history?at=TIME (404 before the first activation).
+      const found = await api(path("/models", page.model, "history") + "?at=" + encodeURIComponent(input.value.trim()));
+      const made = found.made_live;
+      answer.append(el("p", {class: "answer"}, "Live at ", found.at, ": ", el("span", {class: "label"}, found.version),
+        ` (since ${made.time}: ${made.action} by ${made.actor}${made.via ? " via " + made.via : ""}, ${made.reason || ""})`,
+        found.ended ? ` until ${found.ended.time}` : ", still live"));
     } catch (error) {
       showProblem(answer, error, "No answer");
     }

@@ -115,8 +115,6 @@ ROLE_MATRIX = {
     ("GET", "/view/data/models/{model}/versions/{version}/card"): (
         {"score", "operate", "audit"}, True, "/view/data/models/iris/versions/1.0.0/card", None),
     ("GET", "/view/data/models/{model}/timeline"): ({"operate", "audit"}, False, "/view/data/models/iris/timeline", None),
-    ("GET", "/view/data/models/{model}/live"): (
-        {"operate", "audit"}, False, "/view/data/models/iris/live?at=2026-01-01T00:00:00Z", None),
     ("POST", "/view/data/models/{model}/try"): ({"score"}, True, "/view/data/models/iris/try", {"records": [GOOD_RECORD]}),
     ("POST", "/view/data/models/{model}/preview"): ({"operate"}, False, "/view/data/models/iris/preview", {"version": "2.0.0"}),
 }
