@@ -139,7 +139,8 @@ def assert_problem(response, status: int) -> dict:
 
 def _call(client, route, headers=None):
     _, _, path, body = ROLE_MATRIX[route]
-    return client.request(route[0], path, json=body, headers=headers or {})
+    # follow_redirects: GET / answers 307 to /view/ (httpx does not follow by default, TestClient does)
+    return client.request(route[0], path, json=body, headers=headers or {}, follow_redirects=True)
 
 
 def check_role_matrix_with_tokens(client, issued: dict[str, str]) -> None:
