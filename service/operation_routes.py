@@ -143,7 +143,7 @@ def _validated(model: type[BaseModel], body: bytes):
 def _actor(request: Request) -> str:
     caller = getattr(request.state, "caller", None)
     if caller is None or caller.name is None:  # the access rules make this unreachable; stay closed anyway
-        raise ServiceProblem(403, "tokens-required", "This route needs a token", "no authenticated caller")
+        raise ServiceProblem(403, "tokens-required", "This route needs tokens", "no authenticated caller")
     return caller.name
 
 
