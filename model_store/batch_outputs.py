@@ -98,6 +98,9 @@ class OutputTarget:
         if self.format == "csv" and self.path.is_dir():
             raise InputError(f"--out {self.path} is a directory; give the path of the CSV file to write "
                              "(or a name ending in .parquet for a directory of Parquet parts)")
+        if self.format == "csv":
+            for target in (self.path, self.sidecar):
+                _refuse_special(target)
         if self.format == "parquet" and self.path.exists() and not (self.path.is_dir() and not any(self.path.iterdir())):
             raise InputError(f"--out {self.path}: already exists; choose a new name or remove it first "
                              "(a Parquet output is a directory that is never overwritten)")
@@ -148,6 +151,15 @@ def csv_header(schema: pa.Schema, path: Path) -> Path:
     """Write the CSV header line of ``schema`` (as Arrow's writer spells it) to ``path``."""
     pcsv.write_csv(schema.empty_table(), path)
     return path
+
+
+def _refuse_special(target: Path) -> None:
+    """The output is renamed over its target, which would replace a link or a device (say
+    /dev/stdout) instead of writing through it: only a missing path or a regular file is replaced."""
+    if target.is_symlink() or (target.exists() and not target.is_file()):
+        kind = "a symbolic link" if target.is_symlink() else "not a regular file (a device, pipe or socket)"
+        raise InputError(f"--out {target} is {kind}; the output is written beside it and renamed into place, "
+                         "which would replace it: give the path of a regular file")
 
 
 def _umask() -> int:
