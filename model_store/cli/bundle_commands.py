@@ -1,7 +1,7 @@
-"""Bundle commands: train, export, score, inspect, verify, pack.
+"""Bundle commands: train, export, inspect, verify, pack (score lives in ``score_command``).
 
 scikit-learn and joblib are imported inside the export and train handlers
-only, so scoring and inspecting never load them.
+only, so inspecting never loads them.
 """
 
 from __future__ import annotations
@@ -28,7 +28,6 @@ def register(subparsers) -> None:
     """Add the bundle commands to the ``rbfgate`` parser."""
     _add_export(subparsers)
     _add_train(subparsers)
-    _add_score(subparsers)
     inspect = subparsers.add_parser("inspect", help="show a bundle's identity, features, kernel width and metrics")
     inspect.add_argument("bundle", type=Path, help="bundle directory or .tar file")
     shown = inspect.add_mutually_exclusive_group()
@@ -36,7 +35,7 @@ def register(subparsers) -> None:
     shown.add_argument("--openapi", action="store_true",
                        help="print the OpenAPI 3.1 document for scoring this bundle, as "
                        "GET /models/NAME/versions/VERSION/openapi.json serves it")
-    inspect.add_argument("--max-records", type=int, default=DEFAULT_MAX_RECORDS, metavar="N",
+    inspect.add_argument("--max-records", type=int, default=None, metavar="N",
                          help=f"with --openapi: the records-per-request limit of the service (default {DEFAULT_MAX_RECORDS}, "
                          "as rbfgate serve)")
     inspect.set_defaults(handler=_inspect)
@@ -80,17 +79,6 @@ def _add_train(subparsers) -> None:
     parser.add_argument("--test-size", type=float, default=0.25, help="holdout fraction (default 0.25)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the split and the folds (default 0)")
     parser.set_defaults(handler=_train)
-
-
-def _add_score(subparsers) -> None:
-    parser = subparsers.add_parser("score", help="score a CSV file; refuse rows the model cannot answer for")
-    parser.add_argument("bundle", type=Path, help="bundle directory or .tar file")
-    parser.add_argument("input", type=Path, metavar="INPUT.csv")
-    parser.add_argument("--out", type=Path, required=True, metavar="OUT.csv")
-    parser.add_argument("--flag-outside", action="store_true",
-                        help="answer rows whose domain verdict is outside (flagged in domain_verdict) instead of "
-                        "refusing them as outside_domain")
-    parser.set_defaults(handler=_score)
 
 
 def _identity_arguments(parser: argparse.ArgumentParser) -> None:
@@ -139,21 +127,16 @@ def _train(args) -> int:
     return 0
 
 
-def _score(args) -> int:
-    from model_store.batch_scoring import score_csv
-
-    bundle = load_bundle(args.bundle)
-    summary = score_csv(bundle, args.input, args.out, outside_action="flag" if args.flag_outside else "refuse")
-    print(f"{summary.scored} scored, {summary.refused} refused", file=sys.stderr)
-    return 0
-
-
 def _inspect(args) -> int:
-    if args.max_records < 1:
-        raise InputError(f"--max-records {args.max_records}: expected 1 or more records per request")
+    if args.max_records is not None and not args.openapi:
+        raise InputError(f"--max-records {args.max_records}: it sets the records limit of the --openapi document; "
+                         "add --openapi or leave --max-records out")
+    max_records = DEFAULT_MAX_RECORDS if args.max_records is None else args.max_records
+    if max_records < 1:
+        raise InputError(f"--max-records {max_records}: expected 1 or more records per request")
     bundle = load_bundle(args.bundle)
     if args.openapi:
-        print(json.dumps(api_document(bundle.manifest, bundle.digest, max_records=args.max_records),
+        print(json.dumps(api_document(bundle.manifest, bundle.digest, max_records=max_records),
                          indent=2, ensure_ascii=False))
         return 0
     description = describe(bundle)

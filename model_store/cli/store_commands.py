@@ -31,7 +31,7 @@ from model_store.store.state import stack_before
 from model_store.store.timeline import parse_moment
 from model_store.tables import CsvFile
 
-__all__ = ["default_actor", "read_preview_inputs", "register"]
+__all__ = ["count_argument", "default_actor", "read_preview_inputs", "register"]
 
 
 def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
@@ -84,7 +84,7 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
     parser.add_argument("--inputs", metavar="CSV", help="recent inputs to compare on, one record per row")
     parser = add("prune", _prune, "remove old versions, never the active one or the rollback target", actor=True)
     parser.add_argument("name", metavar="NAME")
-    parser.add_argument("--keep", metavar="N", type=_count, required=True, help="how many newest versions to keep")
+    parser.add_argument("--keep", metavar="N", type=count_argument, required=True, help="how many newest versions to keep")
     parser = add("keygen", _keygen, "create an Ed25519 key pair PREFIX.key (secret) and PREFIX.pub", store=False)
     parser.add_argument("--out", metavar="PREFIX", required=True, help="path prefix of the two key files")
     parser = add("sign", _sign, "verify a bundle and sign its digest (signature.json beside the manifest)", store=False)
@@ -142,7 +142,8 @@ def read_preview_inputs(path: Path) -> tuple[list[dict[str, str]], list[int]]:
     return records, numbers
 
 
-def _count(text: str) -> int:
+def count_argument(text: str) -> int:
+    """argparse type: a whole number, 0 or more."""
     try:
         value = int(text)
     except ValueError:
