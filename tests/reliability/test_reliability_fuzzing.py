@@ -103,9 +103,14 @@ _VALID = [
 ]
 _SNIPPETS = [b"NaN", b"Infinity", b"-Infinity", b"1e999", b"9" * 400, b"[" * 200, b"{" * 100, b'"\\u0000"',
              b"\xff\xfe", b"\xef\xbb\xbf", b"null", b"true", b'"records"', b":", b",", b"}", b"]", b'"a":1,"a":2',
-             b"\x00", b"\\", b'"', b"-0", b"1.7976931348623157e309", b"0x10", b"'single'"]
+             b"\x00", b"\\", b'"', b"-0", b"1.7976931348623157e309", b"0x10", b"'single'",
+             # Invalid Unicode (RFC 3629 section 3; RFC 7493 section 2.1): escaped lone surrogates as values and
+             # member names, a surrogate encoded as UTF-8 bytes, an over-long encoding, a paired escape.
+             b'"\\ud800"', b'"\\udfff"', b'{"\\ud800":1}', b'"\\ud800":1,', b"\xed\xa0\x80", b"\xc0\xaf",
+             b'"\\ud83d\\ude00"', b"\xf4\x90\x80\x80"]
 _PATH_PIECES = ["..", "%2e%2e", "%2F", "%00", "%", "%zz", "~", "iris", "1.0.0", "versions", "models", "score",
-                "schema", "bundle", ";", "?x=1", "#frag", "%C3%A9", "\u00e9", "a" * 300, "//", "*", "{model}"]
+                "schema", "bundle", ";", "?x=1", "#frag", "%C3%A9", "\u00e9", "a" * 300, "//", "*", "{model}",
+                "%ED%A0%80", "%C0%AF", "%F4%90%80%80", "\U0001d11e", "?q=%ED%A0%80"]
 _CONTENT_TYPES = ["application/json", "text/plain", "application/json; charset=latin-1", "", "multipart/form-data",
                   "application/problem+json", "application/x-www-form-urlencoded", "*/*"]
 
@@ -113,7 +118,7 @@ _CONTENT_TYPES = ["application/json", "text/plain", "application/json; charset=l
 def _mutate_body(rng: random.Random, body: bytes) -> bytes:
     data = bytearray(body)
     for _ in range(rng.randint(1, 4)):
-        choice = rng.randrange(6)
+        choice = rng.randrange(7)
         position = rng.randint(0, len(data))
         if choice == 0 and data:
             data[min(position, len(data) - 1)] ^= 1 << rng.randrange(8)
@@ -125,8 +130,13 @@ def _mutate_body(rng: random.Random, body: bytes) -> bytes:
             data = data[:position]
         elif choice == 4:
             data[position:position] = bytes(rng.randrange(256) for _ in range(rng.randint(1, 8)))
-        else:
+        elif choice == 5:
             data = data + data[: rng.randint(0, len(data))]
+        else:  # a lone surrogate escape inside a string: a member name (a record id, a feature) or a value
+            quotes = [index for index, byte in enumerate(data) if byte == ord('"')]
+            if quotes:
+                at = rng.choice(quotes) + 1
+                data[at:at] = rng.choice([b"\\ud800", b"\\udbff", b"\\udc00", b"\\udfff"])
     return bytes(data)
 
 
