@@ -132,12 +132,35 @@ def _mutate_body(rng: random.Random, body: bytes) -> bytes:
             data[position:position] = bytes(rng.randrange(256) for _ in range(rng.randint(1, 8)))
         elif choice == 5:
             data = data + data[: rng.randint(0, len(data))]
-        else:  # a lone surrogate escape inside a string: a member name (a record id, a feature) or a value
-            quotes = [index for index, byte in enumerate(data) if byte == ord('"')]
-            if quotes:
-                at = rng.choice(quotes) + 1
-                data[at:at] = rng.choice([b"\\ud800", b"\\udbff", b"\\udc00", b"\\udfff"])
+        else:
+            data = bytearray(_with_a_lone_surrogate(rng, bytes(data)))
     return bytes(data)
+
+
+def _with_a_lone_surrogate(rng: random.Random, body: bytes) -> bytes:
+    """The body with one member name or string value (a feature, a record id, a version, a reason)
+    replaced by text holding a lone surrogate, still valid JSON syntax (json.dumps escapes it)."""
+    try:
+        document = json.loads(body)
+    except ValueError:
+        return body
+    containers = [document]
+    places = []
+    while containers:
+        value = containers.pop()
+        items = value.items() if isinstance(value, dict) else enumerate(value) if isinstance(value, list) else ()
+        for key, child in items:
+            places.append((value, key))
+            containers.append(child)
+    if not places:
+        return body
+    container, key = rng.choice(places)
+    lone = rng.choice(["\ud800", "\udbff", "\udc00", "\udfff"])
+    if isinstance(container, dict) and rng.random() < 0.5:
+        container[f"{key}{lone}" if rng.random() < 0.5 else lone] = container.pop(key)
+    else:
+        container[key] = rng.choice([lone, f"5.1{lone}", [lone], {lone: 1}])
+    return json.dumps(document).encode("ascii")
 
 
 def _mutate_path(rng: random.Random, path: str) -> str:
