@@ -56,8 +56,10 @@ class Bundle:
         self.document = document
         self.manifest = manifest
         self.source = source
-        self.digest = sha256_bytes(canonical_json(document))
+        canonical = canonical_json(document)
+        self.digest = sha256_bytes(canonical)
         self._scorer = _build_scorer(manifest, arrays, source)
+        self._resident_bytes = self._scorer.resident_bytes + 4 * len(canonical)
 
     @property
     def name(self) -> str:
@@ -85,6 +87,12 @@ class Bundle:
     @property
     def scorer(self) -> Scorer:
         return self._scorer
+
+    @property
+    def resident_bytes(self) -> int:
+        """Memory held by this loaded bundle, in bytes: its scorer's arrays (which dominate) plus
+        the manifest's canonical size (its parsed form costs a few times that in Python objects)."""
+        return self._resident_bytes
 
     def score(self, X) -> Scores:
         """Score ``X`` of shape (n, f): raw units, manifest feature order, finite values."""

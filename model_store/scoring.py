@@ -161,6 +161,12 @@ class Scorer:
     def n_features(self) -> int:
         return len(self.center)
 
+    @property
+    def resident_bytes(self) -> int:
+        """Bytes of the arrays this scorer holds (about 2 x support vectors x features x 8 bytes):
+        what keeping it loaded costs, used to bound caches of loaded versions."""
+        return sum(value.nbytes for value in vars(self).values() if isinstance(value, np.ndarray))
+
     def score(self, raw: np.ndarray) -> Scores:
         """Score ``raw`` (n, f) float64, finite, in manifest feature order and raw units."""
         if raw.shape[0] == 1:

@@ -71,7 +71,22 @@ class ScoredResult(_Doc):
 
 class RefusedResult(_Doc):
     status: Literal["refused"]
-    problems: list[RecordProblem] = Field(min_length=1)
+    problem_count: int = Field(ge=1)
+    problems: list[RecordProblem] | None = Field(
+        min_length=1,
+        description="every problem of the record, or null when the answer summarises it (see refusals)",
+    )
+
+
+class RefusalGroup(_Doc):
+    """One distinct problem of an answer and the records that have it."""
+
+    feature: str | None = Field(description="null: unknown features past the first 32 distinct names")
+    reason: Literal[REASONS]  # type: ignore[valid-type]
+    allowed: tuple[float, float] | None
+    count: int = Field(ge=1, description="problems in this group")
+    records: list[tuple[int, int]] = Field(
+        min_length=1, description="runs [first, last] of consecutive record indices (inclusive), in request order")
 
 
 class ScoreRequest(_Doc):
@@ -82,6 +97,10 @@ class ScoreResponse(_Doc):
     model: str
     version: str
     bundle_sha256: str
+    refusals: list[RefusalGroup] | None = Field(
+        None, description="present when a record was refused: each distinct problem once, with its records")
+    summarised: bool | None = Field(
+        None, description="present with refusals: true when some refused result has problems null")
     results: list[ScoredResult | RefusedResult]
 
 

@@ -3,7 +3,9 @@
     body      {"records": [{feature: number, ...}, ...]}     1 to max_records records
     results   one per record, in request order:
               {"status": "scored", "label", "decision", "probability", "nearest_support"}
-              {"status": "refused", "problems": [{"feature", "value", "reason", "allowed"}]}
+              {"status": "refused", "problem_count", "problems": [{"feature", "value", "reason", "allowed"}] or null}
+    refusals  with any refused record: each distinct problem once with its record runs
+              (``service.refusal_answer``, which bounds the answer's size)
 
 ``decision`` is a number for a binary model (scikit-learn's
 ``decision_function``, positive for the second class) and an object
@@ -21,10 +23,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-
 from model_store.refusal import CheckedBatch, check_records, from_json
 from model_store.scoring import Scores
 from service.problems import ServiceProblem
+from service.refusal_answer import RefusalAnswer, summarise_refusals
 from service.registry import LoadedModel
 
 __all__ = ["ScoredBatch", "read_records", "score_records"]
@@ -37,6 +39,7 @@ class ScoredBatch:
     results: list[dict[str, Any]]
     checked: CheckedBatch
     scores: Scores | None
+    refusals: RefusalAnswer
 
     @property
     def scored(self) -> int:
@@ -91,13 +94,11 @@ def score_records(model: LoadedModel, records: list[dict[str, Any]]) -> ScoredBa
     position = {int(index): row for row, index in enumerate(checked.accepted.tolist())}
     classes = [str(label) for label in bundle.classes]
     scored = _scored_results(scores, classes) if scores is not None else []
-    results = []
-    for index in range(len(records)):
-        if index in position:
-            results.append(scored[position[index]])
-        else:
-            results.append({"status": "refused", "problems": [problem.to_dict() for problem in checked.problems[index]]})
-    return ScoredBatch(results, checked, scores)
+    refusals = summarise_refusals(checked.problems)
+    results = [
+        scored[position[index]] if index in position else refusals.results[index] for index in range(len(records))
+    ]
+    return ScoredBatch(results, checked, scores, refusals)
 
 
 def _scored_results(scores: Scores, classes: list[str]) -> list[dict[str, Any]]:
