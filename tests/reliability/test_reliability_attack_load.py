@@ -106,7 +106,7 @@ def test_cycling_pinned_versions_of_a_large_model_stays_within_the_cache(tmp_pat
     from model_store import load_bundle
 
     first = load_bundle(tmp_path / versions[0])
-    record = dict(zip(first.feature_names, map(float, first.manifest.golden.inputs[0])))
+    record = {feature.name: sum(feature.allowed) / 2 for feature in first.manifest.features}  # inside every range
     with _serve(tmp_path, store) as server:
         before, after, statuses = cycle_pinned_versions(server.url, server.process.pid, "large", versions[1:], record,
                                                         rounds=3)
