@@ -2,7 +2,7 @@
 
     from model_store import load_bundle
     bundle = load_bundle("path/to/bundle")      # directory or .tar, checksums verified
-    scores = bundle.score(X)                    # X: (n, f) raw units, manifest feature order
+    scores = bundle.score(X)                    # X: (n, f) raw units in feature order, or a DataFrame (by name)
     scores.labels, scores.decision, scores.probabilities, scores.nearest_distance
 
 Importing this package never imports scikit-learn, joblib or the service.

@@ -27,6 +27,7 @@ import numpy as np
 
 from model_store.archive import is_archive, read_archive
 from model_store.calibration import Calibrator
+from model_store.columns import feature_matrix
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import BundleFormatError, GoldenMismatchError, InputError, IntegrityError, NotFoundError
 from model_store.manifest import (
@@ -95,8 +96,13 @@ class Bundle:
         return self._resident_bytes
 
     def score(self, X) -> Scores:
-        """Score ``X`` of shape (n, f): raw units, manifest feature order, finite values."""
-        raw = np.asarray(X, dtype=np.float64)
+        """Score ``X``: n rows of f finite values in raw units.
+
+        A DataFrame, a mapping of feature name -> 1-D array or a structured array is matched
+        by feature name (unused columns ignored); a plain (n, f) array or list of rows must be
+        in ``feature_names`` order (``model_store.columns``).
+        """
+        raw = feature_matrix(X, self.feature_names)
         if raw.ndim != 2 or raw.shape[1] != self._scorer.n_features:
             raise InputError(
                 f"expected a 2-D array of shape (n, {self._scorer.n_features}) in the order "

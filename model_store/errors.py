@@ -17,6 +17,7 @@ place in ``service/problems.py``.
     │   ├── GoldenMismatchError (1)   the scorer disagrees with the golden vectors
     │   ├── SignatureError      (1)   a missing, untrusted or bad signature
     │   ├── VersionConflictError(1)   a published version exists with another digest
+    │   ├── BreakingChangeError (1)   an activation would break callers and was not accepted
     │   └── HistoryError        (1)   the history trail fails verification
     └── StoreError              (2)   the store directory is unusable (missing, read-only, foreign)
         └── LockTimeoutError    (1)   another process held the store lock too long
@@ -27,6 +28,7 @@ Messages say what was expected, what was found, and what to do next.
 from __future__ import annotations
 
 __all__ = [
+    "BreakingChangeError",
     "BundleFormatError",
     "CheckFailedError",
     "CsvError",
@@ -111,6 +113,16 @@ class SignatureError(CheckFailedError):
 
 class VersionConflictError(CheckFailedError):
     """A version with this name is already published with a different digest."""
+
+
+class BreakingChangeError(CheckFailedError):
+    """Activating a version would break callers of the active one; ``changes`` lists why (one line each)."""
+
+    changes: tuple[str, ...] = ()
+
+    def __init__(self, message: str, changes: tuple[str, ...] = ()) -> None:
+        super().__init__(message)
+        self.changes = tuple(changes)
 
 
 class HistoryError(CheckFailedError):

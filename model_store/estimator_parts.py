@@ -81,8 +81,10 @@ def take_apart(model: object) -> ModelParts:
     calibration = {"method": "none"}
     scaler = None
     notes: list[str] = []
+    calibrator = None  # the CalibratedClassifierCV, whose classes_ are the model's labels
     feature_names = _feature_names(model)
     if isinstance(model, CalibratedClassifierCV):
+        calibrator = model
         inner, calibration = _calibrated(model)
         model = _unfreeze(inner)
     if isinstance(model, Pipeline):
@@ -90,6 +92,7 @@ def take_apart(model: object) -> ModelParts:
         if isinstance(model, CalibratedClassifierCV):
             if calibration["method"] != "none":
                 raise ModelFileError("the model is calibrated twice (a calibrator inside a calibrator); keep one")
+            calibrator = model
             model, calibration = _calibrated(model)
             model = _unfreeze(model)
             if isinstance(model, Pipeline):
@@ -107,12 +110,15 @@ def take_apart(model: object) -> ModelParts:
             "break_ties=True with decision_function_shape='ovo' cannot predict in scikit-learn; "
             "refit with break_ties=False or decision_function_shape='ovr'"
         )
-    if getattr(svc, "probability", False) and calibration["method"] == "none":
+    # scikit-learn 1.9 deprecates the parameter and its default is the truthy string "deprecated":
+    # only an explicit probability=True asks libsvm for its internal Platt probabilities.
+    if getattr(svc, "probability", False) is True and calibration["method"] == "none":
         notes.append(
             "probability=True: libsvm's internal Platt probabilities are not carried into the bundle; "
             "wrap the model in CalibratedClassifierCV(ensemble=False) to export probabilities"
         )
-    classes = _labels(svc.classes_)
+    classes = _labels(_outer_classes(svc, calibrator))
+    _check_temperature_labels(calibration["method"], svc, classes)
     kind, center, scale = _scaler_parts(scaler, svc.n_features_in_)
     return ModelParts(estimator, svc, scaler, kind, center, scale, calibration, feature_names, classes, notes)
 
@@ -120,6 +126,46 @@ def take_apart(model: object) -> ModelParts:
 def _feature_names(model) -> list[str] | None:
     names = getattr(model, "feature_names_in_", None)
     return [str(name) for name in names] if names is not None else None
+
+
+def _outer_classes(svc, calibrator) -> np.ndarray:
+    """The labels the model predicts, in the order of the SVC's classes (its vote and dual_coef_ order).
+
+    scikit-learn 1.9's CalibratedClassifierCV(method="temperature") encodes string labels before
+    fitting its inner estimator (sklearn/calibration.py, ``CalibratedClassifierCV.fit``), so that
+    SVC's ``classes_`` are the codes 0 .. k-1, which index the calibrator's own ``classes_``.
+    """
+    inner = np.asarray(svc.classes_)
+    if calibrator is None:
+        return inner
+    outer = np.asarray(calibrator.classes_)
+    if len(inner) == len(outer) and inner.tolist() == outer.tolist():
+        return inner
+    if len(inner) == len(outer) and inner.dtype.kind in "iu" and inner.tolist() == list(range(len(outer))):
+        return outer[inner]
+    raise ModelFileError(
+        f"the calibrator's classes {outer.tolist()} do not match its SVC's classes {inner.tolist()}; "
+        "fit the calibrator and the SVC on the same labels"
+    )
+
+
+def _check_temperature_labels(method: str, svc, classes: list) -> None:
+    """Refuse a temperature calibrator whose integer labels are not 0 .. k-1.
+
+    scikit-learn 1.9 encodes only string labels before fitting its temperature calibrator; integer
+    labels go to the multinomial loss as class indices (sklearn/calibration.py,
+    ``_TemperatureScaling.fit``), so labels such as 1, 2, 3 index past the logits and the fitted
+    temperature comes from undefined values (it changed from run to run here). There is no sound
+    model to reproduce.
+    """
+    encoded = list(range(len(classes)))
+    if method == "temperature" and isinstance(classes[0], int) and classes != encoded and \
+            np.asarray(svc.classes_).tolist() == classes:
+        raise ModelFileError(
+            f"temperature calibration with the integer labels {classes}: scikit-learn fits its temperature "
+            f"using the labels as class indices, which only works for {encoded}; refit with labels "
+            f"{encoded} or with string labels"
+        )
 
 
 def _pipeline(pipeline: Pipeline):

@@ -28,8 +28,16 @@ from model_store.errors import InputError
 from model_store.estimator_parts import ModelParts, plain_arrays_accepted
 from model_store.metrics import classification_metrics
 from model_store.naming import check_name
+from model_store.refusal import RECORD_ID
 
-__all__ = ["DEFAULT_MARGIN", "GOLDEN_FROM_REFERENCE", "GOLDEN_SYNTHETIC", "ExportRequest", "export_bundle"]
+__all__ = [
+    "DEFAULT_MARGIN",
+    "GOLDEN_FROM_REFERENCE",
+    "GOLDEN_SYNTHETIC",
+    "ExportRequest",
+    "check_feature_names",
+    "export_bundle",
+]
 
 DEFAULT_MARGIN = 0.05
 GOLDEN_FROM_REFERENCE = 32
@@ -67,10 +75,17 @@ def export_bundle(request: ExportRequest) -> Bundle:
     check_name(request.version, what="model version")
     if not 0 <= request.margin <= 10:
         raise InputError(f"--margin {request.margin} is outside [0, 10]; it is a fraction of each feature's range")
+    check_feature_names(request.features)
     parts = request.parts
     if len(request.features) != parts.n_features:
         raise InputError(
             f"the model expects {parts.n_features} features, the reference has {len(request.features)}: {request.features}"
+        )
+    if parts.feature_names is not None and list(request.features) != parts.feature_names:
+        # The reference rows are positional: they must be in the order the model was fitted on.
+        raise InputError(
+            f"the model was fitted on the columns {parts.feature_names}, the reference is given as "
+            f"{list(request.features)}; pass the reference columns in the model's order"
         )
     unknown = sorted(set(request.feature_info) - set(request.features))
     if unknown:
@@ -124,6 +139,20 @@ def _document(request: ExportRequest, golden_inputs: np.ndarray) -> dict[str, An
         },
         "golden": _golden(parts, golden_inputs),
     }
+
+
+def check_feature_names(features: list[str]) -> None:
+    """Refuse a feature named like the record id member (``model_store.refusal.RECORD_ID``).
+
+    Over HTTP a record's ``"id"`` is the caller's record id, echoed on its result and never
+    scored; a feature of that name would make ``{"id": 7}`` mean two things.
+    """
+    if RECORD_ID in features:
+        raise InputError(
+            f"a feature is named {RECORD_ID!r}, which is reserved: over HTTP a record's {RECORD_ID!r} member is the "
+            f"caller's record id, echoed on its result and never scored; rename that column (e.g. {RECORD_ID}_value) "
+            "in the data and fit again"
+        )
 
 
 def _features(request: ExportRequest) -> list[dict[str, Any]]:

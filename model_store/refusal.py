@@ -8,6 +8,12 @@ a feature the bundle does not know (``malformed_row`` is the CSV reader's
 own reason for a row with more fields than its header). Every problem names the feature, the
 value, a machine-readable reason and the allowed range.
 
+A JSON record may also carry its caller's id as ``"id"`` (``RECORD_ID``): a string or an
+integer of at most ``MAX_ID_LENGTH`` characters, which is not a feature and is never scored;
+``check_records(..., ids=True)`` keeps it for the results and refuses the record
+(``invalid_id``) when it is anything else. Exporting refuses a feature of that name, so the
+member cannot mean two things; in an older bundle that has such a feature it stays a feature.
+
 Values come in two flavours: JSON values (``from_json``), where only real
 numbers count, and CSV text (``from_text``), where the text must parse as a
 finite number.
@@ -26,7 +32,10 @@ import numpy as np
 from model_store.manifest import FeatureSpec
 
 __all__ = [
+    "ID_RULE",
+    "MAX_ID_LENGTH",
     "REASONS",
+    "RECORD_ID",
     "CheckedBatch",
     "Converter",
     "Problem",
@@ -35,7 +44,15 @@ __all__ = [
     "from_text",
 ]
 
-REASONS = ("missing", "null", "not_a_number", "not_finite", "out_of_range", "unknown_feature", "malformed_row")
+REASONS = (
+    "missing", "null", "not_a_number", "not_finite", "out_of_range", "unknown_feature", "malformed_row", "invalid_id",
+)
+RECORD_ID = "id"
+MAX_ID_LENGTH = 128
+ID_RULE = (
+    f"a record id must be a string of 1 to {MAX_ID_LENGTH} characters or an integer of at most "
+    f"{MAX_ID_LENGTH} digits; it is echoed on the result, never scored"
+)
 
 # A converter returns the float, or the reason the value cannot be scored.
 _DECIMAL_TEXT = re.compile(r"[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?")
@@ -66,6 +83,8 @@ class Problem:
             return f"the row has {self.value} fields, more than the header"
         if self.reason == "unknown_feature":
             return f"{self.feature}: not a feature of this model"
+        if self.reason == "invalid_id":
+            return f"{self.feature}: {ID_RULE}"
         shown = "" if self.reason in ("missing", "null") else f"={self.value!r}"
         return f"{self.feature}{shown}: {self.reason.replace('_', ' ')}"
 
@@ -77,11 +96,14 @@ class CheckedBatch:
     values:    (n_accepted, f) float64 raw units in manifest feature order
     accepted:  (n_accepted,) indices of those records in the input
     problems:  input index -> its problems, for every refused record
+    ids:       one per input record, its valid ``RECORD_ID`` or None (absent or refused);
+               None as a whole unless ``check_records`` was asked for ids
     """
 
     values: np.ndarray
     accepted: np.ndarray
     problems: dict[int, list[Problem]] = field(default_factory=dict)
+    ids: list[Any] | None = None
 
 
 def from_json(value: Any) -> float | str:
@@ -124,16 +146,32 @@ def check_records(
     convert: Converter = from_json,
     *,
     allow_extra: bool = False,
+    ids: bool = False,
 ) -> CheckedBatch:
-    """Validate ``records`` against the bundle's features; ``allow_extra`` ignores unknown keys."""
+    """Validate ``records`` against the bundle's features; ``allow_extra`` ignores unknown keys.
+
+    ``ids=True`` reads each record's ``RECORD_ID`` (not a feature, unless the bundle has a
+    feature of that name) into ``CheckedBatch.ids`` and refuses records whose id is invalid.
+    """
     names = [feature.name for feature in features]
     known = set(names)
     bounds = [feature.allowed for feature in features]
     rows: list[list[float]] = []
     accepted: list[int] = []
     problems: dict[int, list[Problem]] = {}
+    with_ids = ids and RECORD_ID not in known
+    record_ids: list[Any] | None = [] if with_ids else None
+    if with_ids:
+        known = known | {RECORD_ID}
     for index, record in enumerate(records):
         row, found = _check_one(record, names, bounds, convert)
+        if record_ids is not None:
+            record_id = record.get(RECORD_ID)
+            if record_id is not None or RECORD_ID in record:
+                if not _valid_id(record_id):
+                    found.insert(0, Problem(RECORD_ID, _printable_id(record_id), "invalid_id", None))
+                    record_id = None
+            record_ids.append(record_id)
         if not allow_extra:
             found.extend(
                 Problem(str(key), value, "unknown_feature", None) for key, value in record.items() if key not in known
@@ -144,7 +182,29 @@ def check_records(
             rows.append(row)
             accepted.append(index)
     values = np.asarray(rows, dtype=np.float64).reshape(len(rows), len(names))
-    return CheckedBatch(values, np.asarray(accepted, dtype=np.int64), problems)
+    return CheckedBatch(values, np.asarray(accepted, dtype=np.int64), problems, record_ids)
+
+
+
+def _printable_id(value: Any) -> Any:
+    """An invalid id as it can be echoed: a lone surrogate becomes its escape (UTF-8 cannot hold it)."""
+    if isinstance(value, str):
+        return value.encode("utf-8", "backslashreplace").decode("utf-8")
+    return value
+
+
+def _valid_id(value: Any) -> bool:
+    if isinstance(value, str):
+        if not 1 <= len(value) <= MAX_ID_LENGTH:
+            return False
+        try:
+            value.encode("utf-8")  # a lone surrogate (JSON "\\ud800") could not be echoed as UTF-8
+        except UnicodeEncodeError:
+            return False
+        return True
+    if isinstance(value, int) and not isinstance(value, bool):
+        return len(str(abs(value))) <= MAX_ID_LENGTH
+    return False
 
 
 def _check_one(record, names, bounds, convert) -> tuple[list[float], list[Problem]]:

@@ -29,7 +29,7 @@ from model_store.bundle import Bundle
 from model_store.digest import sha256_file
 from model_store.errors import CsvError, InputError
 from model_store.estimator_parts import take_apart
-from model_store.exporter import DEFAULT_MARGIN, ExportRequest, export_bundle
+from model_store.exporter import DEFAULT_MARGIN, ExportRequest, check_feature_names, export_bundle
 from model_store.metrics import classification_metrics
 from model_store.naming import check_name
 from model_store.tables import Table, read_table
@@ -76,6 +76,7 @@ def train_bundle(request: TrainRequest) -> Bundle:
     if Path(request.out).exists():
         raise InputError(f"{request.out}: already exists; choose a new --out directory or remove it first")
     table = read_table(request.data, target=request.target)
+    check_feature_names(table.features)  # before the grid search, like the checks above
     labels = np.asarray(table.target)
     _check_classes(table, labels, request)
     _check_split(table, labels, request)

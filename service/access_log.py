@@ -4,7 +4,7 @@ An ASGI middleware (not Starlette's BaseHTTPMiddleware, which buffers
 streaming responses) times each request, reads the route template Starlette
 matched, and writes one JSON object per line:
 
-    {"time": "...Z", "event": "request", "method": "POST", "path": "/score/iris",
+    {"time": "...Z", "event": "request", "request_id": "3f2a...", "method": "POST", "path": "/score/iris",
      "route": "/score/{model}", "status": 200, "duration_ms": 3.1, "caller": "team-a",
      "model": "iris", "version": "1.0.0", "records": 2, "scored": 1, "refused": 1,
      "refusals": {"out_of_range": 1}}
@@ -28,6 +28,7 @@ from starlette.requests import Request
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.metrics import ServiceMetrics
+from service.request_ids import request_id
 
 __all__ = ["AccessLogMiddleware", "JsonLines", "request_note"]
 
@@ -85,6 +86,7 @@ class AccessLogMiddleware:
             caller = scope.get("state", {}).get("caller")
             self.write({
                 "event": "request",
+                "request_id": request_id(scope),  # chosen by service.request_ids, the outer middleware
                 "method": scope["method"],
                 "path": _short(scope.get("path", "")),
                 "route": route,

@@ -31,9 +31,11 @@ from service.model_routes import add_model_routes
 from service.openapi import add_openapi_route
 from service.operation_routes import add_operation_routes
 from service.poller import Poller
+from service.problem_types import add_problem_routes
 from service.problems import install_problem_handlers
 from service.recent import RecentRecords
 from service.registry import ModelRegistry
+from service.request_ids import RequestIdMiddleware
 from service.score_routes import add_score_routes
 from service.settings import Settings
 
@@ -90,13 +92,14 @@ def create_app(
         redirect_slashes=False,
         dependencies=[Depends(access_check(authenticator))],
     )
-    for add_routes in (add_score_routes, add_model_routes, add_operation_routes, add_health_routes):
+    for add_routes in (add_score_routes, add_model_routes, add_operation_routes, add_health_routes, add_problem_routes):
         add_routes(app, services)
     add_openapi_route(app, settings.max_records)
     _check_every_route_has_a_rule(app)
     install_problem_handlers(app)
     app.add_middleware(HeaderSizeLimit)  # inside the access log, so refusals are logged and counted
     app.add_middleware(AccessLogMiddleware, write=write_log, metrics=metrics)
+    app.add_middleware(RequestIdMiddleware)  # outermost: every answer the app gives carries X-Request-ID
     app.state.services = services
     return app
 

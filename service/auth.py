@@ -55,6 +55,7 @@ class AccessRule:
 
 
 _PUBLIC = AccessRule(frozenset(), "health and metrics", public=True)
+_PROBLEM_PAGES = AccessRule(frozenset(), "reading what a problem type means", public=True)
 _SCORE = AccessRule(frozenset({"score"}), "scoring", open_without_tokens=True)
 _METADATA = AccessRule(frozenset({"score", "operate", "audit"}), "reading model metadata", open_without_tokens=True)
 _BUNDLE = AccessRule(frozenset({"operate", "audit"}), "downloading a bundle (it holds training rows)")
@@ -68,6 +69,8 @@ ACCESS_RULES: Mapping[tuple[str, str], AccessRule] = {
     ("GET", "/models/{model}"): _METADATA,
     ("GET", "/models/{model}/versions/{version}"): _METADATA,
     ("GET", "/models/{model}/versions/{version}/schema"): _METADATA,
+    ("GET", "/models/{model}/openapi.json"): _METADATA,
+    ("GET", "/models/{model}/versions/{version}/openapi.json"): _METADATA,
     ("GET", "/models/{model}/versions/{version}/bundle"): _BUNDLE,
     ("GET", "/models/{model}/history"): _HISTORY,
     ("POST", "/models/{model}/activate"): _OPERATE,
@@ -77,6 +80,7 @@ ACCESS_RULES: Mapping[tuple[str, str], AccessRule] = {
     ("GET", "/readyz"): _PUBLIC,
     ("GET", "/metrics"): _PUBLIC,
     ("GET", "/openapi.json"): _METADATA,
+    ("GET", "/problems/{kind}"): _PROBLEM_PAGES,
 }
 
 

@@ -93,6 +93,7 @@ def register(subparsers) -> None:
     add = actions.add_parser("add", help="create a token (printed once, stored only as its SHA-256)")
     add.add_argument("name", help="who holds the token; recorded as the actor in the history")
     add.add_argument("--role", required=True, choices=ROLES, help="score, operate or audit")
+    add.add_argument("--quiet", action="store_true", help="print the token alone, for scripts")
     listing = actions.add_parser("list", help="list token names and roles (never the tokens)")
     revoke = actions.add_parser("revoke", help="remove a token; a running service refuses it within a poll interval")
     revoke.add_argument("name")
@@ -208,7 +209,10 @@ def _tokens_path(args: argparse.Namespace, environ: MutableMapping[str, str] = o
 def _token_add(args: argparse.Namespace) -> int:
     path = _tokens_path(args)
     token, entry = add_token(path, args.name, args.role)
-    print(f"Token {entry.name!r} (role {entry.role}) added to {path}; it is shown only this once: {token}")
+    if args.quiet:
+        print(token)
+    else:
+        print(f"Token {entry.name!r} (role {entry.role}) added to {path}; it is shown only this once: {token}")
     return 0
 
 

@@ -4,6 +4,8 @@
     GET /models/{model}                              its published versions, which is active
     GET /models/{model}/versions/{version}           the manifest metadata an auditor needs
     GET /models/{model}/versions/{version}/schema    JSON Schema 2020-12 of one record
+    GET /models/{model}/openapi.json                 OpenAPI 3.1 document for scoring the active version
+    GET /models/{model}/versions/{version}/openapi.json   the same for one version
     GET /models/{model}/versions/{version}/bundle    the single-file bundle (deterministic tar)
     GET /models/{model}/history                      the hash-chained trail and its verification
 
@@ -18,9 +20,10 @@ import hashlib
 import tempfile
 from typing import Any
 
-from fastapi import FastAPI
+from fastapi import FastAPI, Request
 from starlette.responses import JSONResponse, Response, StreamingResponse
 
+from model_store.api_document import api_document
 from model_store.archive import pack_directory
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import HistoryError, NotFoundError
@@ -32,6 +35,8 @@ from service.schema import record_schema
 __all__ = ["add_model_routes"]
 
 _CHUNK = 1 << 16
+_TAR = "application/x-tar"
+_OCTETS = "application/octet-stream"
 _SPOOL_BYTES = 16 * 1024 * 1024
 
 
@@ -87,8 +92,26 @@ def add_model_routes(app: FastAPI, services: Services) -> None:
         _, manifest, digest = _manifest(services, model, version)
         return JSONResponse(record_schema(manifest, digest), media_type="application/schema+json")
 
+    @app.get("/models/{model}/openapi.json")
+    def model_document(model: str) -> dict[str, Any]:
+        """OpenAPI 3.1 document for scoring the model, typed by its active version's features and classes."""
+        _versions(services, model)
+        record = store.active(model)
+        if record is None:
+            raise NotFoundError(
+                f"model {model!r} has no active version, so no document describes POST /score/{model}; "
+                f"GET /models/{model}/versions/VERSION/openapi.json describes a published version"
+            )
+        return _document(services, model, record.version)
+
+    @app.get("/models/{model}/versions/{version}/openapi.json")
+    def version_document(model: str, version: str) -> dict[str, Any]:
+        """OpenAPI 3.1 document for scoring one published version (what `rbfgate inspect --openapi` writes)."""
+        _version_info(services, model, version)
+        return _document(services, model, version)
+
     @app.get("/models/{model}/versions/{version}/bundle")
-    def download_bundle(model: str, version: str) -> Response:
+    def download_bundle(model: str, version: str, request: Request) -> Response:
         """The version's single-file bundle, verified before it is sent."""
         bundle = store.load_verified(model, version)  # never hand out a bundle that fails its checks
         spool = tempfile.SpooledTemporaryFile(max_size=_SPOOL_BYTES)
@@ -106,7 +129,7 @@ def add_model_routes(app: FastAPI, services: Services) -> None:
             # RFC 9530 section 3: the SHA-256 of the bytes sent, base64 in a structured-field byte sequence.
             "Repr-Digest": f"sha-256=:{base64.b64encode(tar_digest.digest()).decode('ascii')}:",
         }
-        return StreamingResponse(_chunks(spool), media_type="application/x-tar", headers=headers)
+        return StreamingResponse(_chunks(spool), media_type=_bundle_media_type(request), headers=headers)
 
     @app.get("/models/{model}/history")
     def model_history(model: str) -> dict[str, Any]:
@@ -160,6 +183,11 @@ def _manifest(services: Services, name: str, version: str) -> tuple[dict[str, An
     return document, manifest, sha256_bytes(canonical_json(document))
 
 
+def _document(services: Services, name: str, version: str) -> dict[str, Any]:
+    _, manifest, digest = _manifest(services, name, version)
+    return api_document(manifest, digest, max_records=services.settings.max_records)
+
+
 def _auditor_view(document: dict[str, Any], manifest: Manifest) -> dict[str, Any]:
     classifier = manifest.classifier
     return {
@@ -186,6 +214,13 @@ def _auditor_view(document: dict[str, Any], manifest: Manifest) -> dict[str, Any
         },
         "files": {name: entry.model_dump() for name, entry in manifest.files.items()},
     }
+
+
+def _bundle_media_type(request: Request) -> str:
+    """application/x-tar, or application/octet-stream for a client that asks only for that (RFC 9110
+    section 12.5.1): generated clients know octet-stream as a file download, not x-tar."""
+    accept = request.headers.get("accept", "")
+    return _OCTETS if _OCTETS in accept and _TAR not in accept else _TAR
 
 
 def _chunks(spool):

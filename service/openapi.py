@@ -11,7 +11,7 @@ document, so it cannot drift from what the routes do.
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, NamedTuple
 
 from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
@@ -31,6 +31,7 @@ from service.openapi_models import (
     Preview,
     PreviewRequest,
     Readiness,
+    RecordsRefusedProblem,
     RollbackRequest,
     ScoreRequest,
     ScoreResponse,
@@ -38,6 +39,7 @@ from service.openapi_models import (
     VersionDetail,
 )
 from service.problems import PROBLEM_MEDIA_TYPE
+from service.request_ids import MAX_REQUEST_ID_LENGTH, REQUEST_ID_HEADER
 
 __all__ = ["OPENAPI_PATH", "add_openapi_route"]
 
@@ -58,26 +60,50 @@ _PROBLEM_STATUSES = {
 }
 _BODY_STATUSES = (400, 408, 413, 422)
 
-# (method, path) -> (request body model or None, {status: (description, media type, schema)})
+class _Operation(NamedTuple):
+    """operation_id: explicit and stable, so generated clients get short method names (``score``,
+    ``listModels``) that do not change when a handler is renamed; body: the request body model."""
+
+    operation_id: str
+    body: type[BaseModel] | None
+    successes: dict[int, tuple[str, str | tuple[str, ...], Any]]  # status -> (description, media type(s), schema)
+
+
 _JSON = "application/json"
-_OPERATIONS: dict[tuple[str, str], tuple[type[BaseModel] | None, dict[int, tuple[str, str, Any]]]] = {
-    ("POST", "/score/{model}"): (ScoreRequest, {200: ("results in request order", _JSON, ScoreResponse)}),
-    ("POST", "/score/{model}/versions/{version}"): (
-        ScoreRequest, {200: ("results in request order", _JSON, ScoreResponse)}),
-    ("GET", "/models"): (None, {200: ("every model and its active version", _JSON, ModelList)}),
-    ("GET", "/models/{model}"): (None, {200: ("the published versions", _JSON, ModelDetail)}),
-    ("GET", "/models/{model}/versions/{version}"): (None, {200: ("metadata of one version", _JSON, VersionDetail)}),
-    ("GET", "/models/{model}/versions/{version}/schema"): (
-        None, {200: ("JSON Schema 2020-12 of one record", "application/schema+json", {"type": "object"})}),
-    ("GET", "/models/{model}/versions/{version}/bundle"): (
-        None, {200: ("the single-file bundle", "application/x-tar", {"type": "string", "format": "binary"})}),
-    ("GET", "/models/{model}/history"): (None, {200: ("the trail and its verification", _JSON, History)}),
-    ("POST", "/models/{model}/activate"): (ActivateRequest, {200: ("activated and switched", _JSON, Switched)}),
-    ("POST", "/models/{model}/rollback"): (RollbackRequest, {200: ("rolled back and switched", _JSON, Switched)}),
-    ("POST", "/models/{model}/preview"): (PreviewRequest, {200: ("the comparison; nothing changes", _JSON, Preview)}),
-    ("GET", "/healthz"): (None, {200: ("the process answers", _JSON, Alive)}),
-    ("GET", "/readyz"): (None, {200: ("every active model is loaded", _JSON, Readiness)}),
-    ("GET", "/metrics"): (None, {200: ("Prometheus text exposition", "text/plain", {"type": "string"})}),
+_OBJECT = {"type": "object"}
+_SCORED = {200: ("results in request order", _JSON, ScoreResponse)}
+_OPERATIONS: dict[tuple[str, str], _Operation] = {
+    ("POST", "/score/{model}"): _Operation("score", ScoreRequest, _SCORED),
+    ("POST", "/score/{model}/versions/{version}"): _Operation("scoreVersion", ScoreRequest, _SCORED),
+    ("GET", "/models"): _Operation("listModels", None, {200: ("every model and its active version", _JSON, ModelList)}),
+    ("GET", "/models/{model}"): _Operation("getModel", None, {200: ("the published versions", _JSON, ModelDetail)}),
+    ("GET", "/models/{model}/versions/{version}"): _Operation(
+        "getVersion", None, {200: ("metadata of one version", _JSON, VersionDetail)}),
+    ("GET", "/models/{model}/versions/{version}/schema"): _Operation(
+        "getRecordSchema", None, {200: ("JSON Schema 2020-12 of one record", "application/schema+json", _OBJECT)}),
+    ("GET", "/models/{model}/openapi.json"): _Operation(
+        "getModelDocument", None, {200: ("OpenAPI 3.1 document for scoring the active version", _JSON, _OBJECT)}),
+    ("GET", "/models/{model}/versions/{version}/openapi.json"): _Operation(
+        "getVersionDocument", None, {200: ("OpenAPI 3.1 document for scoring this version", _JSON, _OBJECT)}),
+    ("GET", "/models/{model}/versions/{version}/bundle"): _Operation(
+        "getBundle", None,
+        {200: ("the single-file bundle (octet-stream when Accept asks only for that)",
+               ("application/x-tar", "application/octet-stream"), {"type": "string", "format": "binary"})}),
+    ("GET", "/models/{model}/history"): _Operation(
+        "getHistory", None, {200: ("the trail and its verification", _JSON, History)}),
+    ("POST", "/models/{model}/activate"): _Operation(
+        "activate", ActivateRequest, {200: ("activated and switched", _JSON, Switched)}),
+    ("POST", "/models/{model}/rollback"): _Operation(
+        "rollback", RollbackRequest, {200: ("rolled back and switched", _JSON, Switched)}),
+    ("POST", "/models/{model}/preview"): _Operation(
+        "preview", PreviewRequest, {200: ("the comparison; nothing changes", _JSON, Preview)}),
+    ("GET", "/healthz"): _Operation("checkHealth", None, {200: ("the process answers", _JSON, Alive)}),
+    ("GET", "/readyz"): _Operation("checkReadiness", None, {200: ("every active model is loaded", _JSON, Readiness)}),
+    ("GET", "/metrics"): _Operation(
+        "getMetrics", None, {200: ("Prometheus text exposition", "text/plain", {"type": "string"})}),
+    ("GET", OPENAPI_PATH): _Operation("getServiceDocument", None, {200: ("this document", _JSON, _OBJECT)}),
+    ("GET", "/problems/{kind}"): _Operation(
+        "getProblemType", None, {200: ("what the problem type means and how to fix it", "text/html", {"type": "string"})}),
 }
 
 
@@ -85,7 +111,7 @@ def add_openapi_route(app: FastAPI, max_records: int) -> None:
     """Serve the document at ``OPENAPI_PATH`` (an ordinary route, so it has an access rule too)."""
     document: dict[str, Any] = {}
 
-    @app.get(OPENAPI_PATH, include_in_schema=False)
+    @app.get(OPENAPI_PATH)
     def openapi_document() -> dict[str, Any]:
         """This service's OpenAPI 3.1 description."""
         if not document:
@@ -102,6 +128,11 @@ def build_document(app: FastAPI, max_records: int) -> dict[str, Any]:
     schemas["ScoreRequest"]["properties"]["records"]["maxItems"] = max_records
     document["components"] = {
         "schemas": schemas,
+        "headers": {"RequestId": {
+            "required": True,
+            "description": "the caller's X-Request-ID when valid (printable ASCII, at most 128 characters), else a new one",
+            "schema": {"type": "string", "minLength": 1, "maxLength": MAX_REQUEST_ID_LENGTH},
+        }},
         "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer", "description": "rbfgate token add"}},
     }
     for path, operations in document["paths"].items():
@@ -111,32 +142,42 @@ def build_document(app: FastAPI, max_records: int) -> dict[str, Any]:
 
 
 def _describe(operation: dict[str, Any], method: str, path: str) -> None:
-    body_model, successes = _OPERATIONS[(method, path)]
+    described = _OPERATIONS[(method, path)]
     rule = ACCESS_RULES[(method, path)]
+    operation["operationId"] = described.operation_id
     for parameter in operation.get("parameters", []):
         if parameter["in"] == "path":
             parameter["schema"] = {"type": "string", "minLength": 1, "maxLength": MAX_NAME_LENGTH,
                                    "pattern": NAME_PATTERN}
+    request_id = {REQUEST_ID_HEADER: {"$ref": "#/components/headers/RequestId"}}
     responses: dict[str, Any] = {}
-    for status, (description, media_type, schema) in successes.items():
+    for status, (description, media_type, schema) in described.successes.items():
         if isinstance(schema, type):
             schema = {"$ref": _REF.format(model=schema.__name__)}
-        responses[str(status)] = {"description": description, "content": {media_type: {"schema": schema}}}
+        media_types = (media_type,) if isinstance(media_type, str) else media_type
+        responses[str(status)] = {"description": description, "headers": request_id,
+                                  "content": {media: {"schema": schema} for media in media_types}}
     statuses = set() if rule.public else {401, 403, 404, 503}
-    if body_model is not None:
+    if described.body is not None:
         operation["requestBody"] = {
             "required": True,
-            "content": {_JSON: {"schema": {"$ref": _REF.format(model=body_model.__name__)}}},
+            "content": {_JSON: {"schema": {"$ref": _REF.format(model=described.body.__name__)}}},
         }
         statuses |= set(_BODY_STATUSES)
     if path.endswith(("/activate", "/rollback", "/preview", "/bundle")) or path.startswith("/score/"):
         statuses.add(409)
     if path == "/readyz":
         statuses.add(503)
+    if path.startswith("/problems/"):
+        statuses.add(404)
     problem = {"$ref": _REF.format(model="Problem")}
     for status in sorted(statuses):
-        responses[str(status)] = {"description": _PROBLEM_STATUSES[status],
-                                  "content": {PROBLEM_MEDIA_TYPE: {"schema": problem}}}
+        schema = problem
+        if status == 422 and path.startswith("/score/"):
+            # Every record refused (results and problems) or a wrong shape (plain problem details).
+            schema = {"anyOf": [{"$ref": _REF.format(model=RecordsRefusedProblem.__name__)}, problem]}
+        responses[str(status)] = {"description": _PROBLEM_STATUSES[status], "headers": request_id,
+                                  "content": {PROBLEM_MEDIA_TYPE: {"schema": schema}}}
     operation["responses"] = responses
     # RFC 6750 bearer tokens when the service runs with a tokens file; health routes are always open.
     operation["security"] = [] if rule.public else [{"bearer": []}]

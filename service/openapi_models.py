@@ -14,12 +14,12 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from model_store.manifest import FeatureSpec, FileEntry, KernelSpec
 from model_store.naming import MAX_NAME_LENGTH
-from model_store.refusal import REASONS
+from model_store.refusal import MAX_ID_LENGTH, REASONS
 
 __all__ = [
     "ActivateRequest", "Alive", "DOCUMENTED_MODELS", "History", "ModelDetail", "ModelList", "NAME_PATTERN",
-    "Preview", "PreviewRequest", "Problem", "Readiness", "RollbackRequest", "ScoreRequest", "ScoreResponse",
-    "Switched", "VersionDetail",
+    "Preview", "PreviewRequest", "Problem", "Readiness", "RecordsRefusedProblem", "RollbackRequest", "ScoreRequest",
+    "ScoreResponse", "Switched", "VersionDetail",
 ]
 
 # model_store.naming.check_name; its "no '..'" rule is not expressed (a name with '..' is a 404).
@@ -34,6 +34,7 @@ class _Doc(BaseModel):
 
 
 Label = str | int  # class labels keep their type: JSON strings or integers
+_ID = Field(default=None, description=f"the record's id when it sent one (at most {MAX_ID_LENGTH} characters)")
 
 
 class Problem(BaseModel):
@@ -62,6 +63,7 @@ class NearestSupport(_Doc):
 
 
 class ScoredResult(_Doc):
+    id: str | int | None = _ID
     status: Literal["scored"]
     label: Label
     decision: float | dict[str, float] = Field(description="a number for a binary model, class -> number otherwise")
@@ -70,6 +72,7 @@ class ScoredResult(_Doc):
 
 
 class RefusedResult(_Doc):
+    id: str | int | None = _ID
     status: Literal["refused"]
     problem_count: int = Field(ge=1)
     problems: list[RecordProblem] | None = Field(
@@ -87,6 +90,29 @@ class RefusalGroup(_Doc):
     count: int = Field(ge=1, description="problems in this group")
     records: list[tuple[int, int]] = Field(
         min_length=1, description="runs [first, last] of consecutive record indices (inclusive), in request order")
+
+
+class FlatRecordProblem(RecordProblem):
+    record: int = Field(ge=0, description="index of the record in the request")
+    id: str | int | None = _ID
+
+
+class RecordsRefusedProblem(_Doc):
+    """422 when every record was refused: problem details with every result, the refusal summary and a
+    flat list of the problems given in full (service.refusal_answer bounds its size)."""
+
+    model_config = ConfigDict(extra="allow")
+    type: Literal["/problems/records-refused"]
+    title: str
+    status: Literal[422]
+    detail: str
+    model: str
+    version: str
+    bundle_sha256: str
+    refusals: list[RefusalGroup] = Field(min_length=1, description="each distinct problem once, with its records")
+    summarised: bool = Field(description="true when some result has problems null (past the detail budget)")
+    results: list[RefusedResult]
+    problems: list[FlatRecordProblem] = Field(description="the problems given in full, each with its record index")
 
 
 class ScoreRequest(_Doc):
@@ -197,6 +223,8 @@ class HistoryEntry(_Doc):
     version: str | None
     digest: str | None
     reason: str | None
+    accepted_breaking: list[str] | None = Field(
+        default=None, description="on an activation that broke callers: the breaking changes the operator accepted")
     prev_hash: str
     hash: str
 
@@ -216,6 +244,8 @@ class History(_Doc):
 class ActivateRequest(_Doc):
     version: str = Field(min_length=1, max_length=MAX_NAME_LENGTH, pattern=NAME_PATTERN)
     reason: str = Field(min_length=1, max_length=1000, description=_REASON)
+    accept_breaking: bool = Field(
+        default=False, description="activate even when the candidate would break callers (recorded in the history)")
 
 
 class RollbackRequest(_Doc):
@@ -265,6 +295,6 @@ class Readiness(_Doc):
 
 
 DOCUMENTED_MODELS = [
-    Problem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, ActivateRequest,
+    Problem, RecordsRefusedProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, ActivateRequest,
     RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness,
 ]

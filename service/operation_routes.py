@@ -1,6 +1,6 @@
 """Routes that change or preview the active version (role ``operate``).
 
-    POST /models/{model}/activate   {"version": "...", "reason": "..."}
+    POST /models/{model}/activate   {"version": "...", "reason": "...", "accept_breaking": false}
     POST /models/{model}/rollback   {"reason": "..."}
     POST /models/{model}/preview    {"version": "..."}
 
@@ -8,6 +8,9 @@ Activation and rollback go through the store (the same checks and the same
 history as the CLI, with the token's name as the actor) and answer only after
 this worker has switched, so the caller's next request here is served by the
 new version. Other workers and replicas follow within one poll interval.
+Activation compares the contracts of the active version and the candidate on
+this worker's recently scored records and refuses (409, ``breaking-changes``)
+a candidate that would break callers unless ``accept_breaking`` is true.
 """
 
 from __future__ import annotations
@@ -15,7 +18,7 @@ from __future__ import annotations
 from typing import Any
 
 from fastapi import FastAPI, Request
-from pydantic import BaseModel, ConfigDict, Field, StrictStr, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictStr, ValidationError
 from starlette.concurrency import run_in_threadpool
 
 from model_store.naming import check_name
@@ -33,6 +36,7 @@ class _ActivateBody(BaseModel):
     model_config = ConfigDict(extra="forbid")
     version: StrictStr = Field(min_length=1, max_length=64)
     reason: StrictStr = Field(min_length=1, max_length=_MAX_REASON)
+    accept_breaking: StrictBool = False
 
 
 class _RollbackBody(BaseModel):
@@ -57,7 +61,8 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
 
         def run() -> dict[str, Any]:
             check_name(model, what="model name")
-            entry = services.store.activate(model, body.version, reason=body.reason, actor=actor)
+            entry = services.store.activate(model, body.version, reason=body.reason, actor=actor,
+                                            accept_breaking=body.accept_breaking, recent=services.recent.records(model))
             return _switched(services, model, entry)
 
         return await run_in_threadpool(run)

@@ -9,8 +9,11 @@ nothing). Each body is ``application/problem+json`` with ``type``, ``title``,
 as ``problems`` where a list helps the caller fix the request.
 
 Problem types of our own are relative URI references under ``/problems/``
-(RFC 9457 section 3.1.1 allows relative references); plain HTTP conditions
-use ``about:blank`` with the status phrase as title (section 4.2.1).
+(RFC 9457 section 3.1.1 allows relative references), each answered by a page
+(``service.problem_types``); plain HTTP conditions use ``about:blank`` with
+the status phrase as title (section 4.2.1). Every answer carries
+``X-Request-ID`` (``service.request_ids``); the handler of unexpected errors
+adds it itself, because Starlette runs that handler outside every middleware.
 """
 
 from __future__ import annotations
@@ -26,7 +29,9 @@ from fastapi.exceptions import RequestValidationError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.responses import Response
 
+from model_store.api_document import PROBLEM_MEDIA_TYPE, problem_type_uri
 from model_store.errors import (
+    BreakingChangeError,
     CheckFailedError,
     InputError,
     InvalidNameError,
@@ -35,6 +40,7 @@ from model_store.errors import (
     RbfgateError,
     StoreError,
 )
+from service.request_ids import REQUEST_ID_HEADER, request_id
 
 __all__ = [
     "PROBLEM_MEDIA_TYPE",
@@ -44,8 +50,6 @@ __all__ = [
     "problem_response",
     "validation_problem",
 ]
-
-PROBLEM_MEDIA_TYPE = "application/problem+json"
 
 _log = logging.getLogger("rbfgate.service")
 
@@ -77,7 +81,7 @@ class ServiceProblem(Exception):
         self.headers = dict(headers or {})
 
     def body(self) -> dict[str, Any]:
-        problem_type = "about:blank" if self.kind == "about:blank" else f"/problems/{self.kind}"
+        problem_type = "about:blank" if self.kind == "about:blank" else problem_type_uri(self.kind)
         return {"type": problem_type, "title": self.title, "status": self.status, "detail": self.detail, **self.extra}
 
 
@@ -87,6 +91,7 @@ _ERROR_STATUS: tuple[tuple[type[RbfgateError], int, str, str], ...] = (
     (NotFoundError, 404, "not-found", "No such model or version"),
     (LockTimeoutError, 503, "store-busy", "The store is busy"),
     (StoreError, 503, "store-unavailable", "The store cannot be used"),
+    (BreakingChangeError, 409, "breaking-changes", "The candidate would break callers"),
     (CheckFailedError, 409, "check-failed", "A check refused the request"),
     (InputError, 422, "invalid-request", "The request cannot be carried out as given"),
 )
@@ -97,7 +102,10 @@ def problem_for_error(exc: RbfgateError) -> ServiceProblem:
     for error_class, status, kind, title in _ERROR_STATUS:
         if isinstance(exc, error_class):
             headers = {"Retry-After": "5"} if status == 503 else None
-            return ServiceProblem(status, kind, title, str(exc), extra={"error": type(exc).__name__}, headers=headers)
+            extra: dict[str, Any] = {"error": type(exc).__name__}
+            if isinstance(exc, BreakingChangeError):
+                extra["breaking_changes"] = list(exc.changes)
+            return ServiceProblem(status, kind, title, str(exc), extra=extra, headers=headers)
     # An RbfgateError outside the table is a bug in this table, not the caller's fault.
     _log.error("no HTTP mapping for %s: %s", type(exc).__name__, exc)
     return ServiceProblem(500, "about:blank", "Internal Server Error", "the service failed; the error was logged")
@@ -159,9 +167,11 @@ def validation_problem(errors: list[Mapping[str, Any]]) -> ServiceProblem:
 async def _on_unexpected(request: Request, exc: Exception) -> Response:
     # Reached only by a bug: bad input is refused before it gets here.
     _log.exception("unexpected error on %s %s", request.method, request.url.path)
-    return problem_response(
-        ServiceProblem(500, "about:blank", "Internal Server Error", "the service failed; the error was logged")
-    )
+    chosen = request_id(request.scope)
+    return problem_response(ServiceProblem(
+        500, "about:blank", "Internal Server Error", "the service failed; the error was logged",
+        headers={REQUEST_ID_HEADER: chosen} if chosen else None,
+    ))
 
 
 def _http_detail(request: Request, status: int, detail: Any) -> str:

@@ -54,8 +54,11 @@ class RefusalAnswer:
         return {"refusals": self.groups, "summarised": self.summarised}
 
 
-def summarise_refusals(problems: Mapping[int, Sequence[Problem]]) -> RefusalAnswer:
-    """Build the refused results and the summary from ``problems`` (record index -> its problems)."""
+def summarise_refusals(
+    problems: Mapping[int, Sequence[Problem]], ids: Sequence[Any] | None = None
+) -> RefusalAnswer:
+    """Build the refused results and the summary from ``problems`` (record index -> its problems);
+    ``ids`` (one per record, or None) puts each caller's record id beside the index in ``detailed``."""
     results: dict[int, dict[str, Any]] = {}
     detailed: list[dict[str, Any]] = []
     groups: dict[tuple, dict[str, Any]] = {}
@@ -65,7 +68,8 @@ def summarise_refusals(problems: Mapping[int, Sequence[Problem]]) -> RefusalAnsw
         found = problems[index]
         if len(found) <= budget:
             listed = [problem.to_dict() for problem in found]
-            detailed.extend({"record": index, **item} for item in listed)
+            head = {"record": index} if ids is None or ids[index] is None else {"record": index, "id": ids[index]}
+            detailed.extend({**head, **item} for item in listed)
             budget -= len(found)
         else:
             listed = None

@@ -1,7 +1,7 @@
 """Scoring a request body: shape checks, the refusal policy, the scorer, the response.
 
-    body      {"records": [{feature: number, ...}, ...]}     1 to max_records records
-    results   one per record, in request order:
+    body      {"records": [{feature: number, ..., "id"?: str | int}, ...]}     1 to max_records records
+    results   one per record, in request order, each led by the record's "id" when it sent one:
               {"status": "scored", "label", "decision", "probability", "nearest_support"}
               {"status": "refused", "problem_count", "problems": [{"feature", "value", "reason", "allowed"}] or null}
     refusals  with any refused record: each distinct problem once with its record runs
@@ -89,15 +89,17 @@ def read_records(document: Any, max_records: int) -> list[dict[str, Any]]:
 def score_records(model: LoadedModel, records: list[dict[str, Any]]) -> ScoredBatch:
     """Check ``records`` against the model's features, score the accepted ones, build the results."""
     bundle = model.bundle
-    checked = check_records(bundle.manifest.features, records, from_json)
+    checked = check_records(bundle.manifest.features, records, from_json, ids=True)
     scores = bundle.score(checked.values) if len(checked.accepted) else None
     position = {int(index): row for row, index in enumerate(checked.accepted.tolist())}
     classes = [str(label) for label in bundle.classes]
     scored = _scored_results(scores, classes) if scores is not None else []
-    refusals = summarise_refusals(checked.problems)
-    results = [
-        scored[position[index]] if index in position else refusals.results[index] for index in range(len(records))
-    ]
+    refusals = summarise_refusals(checked.problems, checked.ids)
+    results = []
+    ids = checked.ids or [None] * len(records)
+    for index, record_id in enumerate(ids):
+        result = scored[position[index]] if index in position else refusals.results[index]
+        results.append(result if record_id is None else {"id": record_id, **result})
     return ScoredBatch(results, checked, scores, refusals)
 
 

@@ -6,20 +6,28 @@ from other packages (the HTTP service's ``serve`` and ``token``) register
 through the ``rbfgate.commands`` entry-point group, so this package never
 imports them.
 
-Exit codes: 0 ok, 1 a check refused, 2 bad usage or bad input. Errors are
-one line on stderr, never a traceback.
+Exit codes: 0 ok, 1 a check refused (or a bug), 2 bad usage or bad input.
+Errors are one line on stderr, never a traceback: an exception that is not
+one of ours is a bug, reported as one line naming its class with a request
+to report it (``RBFGATE_DEBUG=1`` adds the traceback). A reader that closes
+the pipe early (``| head``) ends the command quietly with exit 0.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
+import traceback
+from collections.abc import Mapping
 from importlib.metadata import entry_points
 
 from model_store.cli import bundle_commands, demo_command, store_commands
 from model_store.errors import RbfgateError
 
-__all__ = ["build_parser", "main"]
+__all__ = ["DEBUG_ENVIRON", "build_parser", "main"]
+
+DEBUG_ENVIRON = "RBFGATE_DEBUG"  # "1": an unexpected error also prints its traceback
 
 _LOCAL_MODULES = (demo_command, bundle_commands, store_commands)
 
@@ -37,11 +45,21 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def main(argv: list[str] | None = None) -> int:
+def main(argv: list[str] | None = None, environ: Mapping[str, str] | None = None) -> int:
+    """Run one command; ``environ`` (default ``os.environ``) is read for ``RBFGATE_DEBUG``."""
+    environ = os.environ if environ is None else environ
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        return int(args.handler(args) or 0)
+        code = int(args.handler(args) or 0)
+        sys.stdout.flush()  # a reader that went away is noticed here, not at interpreter exit
+        return code
+    except BrokenPipeError:
+        # The reader closed the pipe (`rbfgate history --json | head`): it asked for no more output.
+        # Python flushes stdout again at exit; point it at /dev/null so that flush cannot fail
+        # either (the Python documentation's note on SIGPIPE, in the signal module).
+        _silence_stdout()
+        return 0
     except RbfgateError as exc:
         print(f"rbfgate {args.command}: error: {exc}", file=sys.stderr)
         return exc.exit_code
@@ -54,8 +72,29 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"rbfgate {args.command}: interrupted", file=sys.stderr)
         return 130
-    except BrokenPipeError:
-        return 0
+    except Exception as exc:  # anything else is a bug in rbfgate: one line, and the traceback on request
+        if environ.get(DEBUG_ENVIRON) == "1":
+            traceback.print_exc(file=sys.stderr)
+        print(_bug_line(args.command, exc), file=sys.stderr)
+        return 1
+
+
+def _bug_line(command: str, exc: Exception) -> str:
+    detail = str(exc).splitlines()[0][:200] if str(exc) else ""
+    return (
+        f"rbfgate {command}: internal error {type(exc).__name__}{': ' + detail if detail else ''}; "
+        f"this is a bug in rbfgate: please report it with the command you ran "
+        f"(run it again with {DEBUG_ENVIRON}=1 for the traceback)"
+    )
+
+
+def _silence_stdout() -> None:
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError):  # stdout without a file descriptor (captured by a test harness)
+        pass
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -11,6 +11,7 @@ import json
 import sys
 from pathlib import Path
 
+from model_store.api_document import DEFAULT_MAX_RECORDS, api_document
 from model_store.bundle import load_bundle
 from model_store.errors import InputError
 from model_store.inspection import describe, render_description
@@ -30,7 +31,14 @@ def register(subparsers) -> None:
     _add_score(subparsers)
     inspect = subparsers.add_parser("inspect", help="show a bundle's identity, features, kernel width and metrics")
     inspect.add_argument("bundle", type=Path, help="bundle directory or .tar file")
-    inspect.add_argument("--json", action="store_true", help="print the description as JSON")
+    shown = inspect.add_mutually_exclusive_group()
+    shown.add_argument("--json", action="store_true", help="print the description as JSON")
+    shown.add_argument("--openapi", action="store_true",
+                       help="print the OpenAPI 3.1 document for scoring this bundle, as "
+                       "GET /models/NAME/versions/VERSION/openapi.json serves it")
+    inspect.add_argument("--max-records", type=int, default=DEFAULT_MAX_RECORDS, metavar="N",
+                         help=f"with --openapi: the records-per-request limit of the service (default {DEFAULT_MAX_RECORDS}, "
+                         "as rbfgate serve)")
     inspect.set_defaults(handler=_inspect)
     verify = subparsers.add_parser("verify", help="check a bundle's checksums and replay its golden vectors")
     verify.add_argument("bundle", type=Path, help="bundle directory or .tar file")
@@ -130,7 +138,14 @@ def _score(args) -> int:
 
 
 def _inspect(args) -> int:
-    description = describe(load_bundle(args.bundle))
+    if args.max_records < 1:
+        raise InputError(f"--max-records {args.max_records}: expected 1 or more records per request")
+    bundle = load_bundle(args.bundle)
+    if args.openapi:
+        print(json.dumps(api_document(bundle.manifest, bundle.digest, max_records=args.max_records),
+                         indent=2, ensure_ascii=False))
+        return 0
+    description = describe(bundle)
     if args.json:
         print(json.dumps(description, indent=2, ensure_ascii=False))
     else:

@@ -54,6 +54,10 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
     parser.add_argument("name", metavar="NAME")
     parser.add_argument("version", metavar="VERSION")
     parser.add_argument("--reason", metavar="TEXT", required=True, help="why (kept in the history)")
+    parser.add_argument("--accept-breaking", action="store_true",
+                        help="activate even if the candidate would break callers (the history records what changed)")
+    parser.add_argument("--inputs", metavar="CSV", help="recent inputs: a narrowed range breaks callers only if some "
+                        "of them fall outside it (without inputs, every narrowed range counts as breaking)")
     parser = add("rollback", _rollback, "return to the version that was active before the current one", actor=True)
     parser.add_argument("name", metavar="NAME")
     parser.add_argument("--reason", metavar="TEXT", required=True, help="why (kept in the history)")
@@ -169,8 +173,14 @@ def _versions(args, environ) -> int:
 
 
 def _activate(args, environ) -> int:
-    entry = _store(args, environ).activate(args.name, args.version, reason=args.reason, actor=_actor(args, environ))
+    records, _ = read_preview_inputs(Path(args.inputs)) if args.inputs else ([], [])
+    entry = _store(args, environ).activate(
+        args.name, args.version, reason=args.reason, actor=_actor(args, environ),
+        accept_breaking=args.accept_breaking, recent=records, convert=from_text,
+    )
     print(f"activated {args.name} {entry['version']} (digest {entry['digest']}); history entry seq {entry['seq']}")
+    for change in entry.get("accepted_breaking", []):
+        print(f"accepted breaking change: {change}")
     return 0
 
 
@@ -198,7 +208,8 @@ def _history(args, environ) -> int:
         for entry in entries:
             digest = f"{entry['digest'][:16]}..." if entry["digest"] else "-"
             print(f"seq {entry['seq']}  {entry['time']}  {entry['action']}  {entry['version'] or '-'}  "
-                  f"digest {digest}  by {entry['actor']}  reason: {entry['reason'] or '-'}")
+                  f"digest {digest}  by {entry['actor']}  reason: {entry['reason'] or '-'}"
+                  + "".join(f"  accepted breaking: {change}" for change in entry.get("accepted_breaking", [])))
         if args.verify and problem is None:
             print(f"verified: {count} entries, the hash chain is intact, its last entry matches the active pointer "
                   "and every stored version has its publish entry")

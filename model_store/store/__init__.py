@@ -1,4 +1,4 @@
-"""The model store: immutable published versions, checked activation and rollback, tamper-evident history.
+"""The version store: immutable published versions, checked activation and rollback, tamper-evident history.
 
     from model_store.store import Store, resolve_store_root
     store = Store(resolve_store_root(None, os.environ))

@@ -16,12 +16,22 @@ verify just to log its refusal.
 from __future__ import annotations
 
 import os
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, NoReturn
 
-from model_store.bundle import load_bundle
-from model_store.errors import CheckFailedError, InputError, NotFoundError, SignatureError, VersionConflictError
-from model_store.manifest import SIGNATURE_FILE
+from model_store.bundle import Bundle, load_bundle
+from model_store.errors import (
+    BreakingChangeError,
+    CheckFailedError,
+    InputError,
+    NotFoundError,
+    SignatureError,
+    VersionConflictError,
+)
+from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, read_manifest
+from model_store.refusal import Converter, from_json
+from model_store.store.contract import compare_contracts
 from model_store.naming import check_name
 from model_store.store.durable import atomic_write, fsync_directory
 from model_store.store.history import check_text
@@ -92,15 +102,42 @@ def publish(store: "Store", source: Path, *, actor: str) -> PublishOutcome:
     return PublishOutcome(name, version, digest, already_present=False)
 
 
-def activate(store: "Store", name: str, version: str, *, reason: str, actor: str) -> dict[str, Any]:
-    """Re-verify the stored bundle and make it the active version; refuse (and record it) if it fails."""
+def activate(
+    store: "Store",
+    name: str,
+    version: str,
+    *,
+    reason: str,
+    actor: str,
+    accept_breaking: bool = False,
+    recent: Sequence[Mapping[str, Any]] = (),
+    convert: Converter = from_json,
+) -> dict[str, Any]:
+    """Re-verify the stored bundle and make it the active version; refuse (and record it) if it fails.
+
+    A candidate whose contract would break callers of the active version
+    (``model_store.store.contract``; ``recent`` input records judge narrowed ranges) is refused
+    with ``BreakingChangeError`` unless ``accept_breaking``; then the entry lists what was accepted.
+    """
     check_name(name, what="model name")
     check_name(version, what="model version")
     reason = check_text(reason, what="reason", required=True)
     actor = check_text(actor, what="actor", required=True)
     with store.locked():
         state = _begin(store, name, actor)
-        return _switch(store, state, "activate", version, _stored_digest(store, state, version), reason, actor)
+        digest = _stored_digest(store, state, version)
+
+        def check_contract(candidate: Bundle) -> list[str] | None:
+            breaking = _breaking_changes(store, state, candidate, recent, convert)
+            if breaking and not accept_breaking:
+                listed = "; ".join(breaking)
+                _refuse(store, state, "refused-activate", version, digest, reason, BreakingChangeError(
+                    f"{name} {version} would break callers of the active version: {listed}; tell them, then "
+                    "activate with --accept-breaking (HTTP: \"accept_breaking\": true)", tuple(breaking),
+                ), actor=actor)
+            return breaking or None
+
+        return _switch(store, state, "activate", version, digest, reason, actor, check=check_contract)
 
 
 def rollback(store: "Store", name: str, *, reason: str, actor: str) -> dict[str, Any]:
@@ -195,21 +232,41 @@ def _begin(store: "Store", name: str, actor: str) -> ModelState:
 
 
 def _switch(
-    store: "Store", state: ModelState, action: str, version: str, digest: str, reason: str, actor: str
+    store: "Store", state: ModelState, action: str, version: str, digest: str, reason: str, actor: str,
+    *, check: Callable[[Bundle], list[str] | None] | None = None,
 ) -> dict[str, Any]:
     """Re-verify the stored ``version`` and make it active, recorded as ``action`` ("activate", "rollback").
 
-    If the stored bundle no longer verifies, record "refused-<action>" and raise.
+    If the stored bundle no longer verifies, record "refused-<action>" and raise. ``check``, given
+    the verified bundle, may refuse too; what it returns is recorded as ``accepted_breaking``.
     """
     try:
         bundle = store.load_verified(state.name, version)
     except CheckFailedError as exc:
         _refuse(store, state, f"refused-{action}", version, digest, reason, exc, actor=actor)
+    accepted = check(bundle) if check is not None else None
     [entry] = commit(
-        store.layout, state, [_draft(store, actor, action, version, bundle.digest, reason)],
+        store.layout, state, [_draft(store, actor, action, version, bundle.digest, reason, accepted)],
         activate=(version, bundle.digest),
     )
     return entry
+
+
+def _breaking_changes(store: "Store", state: ModelState, candidate: Bundle, recent, convert) -> list[str]:
+    """The breaking changes from the active version to ``candidate``, one line each.
+
+    Nothing to compare when no version is active or the candidate is the active one. An active
+    version whose manifest cannot be read is not compared either: activating a good version is
+    how an operator replaces a damaged one, and the damage is reported by the service already.
+    """
+    active_version = state.active_version()
+    if active_version is None or active_version == candidate.version:
+        return []
+    try:
+        _, active = read_manifest(store.layout.bundle(state.name, active_version) / MANIFEST_FILE)
+    except (CheckFailedError, InputError):
+        return []
+    return [change.detail for change in compare_contracts(active, candidate.manifest, recent, convert).breaking]
 
 
 def _refuse_unverified(store: "Store", source: Path, exc: CheckFailedError, actor: str) -> NoReturn:
@@ -255,5 +312,9 @@ def _refuse(store, state, action, version, digest, reason, exc: CheckFailedError
     raise exc
 
 
-def _draft(store, actor, action, version, digest, reason) -> dict[str, Any]:
-    return {"time": store.now(), "actor": actor, "action": action, "version": version, "digest": digest, "reason": reason}
+def _draft(store, actor, action, version, digest, reason, accepted_breaking=None) -> dict[str, Any]:
+    draft = {"time": store.now(), "actor": actor, "action": action, "version": version, "digest": digest,
+             "reason": reason}
+    if accepted_breaking:
+        draft["accepted_breaking"] = accepted_breaking
+    return draft

@@ -12,6 +12,10 @@ Every entry holds exactly these fields:
     prev_hash  the previous entry's ``hash``; GENESIS for the first entry
     hash       SHA-256 (FIPS 180-4) of the canonical JSON of the entry without ``hash``
 
+and, only on an activation that the operator let through although it breaks callers:
+
+    accepted_breaking  the breaking changes accepted, one line each (``model_store.store.contract``)
+
 Changing any byte of an entry changes its hash, and the next entry records
 the old one, so an edit anywhere breaks the chain at that point. The active
 pointer records the hash of the last entry, which catches a cut-off tail.
@@ -32,6 +36,7 @@ __all__ = [
     "ACTIONS",
     "FIELDS",
     "GENESIS",
+    "OPTIONAL_FIELDS",
     "HistoryLine",
     "Trail",
     "append_entries",
@@ -44,6 +49,7 @@ __all__ = [
 
 GENESIS = "0" * 64
 FIELDS = ("seq", "time", "actor", "action", "version", "digest", "reason", "prev_hash", "hash")
+OPTIONAL_FIELDS = ("accepted_breaking",)
 ACTIONS = (
     "publish",          # a version was stored
     "add-signature",    # a trusted signature was added beside an already published version
@@ -119,6 +125,7 @@ def make_entry(
     version: str | None,
     digest: str | None,
     reason: str | None,
+    accepted_breaking: list[str] | None = None,
 ) -> dict[str, Any]:
     """The entry that follows ``previous`` (None for the first), with its hash filled in."""
     if action not in ACTIONS:
@@ -133,6 +140,8 @@ def make_entry(
         "reason": reason,
         "prev_hash": GENESIS if previous is None else previous["hash"],
     }
+    if accepted_breaking:
+        entry["accepted_breaking"] = list(accepted_breaking)
     entry["hash"] = entry_hash(entry)
     return entry
 
@@ -177,11 +186,17 @@ def _parse(raw: bytes, number: int, path: Path, model: str) -> dict[str, Any]:
         raise HistoryError(
             f"{where}: not a JSON entry ({exc}); the trail {path} was edited or damaged, restore it from a backup"
         ) from exc
-    if not isinstance(entry, dict) or sorted(entry) != sorted(FIELDS):
+    if not isinstance(entry, dict) or not set(FIELDS) <= set(entry) <= set(FIELDS + OPTIONAL_FIELDS):
         found = sorted(entry) if isinstance(entry, dict) else type(entry).__name__
         raise HistoryError(
-            f"{where}: expected an entry with the fields {list(FIELDS)}, found {found}; the trail was edited"
+            f"{where}: expected an entry with the fields {list(FIELDS)} (and optionally {list(OPTIONAL_FIELDS)}), "
+            f"found {found}; the trail was edited"
         )
+    accepted = entry.get("accepted_breaking")
+    if "accepted_breaking" in entry and not (
+        isinstance(accepted, list) and accepted and all(isinstance(item, str) for item in accepted)
+    ):
+        raise HistoryError(f"{where}: accepted_breaking {accepted!r} is not a list of text; the trail was edited")
     if type(entry["seq"]) is not int or entry["seq"] < 1:
         raise HistoryError(f"{where}: seq {entry['seq']!r} is not a positive integer; the trail was edited")
     for key in ("hash", "prev_hash"):

@@ -6,8 +6,10 @@ refusal policy (``model_store.refusal.check_records``), exactly as the
 service would, so a row may be refused by one version and scored by the
 other. The report counts label flips (with an active-by-candidate class
 table), the largest change in decision value and probability, rows only one
-of the two would refuse, and features whose allowed range changed. Nothing
-in the store changes.
+of the two would refuse, features whose allowed range changed, and the
+contract comparison (``model_store.store.contract``: which changes would break
+callers, and so make ``activate`` refuse without accept-breaking). Nothing in
+the store changes.
 """
 
 from __future__ import annotations
@@ -21,6 +23,7 @@ import numpy as np
 from model_store.bundle import Bundle
 from model_store.errors import NotFoundError
 from model_store.refusal import CheckedBatch, Converter, check_records, from_json
+from model_store.store.contract import ContractComparison, compare_contracts
 from model_store.store.preview_text import render
 
 if TYPE_CHECKING:
@@ -51,6 +54,7 @@ class PreviewReport:
     refused_by_both: int
     examples: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
     range_changes: list[dict[str, Any]] = field(default_factory=list)
+    contract: ContractComparison = field(default_factory=lambda: ContractComparison((), 0))
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -69,6 +73,7 @@ class PreviewReport:
                 "examples": self.examples,
             },
             "allowed_range_changes": self.range_changes,
+            "contract": self.contract.to_dict(),
         }
 
     def render_text(self) -> str:
@@ -131,6 +136,7 @@ def preview(
         refused_by_active_only=0,
         refused_by_both=0,
         range_changes=_range_changes(active, candidate),
+        contract=compare_contracts(active.manifest, candidate.manifest, records or [], convert),
     )
     if same_classes and both:
         report.largest_decision_change = _largest(

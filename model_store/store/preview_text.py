@@ -48,6 +48,7 @@ def render(report: "PreviewReport") -> str:
             lines.append(f"  {change['feature']}: {_range(change['active'])} -> {_range(change['candidate'])}")
     else:
         lines.append("allowed ranges that changed: none")
+    lines.extend(report.contract.render_lines())
     lines.append("nothing was changed in the store")
     return "\n".join(lines)
 

@@ -8,7 +8,7 @@ Changes (publish, activate, rollback, prune, trust) live in
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -25,6 +25,7 @@ from model_store.errors import (
     UnsafeArchiveError,
 )
 from model_store.manifest import SIGNATURE_FILE
+from model_store.refusal import Converter, from_json
 from model_store.store import changes
 from model_store.store.audit import check_active, check_chain, check_head, check_versions
 from model_store.store.history import format_time, read_trail
@@ -190,8 +191,11 @@ class Store:
     def publish(self, bundle_path: Path, *, actor: str) -> PublishOutcome:
         return changes.publish(self, Path(bundle_path), actor=actor)
 
-    def activate(self, name: str, version: str, *, reason: str, actor: str) -> dict[str, Any]:
-        return changes.activate(self, name, version, reason=reason, actor=actor)
+    def activate(self, name: str, version: str, *, reason: str, actor: str, accept_breaking: bool = False,
+                 recent: Sequence[Mapping[str, Any]] = (), convert: Converter = from_json) -> dict[str, Any]:
+        """See ``changes.activate``: refuses a candidate that breaks callers unless ``accept_breaking``."""
+        return changes.activate(self, name, version, reason=reason, actor=actor, accept_breaking=accept_breaking,
+                                recent=recent, convert=convert)
 
     def rollback(self, name: str, *, reason: str, actor: str) -> dict[str, Any]:
         return changes.rollback(self, name, reason=reason, actor=actor)

@@ -5,8 +5,9 @@ Fitting an SVC that keeps 100,000 support vectors takes many minutes here
 its array sizes: loading and self-testing cost the same whatever the fitted
 coefficients are. So the arrays are drawn from a fixed seed and written with
 ``model_store.bundle.write_bundle``, and the golden decisions come from an
-independent numpy implementation of the SVM decision function (from memory:
-scikit-learn's binary ``decision_function(x) = sum_i dual_coef_[0, i] exp(-gamma |x - s_i|^2) + intercept_[0]``,
+independent numpy implementation of the SVM decision function (scikit-learn user guide,
+"Support Vector Machines", section on SVC's mathematical formulation: the binary
+``decision_function(x) = sum_i dual_coef_[0, i] exp(-gamma |x - s_i|^2) + intercept_[0]``,
 positive for ``classes_[1]``), with the squared distance summed directly as
 ``sum_k (x_k - s_ik)^2`` rather than rbfgate's BLAS expansion, so the bundle's
 self-test compares two different computations.

@@ -1,4 +1,4 @@
-"""The results as a Markdown table, a PNG plot and a printed summary, with the targets of issue 6."""
+"""The results as a Markdown table, a PNG plot and a printed summary, with the speed targets (README, Performance)."""
 
 from __future__ import annotations
 

@@ -1,1 +1,1 @@
-"""Library-level tests of the bundle: export, format, integrity, scoring (issue 2)."""
+"""Library-level tests of the bundle: export, format, integrity, scoring."""

@@ -27,7 +27,15 @@ from sklearn.pipeline import Pipeline
 
 from model_store import GOLDEN_TOLERANCE
 
-__all__ = ["DATASETS", "assert_close", "dataset", "probe_rows", "sklearn_decisions", "within_tolerance"]
+__all__ = [
+    "DATASETS",
+    "assert_close",
+    "check_matches_sklearn",
+    "dataset",
+    "probe_rows",
+    "sklearn_decisions",
+    "within_tolerance",
+]
 
 DATASETS = ("iris", "wine", "cancer")
 _LOADERS = {"iris": load_iris, "wine": load_wine, "cancer": load_breast_cancer, "digits": load_digits}
@@ -115,3 +123,28 @@ def assert_close(ours, reference, what: str, tolerance: float = GOLDEN_TOLERANCE
             f"{what}: {np.sum(~ok)} of {ok.size} values off; worst at {worst}: ours {ours[worst]!r}, "
             f"reference {reference[worst]!r}, relative error {error[worst]:.3g} > {tolerance:g}"
         )
+
+
+def check_matches_sklearn(bundle, model, X, *, calibration: str, extra_rows=None) -> np.ndarray:
+    """Score probe rows with the bundle and compare every output with scikit-learn; return the rows.
+
+    ``calibration`` is the method the test fitted ("none" for an uncalibrated model): the bundle
+    must say so, and a calibrated bundle's probabilities must equal scikit-learn's predict_proba.
+    """
+    assert bundle.manifest.calibration.method == calibration
+    rows = probe_rows(X) if extra_rows is None else np.vstack([probe_rows(X), extra_rows])
+    scores = bundle.score(rows)
+    expected_labels = model.predict(rows).tolist()  # scikit-learn predict: the reference labels
+    assert scores.labels.tolist() == expected_labels
+    assert [type(label) for label in scores.labels.tolist()] == [type(label) for label in expected_labels]
+    decision, pairwise = sklearn_decisions(model, rows)  # scikit-learn decision_function, ovr and ovo
+    assert_close(scores.decision, decision, "decision_function")
+    if pairwise is None:
+        assert scores.pairwise_decision is None
+    else:
+        assert_close(scores.pairwise_decision, pairwise, "ovo decision_function")
+    if calibration == "none":
+        assert scores.probabilities is None
+    else:
+        assert_close(scores.probabilities, model.predict_proba(rows), "predict_proba")  # scikit-learn predict_proba
+    return rows

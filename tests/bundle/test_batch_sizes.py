@@ -94,9 +94,9 @@ def test_tiny_chunks_give_the_same_results_as_one_chunk(wine_sigmoid, monkeypatc
 
 
 def test_kernel_block_stays_within_the_bound(cancer_standard, wine_sigmoid, iris_raw):
-    # Issue 2: the kernel block (rows x support vectors, float64) stays bounded (<= 64 MiB)
-    # whatever the batch size; a chunk holds at least the minimum number of rows.
-    assert KERNEL_BLOCK_BYTES <= 64 * 1024 * 1024
+    # README, Exactness, and model_store/scoring.py: the kernel block (rows x support vectors,
+    # float64) stays under 4 MiB whatever the batch size, holding as many rows as fit.
+    assert KERNEL_BLOCK_BYTES == 4 * 1024 * 1024
     for bundle, _, _ in (cancer_standard, wine_sigmoid, iris_raw):
         scorer = bundle.scorer
         block_bytes = scorer.rows_per_chunk * len(scorer.support_vectors) * 8

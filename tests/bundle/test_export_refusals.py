@@ -1,8 +1,9 @@
 """What the exporter refuses, and that a refused or failed export leaves nothing behind.
 
-Reference: issue 2 ("Anything else (another kernel, ensemble=True, other pipeline steps,
-an unfitted model, a file that is not a model) exits 2 and writes nothing") and the
-scikit-learn estimators' own documented parameters. At library level each refusal is a
+Reference: the accepted model shapes (model_store/estimator_parts.py, README "Command reference":
+anything else, such as another kernel, ensemble=True, other pipeline steps, an unfitted model or a
+file that is not a model, exits 2 and writes nothing) and the scikit-learn estimators' own
+documented parameters. At library level each refusal is a
 ModelFileError (exit code 2 in the CLI) raised before anything is written.
 """
 
@@ -132,7 +133,7 @@ def test_reference_with_the_wrong_number_of_features_is_refused(tmp_path):
 
 
 def test_allowed_range_is_the_reference_range_widened_by_the_margin(bundle_factory):
-    # Issue 2: "ranges (min/max widened by margin x range)".
+    # README, Concepts: the allowed range is the reference min/max widened by margin x range.
     X, y = _iris()
     bundle = bundle_factory(SVC().fit(X, y), X, margin=0.1)
     low, high = X.min(axis=0), X.max(axis=0)

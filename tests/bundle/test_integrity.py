@@ -1,8 +1,9 @@
 """SHA-256, the bundle digest, and what happens when a bundle's bytes change.
 
-References: FIPS 180-4 (Secure Hash Standard) and the NIST example values for SHA-256
-("abc" and the 448-bit two-block message; the one-million-'a' value is from FIPS 180-2
-Appendix B.3, from memory). The canonical manifest form is the project's own definition
+References: FIPS 180-4 (Secure Hash Standard) for the algorithm; the SHA-256 examples of
+FIPS 180-2 (2002), Appendix B: B.1 "abc" (one block), B.2 the 448-bit two-block message and
+B.3 one million repetitions of "a" (FIPS 180-4 moved these examples to NIST's separate
+"Examples with Intermediate Values" document, same values). The canonical manifest form is the project's own definition
 (model_store.digest): keys sorted, separators "," and ":", UTF-8, no NaN.
 
 Decided behaviour for an edited manifest (it has no checksum of its own; its SHA-256 is
@@ -35,12 +36,12 @@ ARRAYS = ("support_vectors.npy", "dual_coef.npy", "reference_quantiles.npy")
 
 
 def test_sha256_of_abc_is_the_fips_180_4_test_vector():
-    # FIPS 180-4 / NIST example: SHA-256("abc").
+    # FIPS 180-2 Appendix B.1: SHA-256("abc").
     assert sha256_bytes(b"abc") == "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
 
 
 def test_sha256_of_the_two_block_message_is_the_nist_test_vector():
-    # NIST example for SHA-256, 448-bit message (padding spills into a second block).
+    # FIPS 180-2 Appendix B.2: the 448-bit message (padding spills into a second block).
     message = b"abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq"
     assert sha256_bytes(message) == "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1"
 
@@ -51,7 +52,7 @@ def test_sha256_file_matches_the_test_vectors(tmp_path):
     assert sha256_file(small) == "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
     million = tmp_path / "million-a"
     million.write_bytes(b"a" * 1_000_000)
-    # FIPS 180-2 Appendix B.3 (from memory): one million repetitions of "a".
+    # FIPS 180-2 Appendix B.3: one million repetitions of "a".
     assert sha256_file(million) == "cdc76e5c9914fb9281a1c7e284d73e67f1809a48a497200e046d39ccc7112cd0"
 
 

@@ -1,6 +1,6 @@
 """A malformed manifest or array is refused with BundleFormatError naming the field or file.
 
-Reference: the bundle format of issue 2 (a JSON manifest plus float64 .npy arrays listed
+Reference: the bundle format in README.md, "Bundle format" (a JSON manifest plus float64 .npy arrays listed
 with SHA-256, dtype and shape) and RFC 8259 (JSON has no NaN or Infinity). Each test
 edits one thing in a copy of a good bundle; checksums of replaced arrays are updated so
 that the format check, not the integrity check, is what answers.

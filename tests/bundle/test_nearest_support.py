@@ -4,7 +4,7 @@ Reference: a plain numpy loop over the support vectors in the SVC's input space 
 scikit-learn scaler's ``transform``), Euclidean distance sqrt(sum (z - s)^2), first
 minimum on ties; quantiles with numpy's default 'linear' method, which is definition 7
 of R. J. Hyndman and Y. Fan, "Sample quantiles in statistical packages", The American
-Statistician 50(4), 1996 (from memory).
+Statistician 50(4), 1996, as the numpy.quantile documentation states.
 """
 
 from __future__ import annotations

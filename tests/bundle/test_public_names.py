@@ -51,7 +51,7 @@ def test_public_names_are_sorted_unique_and_exist(module_name):
 
 
 def test_package_exports_the_pinned_api():
-    # Issue 2 pins: from model_store import load_bundle; bundle.score(X) -> Scores.
+    # README, Python API: from model_store import load_bundle; bundle.score(X) -> Scores.
     for name in ("load_bundle", "Bundle", "Scores", "GOLDEN_TOLERANCE", "UnsafeArchiveError", "BundleFormatError"):
         assert name in model_store.__all__
     assert model_store.GOLDEN_TOLERANCE == 1e-9

@@ -1,6 +1,7 @@
 """The serving path loads and scores a bundle without scikit-learn, joblib or unpickling.
 
-Issue 2: "the serving path never imports scikit-learn, joblib or pickle". numpy itself
+The design (DEVELOPERS.md, Layout; README, Python API): the serving path never imports
+scikit-learn or joblib and never unpickles anything. numpy itself
 imports the standard-library ``pickle`` module at import time (numpy.lib uses it for
 object arrays), so ``'pickle' in sys.modules`` is true for every numpy program and is not
 the criterion. What matters is that nothing is ever *unpickled*: the check replaces
@@ -48,10 +49,13 @@ _SERVING_SCRIPT = textwrap.dedent(
         rows = np.asarray(bundle.manifest.golden.inputs)
         scores = bundle.score(rows)
         assert len(scores.labels) == len(rows)
+        named = bundle.score({name: rows[:, index] for index, name in enumerate(bundle.feature_names)})
+        assert named.labels.tolist() == scores.labels.tolist()
 
-    # scipy too: like scikit-learn and joblib it is in the 'train' extra only.
+    # scipy too: like scikit-learn and joblib it is in the 'train' extra only; pandas is never needed,
+    # named columns are recognised without it (model_store/columns.py).
     forbidden = sorted(name for name in sys.modules
-                       if name.split(".")[0] in ("sklearn", "joblib", "scipy")
+                       if name.split(".")[0] in ("sklearn", "joblib", "scipy", "pandas")
                        or name in ("model_store.exporter", "model_store.estimator_parts", "model_store.trainer"))
     print("FORBIDDEN", forbidden)
     print("UNPICKLE CALLS", len(calls))

@@ -17,17 +17,21 @@ Datasets, all shipped with scikit-learn (see tests/bundle/reference.py):
 
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 import pytest
+from conftest import export_model  # tests/conftest.py
 from sklearn.calibration import CalibratedClassifierCV
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import MaxAbsScaler, MinMaxScaler, RobustScaler, StandardScaler
 from sklearn.svm import SVC, NuSVC
 from sklearn.utils.multiclass import _ovr_decision_function
 
+from model_store.errors import ModelFileError
 from model_store.scoring import Scorer
 
-from .reference import DATASETS, assert_close, dataset, probe_rows, sklearn_decisions
+from .reference import DATASETS, check_matches_sklearn, dataset, probe_rows
 
 SCALERS = {
     "none": lambda: None,
@@ -45,26 +49,6 @@ def _with_scaler(scaler, classifier):
     return classifier if scaler is None else make_pipeline(scaler, classifier)
 
 
-def check_matches_sklearn(bundle, model, X, *, extra_rows=None) -> np.ndarray:
-    """Score probe rows with the bundle and compare every output with scikit-learn; return the rows."""
-    rows = probe_rows(X) if extra_rows is None else np.vstack([probe_rows(X), extra_rows])
-    scores = bundle.score(rows)
-    expected_labels = model.predict(rows).tolist()  # scikit-learn predict: the reference labels
-    assert scores.labels.tolist() == expected_labels
-    assert [type(label) for label in scores.labels.tolist()] == [type(label) for label in expected_labels]
-    decision, pairwise = sklearn_decisions(model, rows)  # scikit-learn decision_function, ovr and ovo
-    assert_close(scores.decision, decision, "decision_function")
-    if pairwise is None:
-        assert scores.pairwise_decision is None
-    else:
-        assert_close(scores.pairwise_decision, pairwise, "ovo decision_function")
-    if hasattr(model, "predict_proba") and bundle.manifest.is_calibrated:
-        assert_close(scores.probabilities, model.predict_proba(rows), "predict_proba")  # scikit-learn predict_proba
-    else:
-        assert scores.probabilities is None
-    return rows
-
-
 @pytest.mark.parametrize("scaler", SCALERS)
 @pytest.mark.parametrize("name", DATASETS)
 def test_each_scaler_matches_sklearn(name, scaler, bundle_factory):
@@ -72,7 +56,7 @@ def test_each_scaler_matches_sklearn(name, scaler, bundle_factory):
     model = _with_scaler(SCALERS[scaler](), SVC(C=2.0)).fit(X, y)
     bundle = bundle_factory(model, X, y=y)
     assert bundle.manifest.scaler.kind == scaler.split("-")[0]
-    check_matches_sklearn(bundle, model, X)
+    check_matches_sklearn(bundle, model, X, calibration="none")
 
 
 @pytest.mark.parametrize("placement", ["outside-pipeline", "last-pipeline-step"])
@@ -86,8 +70,7 @@ def test_each_calibration_matches_sklearn(name, method, placement, bundle_factor
         model = make_pipeline(StandardScaler(), CalibratedClassifierCV(SVC(C=2.0), method=method, ensemble=False))
     model.fit(X, y)
     bundle = bundle_factory(model, X, y=y)
-    assert bundle.manifest.calibration.method == method
-    check_matches_sklearn(bundle, model, X)
+    check_matches_sklearn(bundle, model, X, calibration=method)
 
 
 @pytest.mark.parametrize(("name", "method"), [("iris", "sigmoid"), ("wine", "isotonic"), ("cancer", "temperature")])
@@ -99,7 +82,7 @@ def test_prefit_model_calibrated_through_frozen_estimator_matches_sklearn(name, 
     model = CalibratedClassifierCV(frozen.FrozenEstimator(prefit), method=method).fit(X[~fit_rows], y[~fit_rows])
     assert len(model.calibrated_classifiers_) == 1  # a frozen estimator is calibrated once (ensemble="auto")
     bundle = bundle_factory(model, X, y=y)
-    check_matches_sklearn(bundle, model, X)
+    check_matches_sklearn(bundle, model, X, calibration=method)
 
 
 @pytest.mark.parametrize("calibrated", [False, True], ids=["uncalibrated", "sigmoid"])
@@ -112,7 +95,7 @@ def test_nusvc_matches_sklearn(name, calibrated, bundle_factory):
     model.fit(X, y)
     bundle = bundle_factory(model, X, y=y)
     assert bundle.manifest.classifier.estimator == "NuSVC"
-    check_matches_sklearn(bundle, model, X)
+    check_matches_sklearn(bundle, model, X, calibration="sigmoid" if calibrated else "none")
 
 
 LABELS = {
@@ -133,7 +116,7 @@ def test_int_and_string_labels_match_sklearn(name, labels, bundle_factory):
     model = make_pipeline(StandardScaler(), SVC(C=2.0)).fit(X, target)
     bundle = bundle_factory(model, X, y=target)
     assert bundle.classes == model.classes_.tolist()  # scikit-learn's sorted classes_, same Python type
-    check_matches_sklearn(bundle, model, X)
+    check_matches_sklearn(bundle, model, X, calibration="none")
 
 
 @pytest.mark.parametrize("name", ["iris", "wine"])
@@ -144,7 +127,7 @@ def test_break_ties_matches_sklearn(name, bundle_factory):
     # Mixtures of the three class means land near where the pairwise votes go round in a circle.
     means = np.array([X[y == label].mean(axis=0) for label in np.unique(y)])
     mixtures = np.random.default_rng(7).dirichlet([1.0, 1.0, 1.0], size=500) @ means
-    rows = check_matches_sklearn(bundle, model, X, extra_rows=mixtures)
+    rows = check_matches_sklearn(bundle, model, X, calibration="none", extra_rows=mixtures)
     # The check only means something if the tie rule decides some rows: scikit-learn's
     # libsvm vote (break_ties=False) answers differently there.
     plain = make_pipeline(StandardScaler(), SVC(C=2.0)).fit(X, y)
@@ -163,7 +146,7 @@ def test_ovo_decision_shape_matches_sklearn(name, calibration, bundle_factory):
     model.fit(X, y)
     bundle = bundle_factory(model, X, y=y)
     assert bundle.manifest.classifier.decision_function_shape == "ovo"
-    check_matches_sklearn(bundle, model, X)
+    check_matches_sklearn(bundle, model, X, calibration=calibration)
 
 
 @pytest.mark.parametrize("method", ["sigmoid", "isotonic"])
@@ -173,7 +156,7 @@ def test_four_class_ovo_calibration_matches_sklearn(method, bundle_factory):
     X, y = dataset("digits")
     model = CalibratedClassifierCV(SVC(decision_function_shape="ovo"), method=method, ensemble=False).fit(X, y)
     bundle = bundle_factory(model, X, y=y)
-    check_matches_sklearn(bundle, model, X)
+    check_matches_sklearn(bundle, model, X, calibration=method)
 
 
 @pytest.mark.parametrize(
@@ -186,7 +169,7 @@ def test_class_weight_matches_sklearn(name, class_weight, bundle_factory):
         y = y + 1  # the dict above names classes 1, 2, 3
     model = make_pipeline(StandardScaler(), SVC(C=2.0, class_weight=class_weight)).fit(X, y)
     bundle = bundle_factory(model, X, y=y)
-    check_matches_sklearn(bundle, model, X)
+    check_matches_sklearn(bundle, model, X, calibration="none")
 
 
 @pytest.mark.parametrize(("name", "gamma"), [("iris", "auto"), ("wine", 0.05), ("cancer", "scale")])
@@ -198,7 +181,7 @@ def test_gamma_setting_is_resolved_like_sklearn(name, gamma, bundle_factory):
     # scikit-learn SVC documentation: 'scale' is 1 / (n_features * X.var()), 'auto' is 1 / n_features.
     expected = {"auto": 1.0 / Z.shape[1], "scale": 1.0 / (Z.shape[1] * Z.var())}.get(gamma, gamma)
     assert bundle.manifest.kernel.gamma == pytest.approx(expected, rel=1e-12)
-    check_matches_sklearn(bundle, model, X)
+    check_matches_sklearn(bundle, model, X, calibration="none")
 
 
 @pytest.mark.filterwarnings("ignore:The `probability` parameter was deprecated:FutureWarning")
@@ -216,16 +199,117 @@ def test_probability_svc_without_calibrator_keeps_libsvm_labels(bundle_factory):
     assert scores.probabilities is None
 
 
+@pytest.mark.parametrize("estimator", [SVC, NuSVC])
+def test_model_that_never_set_probability_gets_no_probability_note(estimator, bundle_factory):
+    # scikit-learn 1.9 deprecates `probability`; its default is the string "deprecated", not True.
+    X, y = dataset("iris")
+    model = make_pipeline(StandardScaler(), estimator()).fit(X, y)
+    assert model[-1].probability is not True
+    bundle = bundle_factory(model, X, y=y)
+    assert not any("probability" in note for note in bundle.manifest.training["notes"])
+
+
+BINARY_LABELS = {"int": lambda y: y, "int-offset": lambda y: y * 2 + 1,
+                 "str": lambda y: np.array(["benign", "malignant"])[y]}
+MULTICLASS_LABELS = {"int": lambda y: y, "int-offset": lambda y: y * 10 - 7,
+                     "str": lambda y: np.array(["low", "mid", "high"])[y]}
+CALIBRATED_LABEL_CASES = [(method, labels) for method in METHODS for labels in ("int", "int-offset", "str")
+                          if (method, labels) != ("temperature", "int-offset")]  # refused, see below
+
+
+@pytest.mark.parametrize(("method", "labels"), CALIBRATED_LABEL_CASES)
+@pytest.mark.parametrize("name", ["cancer", "wine"])
+def test_each_calibration_with_int_and_string_labels_matches_sklearn(name, method, labels, bundle_factory):
+    # scikit-learn 1.9's temperature calibrator fits its SVC on encoded string labels (classes_
+    # 0, 1, 2); the bundle must still answer in the calibrator's own classes_.
+    X, y = dataset(name)
+    target = (BINARY_LABELS if name == "cancer" else MULTICLASS_LABELS)[labels](y)
+    model = CalibratedClassifierCV(make_pipeline(StandardScaler(), SVC(C=2.0)), method=method, ensemble=False)
+    model.fit(X, target)
+    bundle = bundle_factory(model, X, y=target)
+    assert bundle.classes == model.classes_.tolist()
+    check_matches_sklearn(bundle, model, X, calibration=method)
+
+
+@pytest.mark.parametrize("name", ["cancer", "wine"])
+def test_temperature_calibration_with_integer_labels_other_than_0_to_k_is_refused(name, tmp_path):
+    # scikit-learn 1.9 passes integer labels to the temperature's multinomial loss as class indices
+    # (sklearn/calibration.py, _TemperatureScaling.fit): labels such as -7, 3, 13 index past the
+    # logits, so the fitted temperature is not a function of the data (its fit reads undefined
+    # memory). The model is built in the state such a fit leaves, from a sound fit on 0 .. k-1 with
+    # the labels renamed, so the test does not depend on what that memory holds.
+    X, y = dataset(name)
+    target = (BINARY_LABELS if name == "cancer" else MULTICLASS_LABELS)["int-offset"](y)
+    model = CalibratedClassifierCV(make_pipeline(StandardScaler(), SVC(C=2.0)), method="temperature", ensemble=False)
+    model.fit(X, y)
+    renamed = np.unique(target)
+    model.classes_ = renamed
+    model.calibrated_classifiers_[0].classes = renamed
+    model.calibrated_classifiers_[0].estimator[-1].classes_ = renamed  # not encoded: integers are kept
+    with pytest.raises(ModelFileError, match=r"refit with labels \[0, 1"):
+        export_model(model, X, tmp_path / "bundle", y=target)
+    assert not (tmp_path / "bundle").exists()
+
+
 def test_self_test_passes_on_every_fixture_bundle(iris_raw, cancer_standard, wine_sigmoid):
     # The golden vectors were recorded from scikit-learn at export; replaying them must agree.
-    for bundle, _, _ in (iris_raw, cancer_standard, wine_sigmoid):
+    # README, Concepts: 40 golden rows, 32 of them reference rows (each fixture has more than 32).
+    for bundle, _, X in (iris_raw, cancer_standard, wine_sigmoid):
         bundle.self_test()
-        assert len(bundle.manifest.golden.inputs) >= 8
+        inputs = np.asarray(bundle.manifest.golden.inputs)
+        assert inputs.shape == (40, X.shape[1])
+        reference_rows = {tuple(row) for row in X.tolist()}
+        assert sum(tuple(row) in reference_rows for row in inputs.tolist()) == 32
 
 
 # -- tie rules, on decisions that are exactly 0 ---------------------------------------------------------
-# Far from every support vector the kernel underflows to 0, so the pairwise decisions equal
-# the intercepts exactly; hand-set intercepts then put rows exactly on the ties.
+# Far from every support vector the RBF kernel underflows to exactly 0 (exp(-gamma d^2) with
+# gamma d^2 > 746 is below the smallest float64), so every pairwise decision equals its intercept.
+# Hand-set intercepts on a fitted SVC then put a far row exactly on a tie, and scikit-learn's own
+# predict (libsvm's vote) is the reference for what the bundle must answer.
+
+FAR_ROW = np.full((1, 4), 1e6)  # iris has four features; ~1e12 squared distance from every row
+
+
+def _svc_with_intercepts(y_select, intercepts):
+    """An SVC fitted on iris (the classes in ``y_select``) whose intercepts are replaced."""
+    X, y = dataset("iris")
+    keep = np.isin(y, y_select)
+    svc = SVC(C=1.0, gamma=0.5).fit(X[keep], y[keep])
+    libsvm = np.asarray(intercepts, dtype=float)
+    # scikit-learn keeps libsvm's intercepts in _intercept_ (what predict and decision_function
+    # pass to libsvm) and exposes intercept_, negated for two classes (sklearn/svm/_base.py, fit).
+    svc._intercept_ = libsvm.copy()
+    svc.intercept_ = -libsvm if len(y_select) == 2 else libsvm.copy()
+    return svc, X[keep], y[keep]
+
+
+def test_binary_decision_exactly_zero_gives_the_label_scikit_learn_predicts(bundle_factory):
+    svc, X, y = _svc_with_intercepts([0, 1], [0.0])
+    assert svc.decision_function(FAR_ROW)[0] == 0.0  # the tie is real in scikit-learn
+    bundle = bundle_factory(svc, X, y=y)
+    scores = bundle.score(FAR_ROW)
+    assert scores.decision[0] == 0.0
+    assert scores.labels.tolist() == svc.predict(FAR_ROW).tolist()
+
+
+@pytest.mark.parametrize(
+    "intercepts",
+    [[0.0, 0.0, 0.0], [1.0, -1.0, 1.0], [-1.0, 1.0, -1.0], [0.0, 1.0, 0.0], [1.0, 0.0, -1.0], [-1.0, 0.0, 0.0]],
+    ids=["all-zero", "cycle", "reverse-cycle", "zero-ties", "one-zero", "two-zeros"],
+)
+def test_multiclass_vote_on_ties_gives_the_label_scikit_learn_predicts(intercepts, bundle_factory):
+    # Equal votes (a cycle) and pairwise decisions of exactly 0 are both decided by libsvm's rules;
+    # the pairs are (0, 1), (0, 2), (1, 2).
+    svc, X, y = _svc_with_intercepts([0, 1, 2], intercepts)
+    ovo = copy.copy(svc)
+    ovo.decision_function_shape = "ovo"
+    assert ovo.decision_function(FAR_ROW).tolist() == [intercepts]  # exact ties in scikit-learn itself
+    bundle = bundle_factory(svc, X, y=y)
+    scores = bundle.score(FAR_ROW)
+    assert scores.pairwise_decision.tolist() == [intercepts]
+    assert scores.labels.tolist() == svc.predict(FAR_ROW).tolist()
+    assert np.array_equal(scores.decision, svc.decision_function(FAR_ROW))
 
 
 def _far_scorer(intercepts):
@@ -247,26 +331,6 @@ def _far_scorer(intercepts):
 
 
 FAR = np.array([[1e6]])
-
-
-def test_binary_decision_exactly_zero_gives_the_second_class():
-    # libsvm (svm.cpp, svm_predict_values) votes class i only when its value is > 0; scikit-learn's
-    # binary decision is minus libsvm's, so a decision of exactly 0 predicts classes_[1] (from memory).
-    scores = _far_scorer([0.0]).score(FAR)
-    assert scores.decision[0] == 0.0
-    assert scores.label_index[0] == 1
-
-
-@pytest.mark.parametrize(
-    ("intercepts", "winner"),
-    [([0.0, 0.0, 0.0], 2), ([1.0, -1.0, 1.0], 0), ([-1.0, 1.0, -1.0], 0), ([0.0, 1.0, 0.0], 0)],
-    ids=["all-zero", "cycle", "reverse-cycle", "zero-ties"],
-)
-def test_multiclass_vote_follows_libsvm_on_ties(intercepts, winner):
-    # libsvm: pair (i, j) votes i when its value is > 0, else j; the most votes wins and
-    # equal votes go to the lowest class index (from memory of svm.cpp svm_predict_values).
-    # all-zero: every pair votes j, class 2 has two votes; cycle: 1-1-1, lowest index 0.
-    assert _far_scorer(intercepts).score(FAR).label_index[0] == winner
 
 
 def test_ovr_decision_equals_scikit_learns_transformation_on_exact_zeros():

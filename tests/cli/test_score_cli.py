@@ -244,3 +244,16 @@ def test_pack_writes_the_single_file_form_with_the_same_digest(tmp_path, iris_ca
     assert packed.score(X).labels.tolist() == bundle.score(X).labels.tolist()
     assert main(["pack", bundle.source, "--out", str(out)]) == 2  # never overwrites
     assert "already exists" in capsys.readouterr().err
+
+
+def test_score_matches_csv_columns_by_name_in_any_order(tmp_path, iris_calibrated):
+    # The same rule as Bundle.score on a DataFrame: features by header name, extra columns ignored.
+    bundle, model, X = iris_calibrated
+    order = [2, 0, 3, 1]
+    header = ["note", *[FEATURES[i] for i in order]]
+    source = _write(tmp_path / "in.csv", header, [["x", *row] for row in X[:, order].tolist()])
+    assert main(["score", bundle.source, str(source), "--out", str(tmp_path / "out.csv")]) == 0
+    rows = _read(tmp_path / "out.csv")
+    assert [row["label"] for row in rows] == model.predict(X).tolist()  # scikit-learn on the fitted order
+    probabilities = np.array([[float(row[f"probability[{c}]"]) for c in bundle.classes] for row in rows])
+    np.testing.assert_allclose(probabilities, model.predict_proba(X), rtol=0, atol=1e-9)

@@ -6,7 +6,19 @@ import csv
 
 import numpy as np
 import pytest
-from sklearn.model_selection import train_test_split
+from sklearn.calibration import CalibratedClassifierCV
+from sklearn.metrics import (
+    accuracy_score,
+    balanced_accuracy_score,
+    brier_score_loss,
+    confusion_matrix,
+    f1_score,
+    log_loss,
+)
+from sklearn.model_selection import StratifiedKFold, train_test_split
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import StandardScaler
+from sklearn.svm import SVC
 
 from model_store import load_bundle
 from model_store.cli import main
@@ -42,14 +54,41 @@ def test_train_with_given_width_and_c_records_holdout_metrics(tmp_path, demo_csv
     assert manifest.calibration.method == "isotonic"
 
 
-def test_train_holdout_accuracy_matches_an_independent_recomputation(tmp_path, demo_csv):
-    """The holdout is the stratified split scikit-learn makes with the same seed; score it ourselves."""
-    assert _train(demo_csv, tmp_path / "b", "--gamma", "0.2", "--C", "5", "--calibration", "none", "--seed", "4") == 0
-    bundle = load_bundle(tmp_path / "b")
+@pytest.mark.parametrize("calibration", ["none", "sigmoid"])
+def test_train_holdout_metrics_equal_sklearn_metrics_of_the_same_fit(tmp_path, demo_csv, calibration):
+    """Reference: the same model refitted with scikit-learn alone (the stratified split and the
+    calibration folds made with the same seed), measured with sklearn.metrics on the holdout."""
+    args = ("--gamma", "0.2", "--C", "5", "--calibration", calibration, "--seed", "4")
+    assert _train(demo_csv, tmp_path / "b", *args) == 0
+    recorded = load_bundle(tmp_path / "b").manifest.training["holdout_metrics"]
+
     values, labels = generate(300, seed=3)
-    _, X_test, _, y_test = train_test_split(values, np.asarray(labels), test_size=0.25, stratify=labels, random_state=4)
-    expected = float(np.mean(bundle.score(X_test).labels == y_test))
-    assert bundle.manifest.training["holdout_metrics"]["accuracy"] == pytest.approx(expected, abs=1e-12)
+    labels = np.asarray(labels)
+    X_train, X_test, y_train, y_test = train_test_split(values, labels, test_size=0.25, stratify=labels, random_state=4)
+    model = make_pipeline(StandardScaler(), SVC(C=5.0, gamma=0.2))
+    if calibration != "none":
+        # rbfgate train's folds: stratified, shuffled with the seed, min(5, rows of the smallest class).
+        n_folds = min(5, int(np.unique(y_train, return_counts=True)[1].min()))
+        folds = StratifiedKFold(n_splits=n_folds, shuffle=True, random_state=4)
+        model = CalibratedClassifierCV(model, method=calibration, ensemble=False, cv=folds)
+    model.fit(X_train, y_train)
+    predicted = model.predict(X_test)
+    classes = model.classes_.tolist()
+
+    assert recorded["rows"] == len(y_test)
+    assert recorded["accuracy"] == pytest.approx(accuracy_score(y_test, predicted), abs=1e-12)
+    assert recorded["balanced_accuracy"] == pytest.approx(balanced_accuracy_score(y_test, predicted), abs=1e-12)
+    assert recorded["macro_f1"] == pytest.approx(f1_score(y_test, predicted, average="macro"), abs=1e-12)
+    assert recorded["confusion_matrix"]["labels"] == classes
+    assert recorded["confusion_matrix"]["counts"] == confusion_matrix(y_test, predicted, labels=classes).tolist()
+    if calibration == "none":
+        assert "log_loss" not in recorded and "brier_score" not in recorded
+    else:
+        probabilities = model.predict_proba(X_test)
+        assert recorded["log_loss"] == pytest.approx(log_loss(y_test, probabilities, labels=classes), rel=1e-9)
+        # Brier (1950): summed over classes, i.e. scikit-learn's multiclass loss without the 1/2.
+        brier = brier_score_loss(y_test, probabilities, labels=classes, scale_by_half=False)
+        assert recorded["brier_score"] == pytest.approx(brier, rel=1e-9)
 
 
 def test_train_searches_a_grid_when_width_and_c_are_not_given(tmp_path, demo_csv):

@@ -1,7 +1,7 @@
 """deploy/publish-bundle.sh, the one-shot job of compose.yaml and kubernetes/publish-job.yaml.
 
 Run here with /bin/sh against a store in a temporary directory, as the tools image runs it.
-What it must do is the store's own contract (README, "The model store"): publish, then activate
+What it must do is the store's own contract (README, "The version store"): publish, then activate
 with a reason; the history records each change once, so running the job again (a Job retried
 by Kubernetes, `docker compose up` a second time) must add nothing.
 """

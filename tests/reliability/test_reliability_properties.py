@@ -21,6 +21,11 @@ its corners). References:
   holds with a factor 100 to spare. Probabilities agree within the golden tolerance 1e-9 (a
   calibrator can steepen differences: isotonic maps are piecewise linear with any slope).
 
+Models are drawn whatever their conditioning. A model whose own rounding bound (``_rounding_bound``,
+computed from scikit-learn's fitted arrays) exceeds a tenth of the tolerance may be refused at export
+(``GoldenMismatchError``, no bundle left behind); a refusal of any other model fails the test, and
+every exported bundle must match scikit-learn.
+
 Labels are compared exactly except on rows within 1e-9 (sklearn) or 1e-12 (batching) of a tie
 between the two best classes, where the last bits decide and either answer is right; such rows
 are measure-zero events for random inputs (common practice).
@@ -36,7 +41,7 @@ from pathlib import Path
 import numpy as np
 from conftest import export_model  # tests/conftest.py
 from http_api.reference import assert_close, sklearn_reference
-from hypothesis import HealthCheck, given, note, reject, settings
+from hypothesis import HealthCheck, given, note, settings
 from hypothesis import strategies as st
 from sklearn.calibration import CalibratedClassifierCV
 from sklearn.pipeline import make_pipeline
@@ -67,12 +72,11 @@ def fitted_models(draw):
     scaler = draw(st.sampled_from(sorted(_SCALERS)))
     calibration = draw(st.sampled_from([None, "sigmoid", "isotonic", "temperature"]))
     estimator = draw(st.sampled_from(["SVC", "NuSVC"]))
-    # scikit-learn 1.9.1 cannot fit temperature scaling with string labels (its log loss then
-    # compares the encoded integers with the string classes), so that pair is not drawn.
-    string_labels = draw(st.booleans()) if calibration != "temperature" else False
+    string_labels = draw(st.booleans())
 
     note(f"model: seed={seed} classes={n_classes} features={n_features} per_class={per_class} C={C:.4g} "
-         f"gamma={gamma:.4g} scaler={scaler} calibration={calibration} estimator={estimator}")
+         f"gamma={gamma:.4g} scaler={scaler} calibration={calibration} estimator={estimator} "
+         f"string_labels={string_labels}")
     rng = np.random.default_rng(seed)
     magnitude = 10 ** rng.uniform(-2, 3, size=n_features)  # features on very different scales
     offset = rng.normal(0, 5, size=n_features) * magnitude
@@ -84,7 +88,10 @@ def fitted_models(draw):
     centers = rng.normal(0, 2, size=(n_classes, n_features))
     y_index = np.repeat(np.arange(n_classes), per_class)
     X = (centers[y_index] + rng.normal(0, 1, size=(len(y_index), n_features))) * magnitude + offset
-    names = np.array(["alpha", "beta", "gamma", "delta"][:n_classes]) if string_labels else np.arange(n_classes) * 3
+    # Integer labels 0, 3, 6, ... except under temperature calibration, which scikit-learn 1.9 fits
+    # correctly only for 0 .. k-1 (rbfgate refuses other integers there, test_sklearn_reference.py).
+    step = 1 if calibration == "temperature" else 3
+    names = np.array(["alpha", "beta", "gamma", "delta"][:n_classes]) if string_labels else np.arange(n_classes) * step
     y = names[y_index]
 
     classifier = SVC(C=C, gamma=gamma) if estimator == "SVC" else NuSVC(nu=0.3, gamma=gamma)
@@ -94,14 +101,42 @@ def fitted_models(draw):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # convergence notes from tiny random data sets
         model.fit(X, y)
-    directory = Path(tempfile.mkdtemp(dir=_WORKDIR.name))
+    bound = _rounding_bound(model, X)
+    note(f"rounding bound of the decision sums: {bound:.3g}")
+    out = Path(tempfile.mkdtemp(dir=_WORKDIR.name)) / "bundle"
     try:
-        bundle = export_model(model, X, directory / "bundle", y=y, name="random", version="1.0.0")
+        bundle = export_model(model, X, out, y=y, name="random", version="1.0.0")
     except GoldenMismatchError:
-        # The exporter's own check refused a model it cannot reproduce within 1e-9 (a huge
-        # coefficient mass makes libsvm's sums and ours round apart): no bundle, nothing to score.
-        reject()
+        # The exporter refuses a model it cannot reproduce within 1e-9. That is its promise only for
+        # models whose own rounding makes 1e-9 unreachable: anything else is a scorer bug.
+        assert bound > GOLDEN_TOLERANCE / 10, f"a well-conditioned model (bound {bound:.3g}) was refused at export"
+        assert not out.exists(), "a refused export left a bundle behind"
+        return None, model, X
     return bundle, model, X
+
+
+def _rounding_bound(model, X: np.ndarray) -> float:
+    """An a-priori bound on the rounding error of scikit-learn's (and so any float64) decision values.
+
+    Each decision is a sum of n_sv terms alpha_j K_j plus an intercept: its rounding error is at most
+    about n eps sum |alpha_j| (N. Higham, Accuracy and Stability of Numerical Algorithms, 2002,
+    section 4.2); each K_j = exp(-gamma d2) carries the error of d2 = |z|^2 + |s|^2 - 2 z.s, about
+    eps (|z|^2 + |s|^2), times gamma (the condition number of exp at -gamma d2). Computed from the
+    fitted scikit-learn objects only, never from the bundle.
+    """
+    svc, transform = _svc_and_transform(model)
+    Z, S = transform(X), svc.support_vectors_
+    eps = np.finfo(np.float64).eps
+    largest_square = float(np.max(np.einsum("ij,ij->i", Z, Z)) + np.max(np.einsum("ij,ij->i", S, S)))
+    mass = float(np.abs(svc.dual_coef_).sum())
+    return eps * mass * (len(S) + svc._gamma * largest_square)
+
+
+def _svc_and_transform(model):
+    inner = model.calibrated_classifiers_[0].estimator if isinstance(model, CalibratedClassifierCV) else model
+    if hasattr(inner, "steps"):
+        return inner[-1], inner[:-1].transform
+    return inner, lambda X: X
 
 
 @st.composite
@@ -135,6 +170,8 @@ def _assert_labels(ours, want, gap, tolerance, what):
 @given(data=st.data())
 def test_scores_equal_scikit_learn(data):
     bundle, model, _ = data.draw(fitted_models())
+    if bundle is None:
+        return  # refused at export for a reason fitted_models checked; nothing was published to score
     rows = data.draw(in_range_rows(bundle))
     scores = bundle.score(rows)
     reference = sklearn_reference(model, rows)
@@ -150,6 +187,8 @@ def test_scores_equal_scikit_learn(data):
 @given(data=st.data())
 def test_nearest_support_distance_equals_brute_force(data):
     bundle, _, _ = data.draw(fitted_models())
+    if bundle is None:
+        return  # refused at export (see fitted_models)
     rows = data.draw(in_range_rows(bundle))
     scores = bundle.score(rows)
     scorer = bundle.scorer
@@ -197,6 +236,8 @@ def _concatenate(parts):
 @given(data=st.data())
 def test_scores_do_not_depend_on_order_batching_or_chunking(data):
     bundle, _, _ = data.draw(fitted_models())
+    if bundle is None:
+        return  # refused at export (see fitted_models)
     rows = data.draw(in_range_rows(bundle, max_rows=120))
     whole = bundle.score(rows)
     arguments = _scorer_arguments(bundle)

@@ -2,9 +2,9 @@
 worker, and a tokens file that cannot be read.
 
 Each server is a real process on a free 127.0.0.1 port (tests/service/http_api/server.py), stopped
-by its test. Expected numbers come from the bundle's own scorer for the version an answer names
-(checked against scikit-learn in tests/bundle and test_reliability_properties.py). Waiting loops
-are bounded and assert only the final state, never how long it took.
+by its test. Expected numbers come from scikit-learn's predict and decision_function of the model
+behind the version an answer names (http_api/reference.py), to the golden tolerance 1e-9 x
+max(1, |v|). Waiting loops are bounded and assert only the final state, never how long it took.
 """
 
 from __future__ import annotations
@@ -24,6 +24,7 @@ import numpy as np
 import pytest
 from http_api.cases import assert_problem, bearer
 from http_api.conftest import build_store
+from http_api.reference import assert_close, sklearn_reference
 from http_api.server import ServeProcess, free_port
 from prometheus_client.parser import text_string_to_metric_families
 from store_support import python_env, wait_until
@@ -68,13 +69,13 @@ def _score(client, published, token, rows):
 
 
 def _assert_answered_by(body, published, rows):
-    """The answer names ``published`` and carries its scorer's numbers for ``rows``."""
+    """The answer names ``published`` and carries scikit-learn's numbers for ``rows`` from its model."""
     assert (body["version"], body["bundle_sha256"]) == (published.version, published.bundle.digest)
-    expected = published.bundle.score(rows)
+    expected = sklearn_reference(published.model, rows)
     classes = published.bundle.classes
     decision = np.array([[result["decision"][str(label)] for label in classes] for result in body["results"]])
-    np.testing.assert_allclose(decision, expected.decision, rtol=1e-12, atol=1e-12)  # scoring.py determinism note
-    assert [result["label"] for result in body["results"]] == expected.labels.tolist()
+    assert_close(decision, expected["decision"], f"decision_function of {published.version}")
+    assert [result["label"] for result in body["results"]] == expected["labels"].tolist()
 
 
 def test_damaged_bundles_are_refused_and_reported_while_the_live_version_serves(tmp_path, service_models, tokens):
@@ -107,7 +108,8 @@ def test_damaged_bundles_are_refused_and_reported_while_the_live_version_serves(
         for (kind, damage), published in zip(DAMAGE.items(), followed):
             os.killpg(server.process.pid, signal.SIGSTOP)
             try:
-                store.activate("iris", published.version, reason=f"rollout, then {kind}", actor="ops")
+                store.activate("iris", published.version, reason=f"rollout, then {kind}", actor="ops",
+                               accept_breaking=True)  # the fault, not the contract, is under test
                 damage(store.bundle_dir("iris", published.version) / files[kind])
             finally:
                 os.killpg(server.process.pid, signal.SIGCONT)
@@ -159,7 +161,7 @@ def test_a_read_only_store_keeps_serving_and_refuses_switches_clearly(tmp_path, 
         time.sleep(0.5)  # let a few polls run against the read-only store
         _assert_answered_by(_score(client, live, issued["score"], rows), live, rows)
         response = client.post("/models/iris/activate", headers=bearer(issued["operate"]),
-                               json={"version": "2.0.0", "reason": "while read-only"})
+                               json={"version": "2.0.0", "reason": "while read-only", "accept_breaking": True})
         problem = assert_problem(response, 503)
         assert "read-only" in problem["detail"] and str(store.root) in problem["detail"]
         assert client.get("/readyz").json()["state"] == "ready"  # reading the store still works
@@ -185,7 +187,7 @@ def test_a_removed_store_keeps_serving_from_memory_and_refuses_switches_clearly(
         body = client.post("/score/cancer", json={"records": cancer.records(cancer.X[:3])}, headers=bearer(issued["score"]))
         assert body.status_code == 200 and body.json()["version"] == "1.0.0"
         response = client.post("/models/iris/activate", headers=bearer(issued["operate"]),
-                               json={"version": "2.0.0", "reason": "store is gone"})
+                               json={"version": "2.0.0", "reason": "store is gone", "accept_breaking": True})
         problem = assert_problem(response, 503)
         assert str(store.root) in problem["detail"] and "no longer exists" in problem["detail"]
         _assert_answered_by(_score(client, live, issued["score"], rows), live, rows)
@@ -254,7 +256,7 @@ def test_a_worker_killed_mid_request_is_replaced_and_no_other_request_fails(tmp_
         # After a switch, exactly one iris version shows as active: the killed worker's gauges are forgotten.
         with server.client() as client:
             response = client.post("/models/iris/activate", headers=bearer(issued["operate"]),
-                                   json={"version": "2.0.0", "reason": "after the worker was replaced"})
+                                   json={"version": "2.0.0", "reason": "after the worker was replaced", "accept_breaking": True})
             assert response.status_code == 200, response.text
             wait_until(lambda: _metric(client.get("/metrics").text, "rbfgate_version_switches_total", model="iris") >= 5,
                        "both workers to switch")

@@ -4,7 +4,7 @@ The approach of tests/store/test_store_crash.py: the command runs in a subproces
 at a chosen step (the store's publish hook, or a wrapper around the function that performs
 the step), the test sends SIGKILL (no cleanup code runs, as with a crash or an OOM kill), then
 checks what any reader sees and what the next change makes of it. What "consistent" means here
-(README, "The model store"): every listed version is complete and verifies; the active pointer
+(README, "The version store"): every listed version is complete and verifies; the active pointer
 names the old or the new version, never anything else; the lock is free; ``history --verify``
 passes, or reports the interrupted command until the next change completes it with a
 ``recover`` entry; and no temporary file is left behind after that change.

@@ -88,7 +88,7 @@ def test_rows_only_one_version_refuses_are_reported_with_their_problem(setup):
     assert report.refused_by_both == 1
     assert not [item for item in report.examples["active_only"] if item["source"] == "inputs"]
 
-    store.activate("iris", "2.0.0", reason="the other way round", actor="alice")
+    store.activate("iris", "2.0.0", reason="the other way round", actor="alice", accept_breaking=True)
     reverse = preview(store, "iris", "1.0.0", records)
     assert [item["row"] for item in reverse.examples["active_only"] if item["source"] == "inputs"] == [2]
 
@@ -128,3 +128,23 @@ def test_the_report_is_json_safe_and_its_text_names_the_flip_count(setup):
     document = json.loads(json.dumps(report.to_dict()))
     assert document["label_flips"]["count"] == report.flips
     assert f"labels that would flip: {report.flips} of {report.scored_by_both}" in report.render_text()
+
+
+def test_preview_inputs_are_matched_by_column_name(setup, tmp_path):
+    # CSV inputs with the columns reversed and an id column: read by header name, as 'rbfgate score' does.
+    from model_store.cli.store_commands import read_preview_inputs
+    from model_store.refusal import from_text
+
+    store, _, _ = setup
+    _, X, _ = iris_model(1.0)
+    rows = X[::5]  # every class
+    source = tmp_path / "inputs.csv"
+    lines = [",".join(["id", *reversed(FEATURES)])]
+    lines += [",".join([f"r{i}", *map(repr, reversed(row.tolist()))]) for i, row in enumerate(rows)]
+    source.write_text("\n".join(lines) + "\n")
+    records, numbers = read_preview_inputs(source)
+    report = preview(store, "iris", "2.0.0", records, record_rows=numbers, convert=from_text, allow_extra=True)
+    assert report.sources["inputs"] == len(rows)
+    active_labels, candidate_labels = iris_model(1.0)[0].predict(rows), iris_model(0.05)[0].predict(rows)
+    assert report.flips_by_source["inputs"] == int((active_labels != candidate_labels).sum())
+    assert (report.refused_by_both, report.refused_by_active_only, report.refused_by_candidate_only) == (0, 0, 0)

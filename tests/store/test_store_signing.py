@@ -22,8 +22,8 @@ from model_store.store.signing import (
     verify_message,
 )
 
-# RFC 8032, "Edwards-Curve Digital Signature Algorithm (EdDSA)", section 7.1, test vectors for Ed25519.
-# Values checked against the RFC text from memory and against the cryptography package.
+# RFC 8032, "Edwards-Curve Digital Signature Algorithm (EdDSA)", section 7.1 "Test Vectors for
+# Ed25519": TEST 1 (the empty message) and TEST 2 (the one-byte message 0x72), as printed there.
 RFC8032_TEST_1 = {
     "secret": "9d61b19deffd5a60ba844af492ec2cc44449c5697b326919703bac031cae7f60",
     "public": "d75a980182b10ab7d54bfed3c964073a0ee172f3daa62325af021a68f707511a",
@@ -108,6 +108,9 @@ def test_a_store_without_trusted_keys_accepts_unsigned_bundles(tmp_path, bundle_
     assert store.trusted_keys() == []
     store.publish(iris_bundle(bundle_factory, "1.0.0"), actor="alice")
     store.activate("iris", "1.0.0", reason="first", actor="alice")
+    assert store.active("iris").version == "1.0.0"
+    assert [info.version for info in store.versions("iris")] == ["1.0.0"]
+    assert [entry["action"] for entry in store.history("iris")][-2:] == ["publish", "activate"]
 
 
 def test_a_signed_store_accepts_a_bundle_signed_by_a_trusted_key(signed_store, bundle_factory):

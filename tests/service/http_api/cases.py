@@ -91,16 +91,20 @@ ROLE_MATRIX = {
     ("GET", "/models/{model}/versions/{version}"): ({"score", "operate", "audit"}, True, "/models/iris/versions/1.0.0", None),
     ("GET", "/models/{model}/versions/{version}/schema"): (
         {"score", "operate", "audit"}, True, "/models/iris/versions/1.0.0/schema", None),
+    ("GET", "/models/{model}/openapi.json"): ({"score", "operate", "audit"}, True, "/models/iris/openapi.json", None),
+    ("GET", "/models/{model}/versions/{version}/openapi.json"): (
+        {"score", "operate", "audit"}, True, "/models/iris/versions/2.0.0/openapi.json", None),
     ("GET", "/models/{model}/versions/{version}/bundle"): (
         {"operate", "audit"}, False, "/models/iris/versions/1.0.0/bundle", None),
     ("GET", "/models/{model}/history"): ({"operate", "audit"}, False, "/models/iris/history", None),
-    ("POST", "/models/{model}/activate"): ({"operate"}, False, "/models/iris/activate", {"version": "2.0.0", "reason": "matrix"}),
+    ("POST", "/models/{model}/activate"): ({"operate"}, False, "/models/iris/activate", {"version": "2.0.0", "reason": "matrix", "accept_breaking": True}),
     ("POST", "/models/{model}/rollback"): ({"operate"}, False, "/models/iris/rollback", {"reason": "matrix"}),
     ("POST", "/models/{model}/preview"): ({"operate"}, False, "/models/iris/preview", {"version": "2.0.0"}),
     ("GET", "/healthz"): ("public", True, "/healthz", None),
     ("GET", "/readyz"): ("public", True, "/readyz", None),
     ("GET", "/metrics"): ("public", True, "/metrics", None),
     ("GET", "/openapi.json"): ({"score", "operate", "audit"}, True, "/openapi.json", None),
+    ("GET", "/problems/{kind}"): ("public", True, "/problems/records-refused", None),
 }
 
 

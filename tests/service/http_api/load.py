@@ -71,7 +71,7 @@ def run_switch_under_load(
         with server.client(headers=bearer(operate_token)) as operator:
             for version in versions:
                 time.sleep(pause)
-                response = operator.post("/models/iris/activate", json={"version": version, "reason": "switch under load"})
+                response = operator.post("/models/iris/activate", json={"version": version, "reason": "switch under load", "accept_breaking": True})
                 if response.status_code != 200:
                     outcome.failures.append(f"activate {version}: {response.status_code} {response.text[:200]}")
             time.sleep(pause)

@@ -41,7 +41,8 @@ def sklearn_reference(model, X: np.ndarray) -> dict[str, np.ndarray | None]:
         "probabilities": model.predict_proba(X) if isinstance(model, CalibratedClassifierCV) else None,
         "nearest_index": nearest_index,
         "nearest_distance": nearest_distance,
-        "nearest_label": svc.classes_[support_class[nearest_index]],
+        # model.classes_, not svc.classes_: a temperature calibrator fits its SVC on encoded labels.
+        "nearest_label": np.asarray(model.classes_)[support_class[nearest_index]],
         "nearest_similarity": similarity,
     }
 

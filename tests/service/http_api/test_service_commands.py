@@ -43,6 +43,16 @@ def test_token_add_prints_the_token_once_as_the_last_word(tmp_path, capsys):
     assert path.stat().st_mode & 0o077 == 0  # readable by its owner only (common practice for secrets)
 
 
+def test_token_add_quiet_prints_the_token_alone(tmp_path, capsys):
+    path = tmp_path / "tokens.json"
+    code, out, err = _run(capsys, "token", "add", "deploy-bot", "--role", "operate", "--tokens", path, "--quiet")
+    token = out.removesuffix("\n")
+    assert (code, err) == (0, "")
+    assert out == token + "\n" and " " not in token  # one line, nothing but the token
+    [entry] = json.loads(path.read_text())["tokens"]
+    assert entry["sha256"] == hashlib.sha256(token.encode()).hexdigest()  # it is the token that was stored
+
+
 def test_two_tokens_differ(tmp_path, capsys):
     path = tmp_path / "tokens.json"
     first = _run(capsys, "token", "add", "a", "--role", "score", "--tokens", path)[1].split()[-1]

@@ -31,7 +31,12 @@ def _samples(text: str) -> dict[tuple[str, frozenset], float]:
 
 
 def _sample(samples, name: str, **labels) -> float:
-    return samples.get((name, frozenset(labels.items())), 0.0)
+    """The value of one series; a series that is not exposed fails the test (it is not read as 0)."""
+    key = (name, frozenset(labels.items()))
+    if key not in samples:
+        present = sorted(str(dict(labels_)) for series, labels_ in samples if series == name)
+        raise AssertionError(f"no series {name}{labels}; exposed for {name}: {present}")
+    return samples[key]
 
 
 def _mixed_batch():
@@ -60,7 +65,7 @@ def test_scoring_metrics_count_requests_records_and_refusals(make_client, shared
 def test_active_version_info_follows_a_switch(make_client, store, tokens, service_models):
     path, issued = tokens
     client = make_client(store.root, tokens_file=path)
-    client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "x"}, headers=bearer(issued["operate"]))
+    client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "x", "accept_breaking": True}, headers=bearer(issued["operate"]))
     samples = _samples(client.get("/metrics").text)
     v1, v2 = service_models.iris1.bundle.digest, service_models.iris2.bundle.digest
     assert _sample(samples, "rbfgate_active_version_info", model="iris", version="2.0.0", digest=v2) == 1

@@ -130,9 +130,9 @@ def test_switch_under_load_with_two_workers(tmp_path, service_models):
     score = add_token(tokens, "team-checkout", "score")[0]
     published = {"1.0.0": service_models.iris1, "2.0.0": service_models.iris2}
     rows = service_models.iris1.X[::15]
-    expected = {version: p.bundle.score(rows) for version, p in published.items()}
+    expected = {version: sklearn_reference(p.model, rows) for version, p in published.items()}  # scikit-learn
     # The two versions must differ clearly, or the comparison below could not tell them apart.
-    assert np.abs(expected["1.0.0"].decision - expected["2.0.0"].decision).max() > 1e-3
+    assert np.abs(expected["1.0.0"]["decision"] - expected["2.0.0"]["decision"]).max() > 1e-3
     args = ("--store", store.root, "--tokens", tokens, "--workers", "2", "--poll-interval", "0.2")
     with ServeProcess(tmp_path, *args) as server:
         outcome = run_switch_under_load(
@@ -143,9 +143,9 @@ def test_switch_under_load_with_two_workers(tmp_path, service_models):
     assert set(outcome.versions_seen) == {"1.0.0", "2.0.0"}
     for version, body in outcome.answers:
         assert body["bundle_sha256"] == published[version].bundle.digest
-        scores = expected[version]
+        reference = expected[version]
         decision = np.array([[r["decision"][c] for c in published[version].bundle.classes] for r in body["results"]])
-        assert_close(decision, scores.decision, f"decision of {version}")
-        assert [r["label"] for r in body["results"]] == scores.labels.tolist()
+        assert_close(decision, reference["decision"], f"decision_function of {version}")
+        assert [r["label"] for r in body["results"]] == reference["labels"].tolist()
     # Multiprocess metrics: any worker reports the requests of both.
     assert outcome.metrics_scoring_requests == outcome.requests

@@ -77,7 +77,7 @@ def test_every_stored_digest_is_compared_in_constant_time(make_client, shared_st
 def test_history_records_the_token_name_as_actor(make_client, store, tokens):
     path, issued = tokens
     client = make_client(store.root, tokens_file=path)
-    body = {"version": "2.0.0", "reason": "canary"}
+    body = {"version": "2.0.0", "reason": "canary", "accept_breaking": True}
     response = client.post("/models/iris/activate", json=body, headers=bearer(issued["operate"]))
     assert response.status_code == 200, response.text
     last = client.get("/models/iris/history", headers=bearer(issued["audit"])).json()["entries"][-1]

@@ -1,14 +1,14 @@
 """POST /score: the numbers equal scikit-learn's and rbfgate's scorer, in request order.
 
 References: scikit-learn ``predict`` / ``decision_function`` / ``predict_proba`` and
-``pairwise_distances_argmin_min`` (see reference.py); the bundle's own scorer
-(``Bundle.score``) for the nearest-support percentile, which scikit-learn does not have.
+``pairwise_distances_argmin_min`` (see reference.py); for the nearest-support percentile, which
+scikit-learn does not have, the empirical distribution function of the reference rows' nearest
+distances (textbook definition), computed from scikit-learn's distances.
 """
 
 from __future__ import annotations
 
 import numpy as np
-import pytest
 
 from .cases import assert_problem
 from .reference import assert_close, sklearn_reference
@@ -68,8 +68,23 @@ def test_nearest_support_equals_sklearn_and_the_scorer(make_client, shared_store
     assert_close([n["similarity"] for n in nearest], reference["nearest_similarity"], "exp(-gamma d^2)", 1e-7)
     assert [n["index"] for n in nearest] == reference["nearest_index"].tolist()
     assert [n["label"] for n in nearest] == reference["nearest_label"].tolist()
-    scores = published.bundle.score(rows)
-    assert_close([n["percentile"] for n in nearest], scores.nearest_percentile, "percentile (rbfgate scorer)", 1e-12)
+
+
+def test_nearest_percentile_is_the_rank_among_the_reference_distances(make_client, shared_store, service_models):
+    # The bundle interpolates 101 quantiles (steps of 1 %) of the reference rows' nearest distances,
+    # so its percentile is within one step plus one row (100 / n points) of 100 x ECDF(distance).
+    published = service_models.cancer1  # exported with every breast cancer row as its reference
+    rows = published.X[::20] + _RNG.normal(scale=0.2, size=published.X[::20].shape) * published.X.std(axis=0)
+    low, high = np.array([f.allowed for f in published.bundle.manifest.features]).T
+    rows = np.clip(rows, low, high)
+    body = _score(make_client(shared_store.root), published, rows)
+    percentiles = np.array([result["nearest_support"]["percentile"] for result in body["results"]])
+    distances = sklearn_reference(published.model, rows)["nearest_distance"]
+    reference_distances = np.sort(sklearn_reference(published.model, published.X)["nearest_distance"])
+    assert distances.min() > 1e-3  # off the support vectors, where sklearn's distance is rounding noise
+    ecdf = 100.0 * np.searchsorted(reference_distances, distances, side="right") / len(reference_distances)
+    assert np.ptp(ecdf) > 20  # the rows spread over the distribution
+    assert np.max(np.abs(percentiles - ecdf)) <= 1.0 + 200.0 / len(reference_distances)
 
 
 def test_response_names_model_version_and_digest_in_body_and_headers(make_client, shared_store, service_models):
@@ -111,9 +126,10 @@ def test_integer_valued_features_are_numbers(make_client, shared_store, service_
     published = service_models.iris1
     record = {"sepal_length_cm": 5, "sepal_width_cm": 3, "petal_length_cm": 1.4, "petal_width_cm": 0.2}
     body = make_client(shared_store.root).post("/score/iris", json={"records": [record]}).json()
-    as_floats = published.bundle.score(np.array([[5.0, 3.0, 1.4, 0.2]]))
-    assert body["results"][0]["label"] == as_floats.labels[0]
-    assert body["results"][0]["decision"]["setosa"] == pytest.approx(as_floats.decision[0, 0], rel=1e-12)
+    reference = sklearn_reference(published.model, np.array([[5.0, 3.0, 1.4, 0.2]]))  # the same values as floats
+    assert body["results"][0]["label"] == reference["labels"][0]
+    assert_close([body["results"][0]["decision"][c] for c in published.bundle.classes], reference["decision"][0],
+                 "decision_function")
 
 
 def test_all_records_refused_is_422_with_the_results(make_client, shared_store, service_models):

@@ -53,7 +53,7 @@ def test_activate_answers_after_this_worker_switched(make_client, store, tokens,
     path, issued = tokens
     client = make_client(store.root, tokens_file=path)
     operate = bearer(issued["operate"])
-    response = client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "new C"}, headers=operate)
+    response = client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "new C", "accept_breaking": True}, headers=operate)
     assert response.json()["served_by_this_worker"]["version"] == "2.0.0"
     v2 = service_models.iris2
     body = _score(client, v2, v2.X[::10], bearer(issued["score"]))  # no poll in between
@@ -65,7 +65,7 @@ def test_rollback_returns_to_the_previous_version(make_client, store, tokens, se
     path, issued = tokens
     client = make_client(store.root, tokens_file=path)
     operate = bearer(issued["operate"])
-    client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "try"}, headers=operate)
+    client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "try", "accept_breaking": True}, headers=operate)
     response = client.post("/models/iris/rollback", json={"reason": "flips on golden vectors"}, headers=operate)
     assert response.status_code == 200, response.text
     assert response.json()["entry"]["action"] == "rollback"
@@ -96,7 +96,7 @@ def test_other_replicas_follow_within_their_poll_interval(make_client, store, to
     score = bearer(issued["score"])
     records = {"records": service_models.iris2.records(service_models.iris2.X[:2])}
     assert second.post("/score/iris", json=records, headers=score).json()["version"] == "1.0.0"
-    first.post("/models/iris/activate", json={"version": "2.0.0", "reason": "rollout"}, headers=bearer(issued["operate"]))
+    first.post("/models/iris/activate", json={"version": "2.0.0", "reason": "rollout", "accept_breaking": True}, headers=bearer(issued["operate"]))
     assert _wait_until(lambda: second.post("/score/iris", json=records, headers=score).json()["version"] == "2.0.0")
 
 
@@ -104,7 +104,7 @@ def test_a_bundle_damaged_after_activation_never_goes_live(make_client, store, s
     client = make_client(store.root)
     registry = client.app.state.services.registry
     operator = Store(store.root)  # another process on the same store
-    operator.activate("iris", "2.0.0", reason="rollout", actor="ops")
+    operator.activate("iris", "2.0.0", reason="rollout", actor="ops", accept_breaking=True)
     _damage(store, "iris", "2.0.0")
     registry.refresh_all()  # the poll that sees the new pointer
     v1 = service_models.iris1
@@ -127,7 +127,7 @@ def test_activating_a_damaged_version_is_refused_and_changes_nothing(make_client
     path, issued = tokens
     client = make_client(store.root, tokens_file=path)
     _damage(store, "iris", "2.0.0")
-    response = client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "x"}, headers=bearer(issued["operate"]))
+    response = client.post("/models/iris/activate", json={"version": "2.0.0", "reason": "x", "accept_breaking": True}, headers=bearer(issued["operate"]))
     assert "support_vectors.npy" in assert_problem(response, 409)["detail"]  # IntegrityError names the file
     assert store.active("iris").version == "1.0.0"
 
