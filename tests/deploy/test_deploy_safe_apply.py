@@ -160,3 +160,13 @@ def test_every_selector_of_the_scoring_pods_matches_their_labels(kind):
     spec = one(kind)["spec"]
     selector = spec.get("podSelector") or spec["selector"]
     assert _selects(selector if "matchLabels" in selector else {"matchLabels": selector}, _pod_labels())
+
+
+@pytest.mark.parametrize("release", ["1.29", "latest"])
+def test_the_example_ingress_is_a_valid_kubernetes_object(release):
+    # The same offline strict schemas as test_deploy_manifests.py (kubernetes-validate, the test extra).
+    from kubernetes_validate import validate
+    from kubernetes_validate.utils import latest_version
+
+    validate(yaml.safe_load((OVERLAY / "ingress.yaml").read_text()), latest_version() if release == "latest" else release,
+             strict=True)
