@@ -225,14 +225,15 @@ def slow_reconnecting_clients(host: str, port: int, url: str, *, connections: in
     return SlowClientsOutcome(ok, tried, reconnects)
 
 
-def cycle_pinned_versions(url: str, server_pid: int, model: str, versions: list[str], record: dict, *,
+def cycle_pinned_versions(url: str, server_pid: int, model: str, records: dict[str, dict], *,
                           rounds: int) -> tuple[float, float, Counter]:
-    """Pinned scoring of each version in turn, ``rounds`` times: (resident before, after, statuses)."""
+    """Pinned scoring of each version in turn (``records``: version -> a record it scores), ``rounds``
+    times: (resident MiB before, after, statuses)."""
     before = resident_mib(server_pid)
     statuses: Counter = Counter()
     with httpx.Client(base_url=url, timeout=120.0) as client:
         for _ in range(rounds):
-            for version in versions:
+            for version, record in records.items():
                 response = client.post(f"/score/{model}/versions/{version}", json={"records": [record]})
                 statuses[response.status_code] += 1
     time.sleep(1.0)

@@ -11,6 +11,8 @@ Every loop is bounded in count and time and talks only to 127.0.0.1.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pytest
 from http_api.cases import GOOD_RECORD
 from http_api.conftest import build_store
@@ -94,23 +96,25 @@ def test_full_size_slow_reconnecting_clients(tmp_path, attack_store):
 
 @pytest.mark.slow
 def test_cycling_pinned_versions_of_a_large_model_stays_within_the_cache(tmp_path):
+    from model_store import load_bundle
     from model_store.store import Store
     from tests.benchmarks.large_bundle import write_large_bundle
 
     store = Store(tmp_path / "store", create=True)
     versions = [f"1.0.{index}" for index in range(5)]
-    for index, version in enumerate(versions):
-        bundle = write_large_bundle(tmp_path / version, version=version, seed=11 + index)
-        store.publish(bundle, actor="attack")
+    bundles = [load_bundle(write_large_bundle(tmp_path / version, version=version, seed=11 + index))
+               for index, version in enumerate(versions)]
+    for bundle in bundles:
+        store.publish(Path(bundle.source), actor="attack")
     store.activate("large", versions[0], reason="first", actor="attack")
-    from model_store import load_bundle
-
-    first = load_bundle(tmp_path / versions[0])
-    record = {feature.name: sum(feature.allowed) / 2 for feature in first.manifest.features}  # inside every range
+    # A record inside every range of its own version (the versions are drawn from different seeds).
+    records = {bundle.version: {feature.name: sum(feature.allowed) / 2 for feature in bundle.manifest.features}
+               for bundle in bundles[1:]}
+    loaded_mib = bundles[0].resident_bytes / 2**20
+    del bundles
     with _serve(tmp_path, store) as server:
-        before, after, statuses = cycle_pinned_versions(server.url, server.process.pid, "large", versions[1:], record,
-                                                        rounds=3)
-    print(f"pinned cycling of 4 versions of 100,000 x 50 (each {first.resident_bytes / 2**20:.0f} MiB loaded), "
+        before, after, statuses = cycle_pinned_versions(server.url, server.process.pid, "large", records, rounds=3)
+    print(f"pinned cycling of 4 versions of 100,000 x 50 (each {loaded_mib:.0f} MiB loaded), "
           f"1 worker: resident {before:.0f} MiB before, {after:.0f} MiB after, answers {dict(statuses)}")
     assert set(statuses) == {200}
-    assert after - before < 128 + 2 * first.resident_bytes / 2**20  # the cache budget plus a load in flight
+    assert after - before < 128 + 2 * loaded_mib  # the cache budget plus a load in flight
