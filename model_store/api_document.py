@@ -12,7 +12,9 @@ for one version. Unlike the service-wide document, the types here are this bundl
   optional ``id`` and ``additionalProperties: false``;
 - ``ScoredResult``: the label as an enum of the classes, ``decision`` (a number for a binary
   model, one property per class otherwise), ``probability`` (one property per class when
-  calibrated, ``null`` otherwise) and the nearest-support diagnostics;
+  calibrated, ``null`` otherwise), the nearest-support diagnostics and the ``domain`` verdict
+  (``Domain``, with this version's thresholds as ``x-thresholds``; ``null`` for a bundle without
+  a domain model);
 - ``RefusedResult`` and ``RecordsRefused``, the 422 body when every record was refused.
 
 The result's members are built from one description, ``RESULT_FIELDS``: a new member of
@@ -93,7 +95,14 @@ RESULT_FIELDS: tuple[ResultField, ...] = (
     ResultField("decision", True, _decision_schema),
     ResultField("probability", True, _probability_schema),
     ResultField("nearest_support", True, lambda manifest: _ref("NearestSupport")),
+    ResultField("domain", True, lambda manifest: _domain_schema(manifest)),
 )
+
+
+def _domain_schema(manifest: Manifest) -> dict[str, Any]:
+    if manifest.domain is None:
+        return {"type": "null", "description": "this version has no domain model (bundle format 1)"}
+    return _ref("Domain")
 
 
 def api_document(manifest: Manifest, digest: str, *, max_records: int = DEFAULT_MAX_RECORDS) -> dict[str, Any]:
@@ -203,10 +212,12 @@ def _components(manifest: Manifest, digest: str, max_records: int) -> dict[str, 
             "problems": {"anyOf": [{"type": "array", "items": _ref("RecordProblem"), "minItems": 1}, {"type": "null"}],
                          "description": "every problem of the record, or null past the answer's detail budget "
                                         "(then the record's problems are in refusals)"},
+            "domain": {**_domain_schema(manifest),
+                       "description": "present when the record was refused as outside_domain"},
         }, ["status", "problem_count", "problems"]),
         "RefusalGroup": _object({
             "feature": {"anyOf": [{"type": "string"}, {"type": "null"}],
-                        "description": "null: unknown features past the first 32 distinct names"},
+                        "description": "null: a record-level reason (outside_domain), or unknown features past the first 32 distinct names"},
             "reason": _ref("RefusalReason"),
             "allowed": _problem_members()["allowed"],
             "count": {"type": "integer", "minimum": 1},
@@ -269,6 +280,19 @@ def _components(manifest: Manifest, digest: str, max_records: int) -> dict[str, 
             "required": ["type", "title", "status", "detail"],
         },
     }
+    if manifest.domain is not None:
+        thresholds = manifest.domain.thresholds
+        schemas["Domain"] = {
+            **_object({
+                "verdict": {"type": "string", "enum": ["typical", "unusual", "outside"],
+                            "description": "typical when score >= unusual_below, unusual when outside_below <= "
+                                           "score < unusual_below, outside below outside_below (refused as "
+                                           "outside_domain unless the model only flags)"},
+                "score": {"type": "number", "description": "one-class SVM decision over the reference rows; "
+                                                           "larger is more typical"},
+            }, ["verdict", "score"]),
+            "x-thresholds": {"unusual_below": thresholds.unusual_below, "outside_below": thresholds.outside_below},
+        }
     if len(classes) > 2:
         schemas["Decision"] = _per_class(classes, {"type": "number"}, "ovr-shaped decision_function, per class")
     if manifest.is_calibrated:
@@ -301,7 +325,8 @@ def _record_schema(manifest: Manifest) -> dict[str, Any]:
 
 def _problem_members() -> dict[str, Any]:
     return {
-        "feature": {"type": "string", "description": "the feature (or \"id\") the problem is about"},
+        "feature": {"type": ["string", "null"],
+                    "description": "the feature (or \"id\") the problem is about; null for outside_domain"},
         "value": {"description": "the value sent (nested values and long text abbreviated)"},
         "reason": _ref("RefusalReason"),
         "allowed": {"anyOf": [{"type": "array", "items": {"type": "number"}, "minItems": 2, "maxItems": 2},

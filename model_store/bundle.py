@@ -6,6 +6,8 @@ A bundle is a directory (or its single-file tar form) holding
     support_vectors.npy      (n_sv, f) float64, support vectors in scaled space
     dual_coef.npy            (k - 1, n_sv) float64, scikit-learn's dual_coef_
     reference_quantiles.npy  (q,) float64, quantiles of the reference nearest distance
+    domain_support_vectors.npy  (n_d, f) float64, the domain model's support vectors (format 2)
+    domain_alpha.npy         (n_d,) float64, their one-class SVM coefficients (format 2)
 
 Each file is read once, its SHA-256 checked against the manifest, and parsed
 from the same bytes with ``allow_pickle=False``, so what was verified is what
@@ -28,6 +30,7 @@ import numpy as np
 from model_store.archive import is_archive, read_archive
 from model_store.calibration import Calibrator
 from model_store.columns import feature_matrix
+from model_store.domain import DomainModel
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import BundleFormatError, GoldenMismatchError, InputError, IntegrityError, NotFoundError
 from model_store.manifest import (
@@ -47,6 +50,7 @@ __all__ = ["GOLDEN_TOLERANCE", "Bundle", "load_bundle", "write_bundle"]
 GOLDEN_TOLERANCE = 1e-9
 
 _ARRAYS = ("support_vectors.npy", "dual_coef.npy", "reference_quantiles.npy")
+_DOMAIN_ARRAYS = ("domain_alpha.npy", "domain_support_vectors.npy")
 _NPY_MAGIC = b"\x93NUMPY"
 
 
@@ -145,8 +149,9 @@ def load_bundle(path: str | os.PathLike) -> Bundle:
     else:
         manifest_bytes = _read(path / MANIFEST_FILE, path, MAX_MANIFEST_BYTES, "a manifest may hold at most")
     document, manifest = parse_manifest_bytes(manifest_bytes, source=source)
-    if sorted(manifest.files) != sorted(_ARRAYS):
-        raise BundleFormatError(f"{source}: field files: must list exactly the files {list(_ARRAYS)}")
+    expected_files = sorted(_ARRAYS + (_DOMAIN_ARRAYS if manifest.domain is not None else ()))
+    if sorted(manifest.files) != expected_files:
+        raise BundleFormatError(f"{source}: field files: must list exactly the files {expected_files}")
     if contents is not None:
         files = {name: contents.get(name) for name in manifest.files}
     else:
@@ -273,6 +278,7 @@ def _build_scorer(manifest: Manifest, arrays: dict[str, np.ndarray], source: str
         raise BundleFormatError(f"{source}/{MANIFEST_FILE}: scaler.scale holds a zero; it must be nonzero")
     calibrator = Calibrator(manifest.calibration, manifest.n_classes) if manifest.is_calibrated else None
     return Scorer(
+        domain=_build_domain(manifest, arrays, source),
         classes=list(classifier.classes),
         center=np.asarray(manifest.scaler.center),
         scale=scale,
@@ -287,6 +293,27 @@ def _build_scorer(manifest: Manifest, arrays: dict[str, np.ndarray], source: str
         calibrator=calibrator,
         break_ties=classifier.break_ties,
         calibrate_pairwise=classifier.decision_function_shape == "ovo" and manifest.n_classes > 2,
+    )
+
+
+def _build_domain(manifest: Manifest, arrays: dict[str, np.ndarray], source: str) -> DomainModel | None:
+    spec = manifest.domain
+    if spec is None:
+        return None
+    expected = {
+        "domain_support_vectors.npy": (spec.support_vectors, len(manifest.features)),
+        "domain_alpha.npy": (spec.support_vectors,),
+    }
+    for name, shape in expected.items():
+        if arrays[name].shape != shape:
+            raise BundleFormatError(f"{source}/{name}: expected shape {shape}, got {arrays[name].shape}")
+    return DomainModel(
+        support_vectors=arrays["domain_support_vectors.npy"],
+        alpha=arrays["domain_alpha.npy"],
+        intercept=spec.intercept,
+        gamma=spec.gamma,
+        unusual_below=spec.thresholds.unusual_below,
+        outside_below=spec.thresholds.outside_below,
     )
 
 

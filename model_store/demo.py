@@ -21,8 +21,9 @@ __all__ = ["CLASSES", "FEATURE_INFO", "FEATURES", "TARGET", "generate", "write_d
 TARGET = "decision"
 CLASSES = ("release", "inspect", "hold")
 FEATURE_INFO: dict[str, dict] = {
-    "core_temp_c": {"unit": "degC", "description": "product core temperature at the dock probe"},
-    "surface_temp_c": {"unit": "degC", "description": "pallet surface temperature from the infrared gate"},
+    "core_temp_c": {"unit": "degC", "description": "product core temperature at the dock probe", "bounds": [-40, 60]},
+    "surface_temp_c": {"unit": "degC", "description": "pallet surface temperature from the infrared gate",
+                       "bounds": [-40, 60]},
     "humidity_pct": {"unit": "%RH", "description": "relative humidity logged in the trailer", "bounds": [0, 100]},
     "transit_hours": {"unit": "h", "description": "hours from loading to arrival", "bounds": [0, 1000]},
     "door_open_min": {"unit": "min", "description": "minutes the trailer door stood open in transit", "bounds": [0, 1000]},
@@ -59,8 +60,10 @@ def write_demo_files(folder: Path, *, rows: int = 1200, seed: int = 7) -> dict[s
     """Write the training CSV, the feature-info JSON and a CSV of incoming pallets to score.
 
     The incoming file mixes ordinary pallets with a few that a careful service
-    must refuse: a missing reading, text in a numeric column, and readings far
-    outside anything seen in training.
+    must refuse: a missing reading, text in a numeric column, readings far
+    outside anything seen in training, and a pallet whose every reading is in
+    range but whose combination is unlike any training pallet (the two
+    temperatures swapped: a surface colder than the core).
     """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
@@ -83,4 +86,5 @@ def write_demo_files(folder: Path, *, rows: int = 1200, seed: int = 7) -> dict[s
         writer.writerow(["P-0013", 3.1, 3.9, 80.0, 10.5, "", 1.2])  # door reading lost
         writer.writerow(["P-0014", 2.8, "warm", 84.0, 8.0, 3.0, 1.1])  # free text in a number column
         writer.writerow(["P-0015", 19.0, 21.5, 84.0, 9.0, 4.0, 1.0])  # core far warmer than any training pallet
+        writer.writerow(["P-0016", 7.0, 2.0, 84.0, 9.0, 3.0, 1.0])  # temperatures swapped: outside the domain
     return {"training": training, "feature_info": info, "incoming": incoming}

@@ -1,10 +1,12 @@
 """Export a fitted scikit-learn RBF classifier to a bundle, then prove the bundle matches it.
 
-The exporter reads the reference rows (usually the training data) to derive
-allowed ranges, the reference distribution of nearest-support distance,
-golden vectors and a fingerprint. After writing, it reloads the bundle with
-the numpy scorer and compares it with scikit-learn on the golden vectors;
-on any mismatch the output is removed and ``GoldenMismatchError`` raised.
+The exporter reads the reference rows (usually the training data) and, when given, holdout rows
+(not used in fitting) to derive allowed ranges, the reference distribution of nearest-support
+distance, the domain model and its thresholds (``model_store.domain_fit``), the refusal report,
+golden vectors and a fingerprint; metrics are computed on the holdout when it has labels. After
+writing, it reloads the bundle with the numpy scorer and compares it with scikit-learn on the
+golden vectors (classifier and one-class decisions); on any mismatch the output is removed and
+``GoldenMismatchError`` raised.
 
 This module imports scikit-learn; the serving path never imports it.
 """
@@ -21,17 +23,20 @@ from typing import Any
 
 import numpy as np
 import sklearn
-from sklearn.metrics import pairwise_distances_argmin_min
 
-from model_store.bundle import Bundle, load_bundle, write_bundle
-from model_store.errors import InputError
+from model_store.bundle import GOLDEN_TOLERANCE, Bundle, load_bundle, write_bundle
+from model_store.domain_fit import DEFAULT_REFUSE_RATE, FittedDomain, fit_domain
+from model_store.errors import GoldenMismatchError, InputError
 from model_store.estimator_parts import ModelParts, plain_arrays_accepted
+from model_store.manifest import FORMAT
 from model_store.metrics import classification_metrics
 from model_store.naming import check_name
+from model_store.reference_rows import QUANTILE_LEVELS, feature_ranges, leave_self_out_distances, refusal_shares
 from model_store.refusal import RECORD_ID
 
 __all__ = [
     "DEFAULT_MARGIN",
+    "DEFAULT_REFUSE_RATE",
     "GOLDEN_FROM_REFERENCE",
     "GOLDEN_SYNTHETIC",
     "ExportRequest",
@@ -42,7 +47,6 @@ __all__ = [
 DEFAULT_MARGIN = 0.05
 GOLDEN_FROM_REFERENCE = 32
 GOLDEN_SYNTHETIC = 8
-_QUANTILE_LEVELS = np.linspace(0.0, 1.0, 101)
 
 
 @dataclass
@@ -51,6 +55,9 @@ class ExportRequest:
 
     reference:        (n, f) float64, columns in ``features`` order
     reference_labels: n true labels, or None when the reference has no target
+    holdout:          (m, f) float64 rows not used in fitting, or None
+    holdout_labels:   m true labels, or None
+    refuse_rate:      the share of holdout rows the whole refusal policy may refuse
     """
 
     parts: ModelParts
@@ -67,6 +74,12 @@ class ExportRequest:
     reference_role: str = "reference data given to export"
     training: dict[str, Any] = field(default_factory=dict)
     creator: str | None = None
+    holdout: np.ndarray | None = None
+    holdout_labels: list | None = None
+    holdout_file: str | None = None
+    holdout_sha256: str | None = None
+    holdout_role: str = "holdout rows given to export (not used in fitting)"
+    refuse_rate: float = DEFAULT_REFUSE_RATE
 
 
 def export_bundle(request: ExportRequest) -> Bundle:
@@ -76,6 +89,12 @@ def export_bundle(request: ExportRequest) -> Bundle:
     if not 0 <= request.margin <= 10:
         raise InputError(f"--margin {request.margin} is outside [0, 10]; it is a fraction of each feature's range")
     check_feature_names(request.features)
+    if not 0 <= request.refuse_rate < 0.5:
+        raise InputError(f"--refuse-rate {request.refuse_rate} is outside [0, 0.5); it is the share of holdout rows "
+                         "the refusal policy may refuse, e.g. 0.01")
+    if request.holdout is not None and request.holdout.shape[1] != request.reference.shape[1]:
+        raise InputError(f"the holdout has {request.holdout.shape[1]} feature columns, the reference "
+                         f"{request.reference.shape[1]}; give both files the same columns")
     parts = request.parts
     if len(request.features) != parts.n_features:
         raise InputError(
@@ -92,34 +111,92 @@ def export_bundle(request: ExportRequest) -> Bundle:
         raise InputError(f"feature info names {unknown[0]!r}, which is not a feature; features are {request.features}")
     reference = request.reference
     golden_inputs = _golden_inputs(reference, request.reference_sha256)
+    ranges = feature_ranges(request.features, _rows_seen(request), request.margin, request.feature_info)
+    domain = _fit_domain(request, ranges)
     with plain_arrays_accepted():
-        document = _document(request, golden_inputs)
+        document = _document(request, golden_inputs, ranges, domain)
         arrays = {
             "support_vectors.npy": parts.svc.support_vectors_,
             "dual_coef.npy": parts.svc.dual_coef_,
-            "reference_quantiles.npy": _reference_quantiles(parts, reference),
+            "reference_quantiles.npy": _reference_quantiles(parts, reference, request.holdout),
+            **domain.arrays,
         }
     out = write_bundle(request.out, document, arrays)
     try:
         bundle = load_bundle(out)
         bundle.self_test()
+        _check_domain(bundle, domain, golden_inputs, parts)
     except BaseException:  # a bundle that does not reproduce the model must not be left behind
         shutil.rmtree(out, ignore_errors=True)
         raise
     return bundle
 
 
-def _document(request: ExportRequest, golden_inputs: np.ndarray) -> dict[str, Any]:
+def _rows_seen(request: ExportRequest) -> np.ndarray:
+    if request.holdout is None or len(request.holdout) == 0:
+        return request.reference
+    return np.vstack([request.reference, request.holdout])
+
+
+def _scaled(parts: ModelParts, raw: np.ndarray) -> np.ndarray:
+    """The scorer's own affine map, so that exported statistics are what the scorer will see."""
+    return (raw - parts.center) / parts.scale
+
+
+def _in_range(raw: np.ndarray, ranges) -> np.ndarray:
+    low = np.array([allowed[0] for allowed, _ in ranges])
+    high = np.array([allowed[1] for allowed, _ in ranges])
+    return ((raw >= low) & (raw <= high)).all(axis=1)
+
+
+def _fit_domain(request: ExportRequest, ranges) -> FittedDomain:
+    parts = request.parts
+    holdout = request.holdout
+    return fit_domain(
+        _scaled(parts, request.reference),
+        None if holdout is None else _scaled(parts, holdout),
+        None if holdout is None else _in_range(holdout, ranges),
+        refuse_rate=request.refuse_rate,
+        seed=int(request.reference_sha256[:8], 16),
+    )
+
+
+def _refusal_report(request: ExportRequest, ranges, domain: FittedDomain) -> dict[str, Any]:
+    thresholds = domain.spec["thresholds"]
+    report: dict[str, Any] = {"refuse_rate": float(request.refuse_rate), "holdout": None}
+    for key, rows in (("reference", request.reference), ("holdout", request.holdout)):
+        if rows is None:
+            continue
+        score = domain.estimator.decision_function(_scaled(request.parts, rows))
+        report[key] = refusal_shares(_in_range(rows, ranges), score, thresholds["unusual_below"],
+                                     thresholds["outside_below"])
+    return report
+
+
+def _check_domain(bundle: Bundle, domain: FittedDomain, golden_inputs: np.ndarray, parts: ModelParts) -> None:
+    """The bundle's one-class decision on the golden inputs must be scikit-learn's."""
+    ours = bundle.score(golden_inputs).domain_score
+    want = domain.estimator.decision_function(_scaled(parts, golden_inputs))
+    within = np.abs(ours - want) <= GOLDEN_TOLERANCE * np.maximum(1.0, np.abs(want))
+    if not within.all():
+        row = int(np.argmin(within))
+        raise GoldenMismatchError(
+            f"{bundle.source}: golden vector {row}: domain score {ours[row]!r}, scikit-learn's OneClassSVM gives "
+            f"{want[row]!r}; the bundle does not reproduce its domain model"
+        )
+
+
+def _document(request: ExportRequest, golden_inputs: np.ndarray, ranges, domain: FittedDomain) -> dict[str, Any]:
     parts = request.parts
     svc = parts.svc
     gamma = float(svc._gamma)  # the fitted number behind gamma='scale' or 'auto'
     return {
-        "format": "rbfgate-bundle/1",
+        "format": FORMAT,
         "name": request.name,
         "version": request.version,
         "created": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "creator": request.creator or _user(),
-        "features": _features(request),
+        "features": _features(request, ranges),
         "scaler": {"kind": parts.scaler_kind, "center": parts.center.tolist(), "scale": parts.scale.tolist()},
         "kernel": {"kind": "rbf", "gamma": gamma, "sigma": float(1.0 / np.sqrt(2.0 * gamma))},
         "classifier": {
@@ -134,10 +211,14 @@ def _document(request: ExportRequest, golden_inputs: np.ndarray) -> dict[str, An
         "training": _training(request),
         "reference_distance": {
             "space": "scaled",
-            "rows": int(len(request.reference)),
+            "rows": int(len(request.reference)) + (0 if request.holdout is None else int(len(request.holdout))),
+            "from": "reference rows (each measured to the nearest support vector other than itself)"
+            + ("" if request.holdout is None else " and holdout rows"),
             "quantile_levels": "0 to 1 in steps of 0.01, stored in reference_quantiles.npy",
         },
         "golden": _golden(parts, golden_inputs),
+        "domain": domain.spec,
+        "refusal_report": _refusal_report(request, ranges, domain),
     }
 
 
@@ -155,23 +236,20 @@ def check_feature_names(features: list[str]) -> None:
         )
 
 
-def _features(request: ExportRequest) -> list[dict[str, Any]]:
+def _features(request: ExportRequest, ranges) -> list[dict[str, Any]]:
     reference = request.reference
     low, high = reference.min(axis=0), reference.max(axis=0)
-    span = np.where(high > low, high - low, np.maximum(np.abs(low), 1.0))
     features = []
     for index, name in enumerate(request.features):
         info = request.feature_info.get(name, {})
-        allowed = info.get("allowed") or _clip_to_bounds(
-            [low[index] - request.margin * span[index], high[index] + request.margin * span[index]],
-            info.get("bounds"),
-        )
+        allowed, non_negative = ranges[index]
         features.append(
             {
                 "name": name,
                 "unit": info.get("unit"),
                 "description": info.get("description"),
                 "allowed": [float(allowed[0]), float(allowed[1])],
+                "non_negative": non_negative,
                 "training": {
                     "min": float(low[index]),
                     "max": float(high[index]),
@@ -181,13 +259,6 @@ def _features(request: ExportRequest) -> list[dict[str, Any]]:
             }
         )
     return features
-
-
-def _clip_to_bounds(allowed: list[float], bounds: list[float] | None) -> list[float]:
-    """Keep the widened range inside physical bounds (a humidity cannot pass 100 %RH)."""
-    if bounds is None:
-        return allowed
-    return [max(allowed[0], bounds[0]), min(allowed[1], bounds[1])]
 
 
 def _training(request: ExportRequest) -> dict[str, Any]:
@@ -216,6 +287,15 @@ def _training(request: ExportRequest) -> dict[str, Any]:
         training["reference_metrics"] = classification_metrics(
             request.parts, request.reference, request.reference_labels
         ) | {"note": "computed on the reference rows, which may include training rows; not a holdout estimate"}
+    if request.holdout is not None:
+        training["holdout"] = {
+            "file": None if request.holdout_file is None else Path(request.holdout_file).name,
+            "sha256": request.holdout_sha256,
+            "rows": int(len(request.holdout)),
+            "role": request.holdout_role,
+        }
+        if request.holdout_labels is not None:
+            training["holdout_metrics"] = classification_metrics(request.parts, request.holdout, request.holdout_labels)
     training.update(request.training)
     return training
 
@@ -243,14 +323,13 @@ def _golden(parts: ModelParts, inputs: np.ndarray) -> dict[str, Any]:
     return golden
 
 
-def _reference_quantiles(parts: ModelParts, reference: np.ndarray) -> np.ndarray:
-    # The scorer's own affine map and exact distance, so that a reference row scores at its rank:
-    # scikit-learn's |x|^2 + |s|^2 - 2 x.s distance reports ~1e-7 for a row that is a support vector.
+def _reference_quantiles(parts: ModelParts, reference: np.ndarray, holdout: np.ndarray | None) -> np.ndarray:
+    """Quantiles of honest nearest-support distances (``model_store.reference_rows``)."""
     support_vectors = parts.svc.support_vectors_
-    scaled = (reference - parts.center) / parts.scale
-    nearest, _ = pairwise_distances_argmin_min(scaled, support_vectors)
-    difference = scaled - support_vectors[nearest]
-    return np.quantile(np.sqrt(np.einsum("ij,ij->i", difference, difference)), _QUANTILE_LEVELS)
+    distances = [leave_self_out_distances(_scaled(parts, reference), support_vectors, exclude_self=True)]
+    if holdout is not None and len(holdout):
+        distances.append(leave_self_out_distances(_scaled(parts, holdout), support_vectors, exclude_self=False))
+    return np.quantile(np.concatenate(distances), QUANTILE_LEVELS)
 
 
 def _plain(value: Any) -> Any:

@@ -5,8 +5,11 @@ from __future__ import annotations
 from typing import Any
 
 from model_store.bundle import Bundle
+from model_store.manifest import Manifest
 
-__all__ = ["describe", "render_description"]
+__all__ = ["describe", "refusal_report_lines", "refusal_warning", "render_description"]
+
+_RULES = ("refused_range", "refused_domain", "flagged_unusual", "refused_total")
 
 
 def describe(bundle: Bundle) -> dict[str, Any]:
@@ -21,6 +24,7 @@ def describe(bundle: Bundle) -> dict[str, Any]:
                 "unit": feature.unit,
                 "description": feature.description,
                 "allowed": list(feature.allowed),
+                "non_negative": feature.non_negative,
                 "training": feature.training.model_dump(),
                 # One sigma in scaled space is sigma * scale raw units of this feature.
                 "kernel_width_raw": sigma * abs(scale),
@@ -43,7 +47,10 @@ def describe(bundle: Bundle) -> dict[str, Any]:
         "holdout_metrics": _metrics(training.get("holdout_metrics")),
         "reference_metrics": _metrics(training.get("reference_metrics")),
         "reference": training.get("reference"),
+        "holdout": training.get("holdout"),
         "libraries": training.get("libraries"),
+        "domain": None if manifest.domain is None else manifest.domain.model_dump(),
+        "refusal_report": None if manifest.refusal_report is None else manifest.refusal_report.model_dump(),
     }
 
 
@@ -77,13 +84,81 @@ def render_description(description: dict[str, Any]) -> str:
     for feature in description["features"]:
         low, high = feature["allowed"]
         unit = feature["unit"] or "-"
-        lines.append(f"    {feature['name']:<24} {unit:<8} [{low:.6g}, {high:.6g}]  width {feature['kernel_width_raw']:.4g}")
+        inferred = "  (inferred non-negative)" if feature.get("non_negative") else ""
+        lines.append(f"    {feature['name']:<24} {unit:<8} [{low:.6g}, {high:.6g}]  width {feature['kernel_width_raw']:.4g}"
+                     + inferred)
     for title, key in (("holdout", "holdout_metrics"), ("reference", "reference_metrics")):
         metrics = description.get(key)
         if metrics:
             shown = ", ".join(f"{name} {metrics[name]:.4f}" for name in _SHOWN_METRICS if name in metrics)
             lines.append(f"  {title:<12} {shown} ({metrics.get('rows', '?')} rows)")
+    lines.extend(_domain_lines(description.get("domain")))
+    lines.extend(_report_lines(description.get("refusal_report")))
     libraries = description.get("libraries") or {}
     if libraries:
         lines.append("  libraries    " + ", ".join(f"{name} {version}" for name, version in libraries.items()))
     return "\n".join(lines)
+
+
+def _domain_lines(domain: dict[str, Any] | None) -> list[str]:
+    if domain is None:
+        return ["  domain       none (a bundle of format rbfgate-bundle/1): answers carry domain null"]
+    thresholds, calibration = domain["thresholds"], domain["calibration"]
+    subsample = (f", a seeded subsample (seed {domain['subsample_seed']})" if domain["subsample_seed"] is not None
+                 else "")
+    return [
+        f"  domain       one-class SVM (scikit-learn OneClassSVM, Schölkopf et al. 2001) on {domain['fit_rows']} of "
+        f"{domain['reference_rows']} reference rows{subsample}, scaled space; gamma {domain['gamma']:.6g}, "
+        f"nu {domain['nu']:g}, {domain['support_vectors']} support vectors",
+        f"    score        the one-class decision: larger is more typical, below 0 outside the estimated support",
+        f"    typical      score >= {thresholds['unusual_below']:.6g}",
+        f"    unusual      {thresholds['outside_below']:.6g} <= score < {thresholds['unusual_below']:.6g} "
+        f"(answered and flagged; about {100 * calibration['unusual_rate']:g} % of real rows)",
+        f"    outside      score < {thresholds['outside_below']:.6g} (refused as outside_domain unless the operator "
+        f"chose to flag only; about {100 * calibration['refuse_rate']:g} % of real rows)",
+        f"    thresholds   chosen on {calibration['rows']} {_SOURCES[calibration['source']]}",
+    ]
+
+
+_SOURCES = {"holdout": "holdout rows", "cross-validation": "out-of-fold reference rows (no holdout was given)"}
+
+
+def _report_lines(report: dict[str, Any] | None) -> list[str]:
+    if report is None:
+        return []
+    lines = [f"  refusals     share of rows (target: at most {100 * report['refuse_rate']:g} % of real rows refused)"]
+    for title in ("reference", "holdout"):
+        shares = report.get(title)
+        if shares:
+            lines.append(
+                f"    {title:<12} {shares['rows']} rows: range {_percent(shares['refused_range'])}, domain "
+                f"{_percent(shares['refused_domain'])}, flagged unusual {_percent(shares['flagged_unusual'])}, "
+                f"refused in total {_percent(shares['refused_total'])}"
+            )
+    return lines
+
+
+def _percent(share: float) -> str:
+    return f"{100 * share:.1f} %"
+
+
+def refusal_report_lines(manifest: Manifest) -> list[str]:
+    """The refusal report as ``export`` and ``train`` print it (empty for a bundle without one)."""
+    report = manifest.refusal_report
+    return _report_lines(None if report is None else report.model_dump())
+
+
+def refusal_warning(manifest: Manifest) -> str | None:
+    """One line when the holdout share refused exceeds twice the target, naming the rule that refuses most."""
+    report = manifest.refusal_report
+    if report is None or report.holdout is None or report.holdout.refused_total <= 2 * report.refuse_rate:
+        return None
+    shares = report.holdout
+    if shares.refused_range >= shares.refused_domain:
+        rule = (f"the ranges refuse most ({_percent(shares.refused_range)}); widen them with --margin or the "
+                "feature-info file's allowed/bounds")
+    else:
+        rule = (f"the domain model refuses most ({_percent(shares.refused_domain)}); give more holdout rows "
+                "or a lower --refuse-rate")
+    return (f"the refusal policy refuses {_percent(shares.refused_total)} of the {shares.rows} holdout rows, more than "
+            f"twice --refuse-rate {report.refuse_rate:g}; {rule}")

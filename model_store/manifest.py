@@ -22,17 +22,22 @@ from model_store.strict_json import StrictJsonError, loads_strict
 
 __all__ = [
     "FORMAT",
+    "FORMATS",
     "MAX_ARRAY_BYTES",
     "MAX_GOLDEN_ROWS",
     "MAX_MANIFEST_BYTES",
     "MAX_MANIFEST_DEPTH",
     "Calibration",
     "ClassifierSpec",
+    "DomainSpec",
+    "DomainThresholds",
     "FeatureSpec",
     "FileEntry",
     "GoldenVectors",
     "KernelSpec",
     "Manifest",
+    "RefusalReport",
+    "RuleShares",
     "ScalerSpec",
     "parse_manifest",
     "parse_manifest_bytes",
@@ -40,7 +45,10 @@ __all__ = [
     "read_manifest",
 ]
 
-FORMAT = "rbfgate-bundle/1"
+# Format 2 added the domain model (``domain``, its two arrays) and the refusal report; format 1
+# bundles have neither and keep loading (their answers carry ``domain: null``).
+FORMAT = "rbfgate-bundle/2"
+FORMATS = ("rbfgate-bundle/1", "rbfgate-bundle/2")
 MANIFEST_FILE = "manifest.json"
 SIGNATURE_FILE = "signature.json"
 
@@ -77,6 +85,9 @@ class FeatureSpec(_Strict):
     description: str | None = None
     allowed: tuple[float, float]
     training: FeatureStats
+    # True when the lower bound 0 was inferred because every reference and holdout value is >= 0
+    # (common practice: counts, areas and concentrations cannot be negative).
+    non_negative: bool = False
 
     @model_validator(mode="after")
     def _range_ordered(self) -> "FeatureSpec":
@@ -171,6 +182,67 @@ class Calibration(_Strict):
         return len(self.sigmoid or self.isotonic or [])
 
 
+class DomainThresholds(_Strict):
+    """One-class scores below ``unusual_below`` are unusual, below ``outside_below`` outside."""
+
+    unusual_below: float
+    outside_below: float
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "DomainThresholds":
+        if not self.outside_below <= self.unusual_below:
+            raise ValueError(f"outside_below {self.outside_below} must not exceed unusual_below {self.unusual_below}")
+        return self
+
+
+class DomainCalibration(_Strict):
+    """Where the thresholds come from: the share of real rows each verdict may take."""
+
+    source: Literal["holdout", "cross-validation"]
+    rows: int = Field(ge=1)
+    refuse_rate: float = Field(ge=0, le=1)
+    unusual_rate: float = Field(ge=0, le=1)
+
+
+class DomainSpec(_Strict):
+    """scikit-learn OneClassSVM (Schölkopf et al. 2001) in the classifier's scaled space.
+
+    Its support vectors and coefficients are ``domain_support_vectors.npy`` (n, f) and
+    ``domain_alpha.npy`` (n,); the score is ``sum_j alpha_j exp(-gamma |z - s_j|^2) + intercept``,
+    scikit-learn's ``decision_function``.
+    """
+
+    method: Literal["one-class-svm"] = "one-class-svm"
+    space: Literal["scaled"] = "scaled"
+    gamma: float = Field(gt=0)
+    nu: float = Field(gt=0, le=1)
+    intercept: float
+    support_vectors: int = Field(ge=1)
+    fit_rows: int = Field(ge=1)
+    reference_rows: int = Field(ge=1)
+    subsample_seed: int | None = None
+    thresholds: DomainThresholds
+    calibration: DomainCalibration
+
+
+class RuleShares(_Strict):
+    """Shares (0-1) of ``rows`` refused by each rule, flagged unusual, and refused in total."""
+
+    rows: int = Field(ge=0)
+    refused_range: float = Field(ge=0, le=1)
+    refused_domain: float = Field(ge=0, le=1)
+    flagged_unusual: float = Field(ge=0, le=1)
+    refused_total: float = Field(ge=0, le=1)
+
+
+class RefusalReport(_Strict):
+    """What the refusal policy does to the rows the bundle was exported with."""
+
+    refuse_rate: float = Field(ge=0, le=1)
+    reference: RuleShares
+    holdout: RuleShares | None = None
+
+
 class FileEntry(_Strict):
     """One array: its checksum, its size in bytes (``.npy`` header included), dtype and 1-D or 2-D shape."""
 
@@ -191,7 +263,7 @@ class GoldenVectors(_Strict):
 
 
 class Manifest(_Strict):
-    format: Literal["rbfgate-bundle/1"]
+    format: Literal["rbfgate-bundle/1", "rbfgate-bundle/2"]
     name: str
     version: str
     created: str = Field(pattern=_RFC3339_UTC)
@@ -205,10 +277,14 @@ class Manifest(_Strict):
     reference_distance: dict[str, Any]
     golden: GoldenVectors
     files: dict[str, FileEntry]
+    domain: DomainSpec | None = None
+    refusal_report: RefusalReport | None = None
 
     @model_validator(mode="after")
     def _consistent(self) -> "Manifest":
         check_name(self.name, what="model name")
+        if self.format == "rbfgate-bundle/1" and (self.domain is not None or self.refusal_report is not None):
+            raise ValueError("format rbfgate-bundle/1 has no domain model or refusal report; use rbfgate-bundle/2")
         check_name(self.version, what="model version")
         n_features = len(self.features)
         if len(self.scaler.center) != n_features or len(self.scaler.scale) != n_features:

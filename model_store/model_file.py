@@ -13,7 +13,7 @@ from model_store.bundle import Bundle
 from model_store.digest import sha256_file
 from model_store.errors import CsvError, ModelFileError, NotFoundError
 from model_store.estimator_parts import take_apart
-from model_store.exporter import DEFAULT_MARGIN, ExportRequest, export_bundle
+from model_store.exporter import DEFAULT_MARGIN, DEFAULT_REFUSE_RATE, ExportRequest, export_bundle
 from model_store.tables import read_table
 
 __all__ = ["export_model_file", "load_model_file"]
@@ -45,8 +45,10 @@ def export_model_file(
     target: str | None = None,
     margin: float = DEFAULT_MARGIN,
     feature_info: dict[str, dict] | None = None,
+    holdout_path: Path | None = None,
+    refuse_rate: float = DEFAULT_REFUSE_RATE,
 ) -> Bundle:
-    """Load ``model_path``, read the reference CSV in the model's feature order, export to ``out``."""
+    """Load ``model_path``, read the reference (and holdout) CSV in the model's feature order, export to ``out``."""
     parts = take_apart(load_model_file(model_path))
     table = read_table(reference_path, target=target, features=parts.feature_names)
     if table.values.shape[1] != parts.n_features:
@@ -55,6 +57,12 @@ def export_model_file(
             f"has {table.values.shape[1]} feature columns {table.features}, the model expects {parts.n_features}; "
             "pass --target to exclude the label column",
         )
+    holdout = None
+    if holdout_path is not None:
+        holdout = read_table(holdout_path, target=target, features=table.features)
+        if holdout.features != table.features:
+            raise CsvError(str(holdout_path), f"has the feature columns {holdout.features}, the reference "
+                           f"{table.features}; give the holdout the same columns")
     request = ExportRequest(
         parts=parts,
         features=table.features,
@@ -67,5 +75,10 @@ def export_model_file(
         out=Path(out),
         margin=margin,
         feature_info=feature_info or {},
+        holdout=None if holdout is None else holdout.values,
+        holdout_labels=None if holdout is None else holdout.target,
+        holdout_file=None if holdout_path is None else str(holdout_path),
+        holdout_sha256=None if holdout_path is None else sha256_file(holdout_path),
+        refuse_rate=refuse_rate,
     )
     return export_bundle(request)

@@ -6,7 +6,9 @@ when any feature is missing, null, not a number (a boolean, a string, a
 nested value), NaN or infinite, outside its allowed range, or when it holds
 a feature the bundle does not know (``malformed_row`` is the CSV reader's
 own reason for a row with more fields than its header). Every problem names the feature, the
-value, a machine-readable reason and the allowed range.
+value, a machine-readable reason and the allowed range. ``outside_domain`` is the one
+record-level reason (no feature): it is decided after scoring, from the domain verdict
+(``model_store.domain_policy``).
 
 A JSON record may also carry its caller's id as ``"id"`` (``RECORD_ID``): a string or an
 integer of at most ``MAX_ID_LENGTH`` characters, which is not a feature and is never scored;
@@ -46,6 +48,7 @@ __all__ = [
 
 REASONS = (
     "missing", "null", "not_a_number", "not_finite", "out_of_range", "unknown_feature", "malformed_row", "invalid_id",
+    "outside_domain",
 )
 RECORD_ID = "id"
 MAX_ID_LENGTH = 128
@@ -62,7 +65,7 @@ Converter = Callable[[Any], "float | str"]
 
 @dataclass(frozen=True)
 class Problem:
-    feature: str
+    feature: str | None  # None for a record-level problem (outside_domain)
     value: Any
     reason: str
     allowed: tuple[float, float] | None
@@ -79,6 +82,8 @@ class Problem:
         """One human-readable phrase, as used in the CLI's ``problems`` column."""
         if self.reason == "out_of_range":
             return f"{self.feature}={self.value} outside [{self.allowed[0]:g}, {self.allowed[1]:g}]"
+        if self.reason == "outside_domain":
+            return f"outside the model's domain (domain score {self.value:.4g})"
         if self.reason == "malformed_row":
             return f"the row has {self.value} fields, more than the header"
         if self.reason == "unknown_feature":

@@ -10,7 +10,9 @@ For a row ``x`` (raw units) the scorer computes, in order:
 5. labels by libsvm's vote (pair (i, j) votes i when its decision is > 0, ties go to the
    lowest class index), the binary decision as ``P[:, 0]``, the multiclass decision as
    scikit-learn's ovr-shaped ``votes + sum / (3 (|sum| + 1))``;
-6. probabilities through the bundle's calibration.
+6. probabilities through the bundle's calibration;
+7. when the bundle has a domain model, its one-class decision and verdict
+   (``model_store.domain``), through the same kernel code (``model_store.kernel``).
 
 Rows are processed in chunks so that the kernel block (rows x support vectors
 float64) stays under ``KERNEL_BLOCK_BYTES`` (4 MiB, cache-sized) whatever the
@@ -24,8 +26,8 @@ matrix-product kernel by matrix size and the kernels sum in different orders:
 measured up to 3e-14 relative on the scikit-learn datasets, bounded in general
 by the rounding of a sum, about 1e-12 x max(1, |value|, total coefficient mass).
 A label could only change for a decision that close to a tie. The scorer never
-refuses a row; it reports the range check and the nearest support vector so that
-callers (CLI, service) can apply their refusal policy.
+refuses a row; it reports the range check, the nearest support vector and the
+domain verdict so that callers (CLI, service) can apply their refusal policy.
 """
 
 from __future__ import annotations
@@ -36,20 +38,10 @@ from dataclasses import dataclass
 import numpy as np
 
 from model_store.calibration import Calibrator
+from model_store.domain import DomainModel
+from model_store.kernel import KERNEL_BLOCK_BYTES, MIN_CHUNK_ROWS, KernelExpansion
 
 __all__ = ["KERNEL_BLOCK_BYTES", "MIN_CHUNK_ROWS", "Scorer", "Scores"]
-
-# Small enough that the kernel block stays in the CPU cache between the passes over it
-# (exponent, argmax, clamp, exp, product); at least two rows per chunk, see score().
-KERNEL_BLOCK_BYTES = 4 << 20
-# Larger bundles are scored in tiles of support vectors so that a chunk still holds this many
-# rows: each tile of the support matrix is then read once per MIN_CHUNK_ROWS rows, not once per
-# handful of rows (a 100,000 x 50 bundle would otherwise stream 40 MB for every 5 rows).
-MIN_CHUNK_ROWS = 64
-# Tiles never get smaller than this, whatever block_bytes says: a tiny test block then still
-# scores small bundles in one tile, as before tiles existed.
-_MIN_TILE = 1024
-_TRANSPOSE_BLOCK = 4096
 
 
 @dataclass(frozen=True)
@@ -68,6 +60,9 @@ class Scores:
     nearest_percentile:  (n,) percentile (0-100) of the distance among the reference rows
     range_excess:        (n, f) raw units outside the allowed range: 0 inside,
                          value - high above it, value - low (negative) below it
+    domain_score:        (n,) the one-class SVM decision (larger is more typical), None when the
+                         bundle has no domain model (bundles of format rbfgate-bundle/1)
+    domain_verdict:      (n,) "typical" / "unusual" / "outside", None without a domain model
     """
 
     labels: np.ndarray
@@ -81,6 +76,8 @@ class Scores:
     nearest_label: np.ndarray
     nearest_percentile: np.ndarray
     range_excess: np.ndarray
+    domain_score: np.ndarray | None = None
+    domain_verdict: np.ndarray | None = None
 
     @property
     def out_of_range(self) -> np.ndarray:
@@ -120,6 +117,7 @@ class Scorer:
         calibrator: Calibrator | None,
         break_ties: bool = False,
         calibrate_pairwise: bool = False,
+        domain: DomainModel | None = None,
         block_bytes: int = KERNEL_BLOCK_BYTES,
     ) -> None:
         self.classes = np.asarray(classes, dtype=object if isinstance(classes[0], str) else np.int64)
@@ -127,25 +125,10 @@ class Scorer:
         self.pairs = [(i, j) for i in range(self.n_classes) for j in range(i + 1, self.n_classes)]
         self.center = np.ascontiguousarray(center, dtype=np.float64)
         self.scale = np.ascontiguousarray(scale, dtype=np.float64)
-        self.gamma = float(gamma)
-        self.support_vectors = np.ascontiguousarray(support_vectors, dtype=np.float64)
-        # -gamma d2 = [z, -gamma |z|^2, 1] . [2 gamma s, 1, -gamma |s|^2]: one matrix product
-        # yields the kernel's exponent, with no extra passes over the block.
-        # Filled in place, a block of support vectors at a time so the transposition stays in
-        # cache: column_stack plus a transposed copy took 0.2-0.6 s for a 100,000 x 50 bundle,
-        # this 0.04 s (tests/benchmarks), with the same numbers.
-        support_sq = np.einsum("ij,ij->i", self.support_vectors, self.support_vectors)
-        n_features = self.support_vectors.shape[1]
-        self._support_augmented_t = np.empty((n_features + 2, len(support_sq)))
-        for start in range(0, len(support_sq), _TRANSPOSE_BLOCK):
-            stop = start + _TRANSPOSE_BLOCK
-            np.multiply(self.support_vectors[start:stop].T, 2.0 * self.gamma,
-                        out=self._support_augmented_t[:n_features, start:stop])
-        self._support_augmented_t[n_features] = 1.0
-        self._support_augmented_t[n_features + 1] = -self.gamma * support_sq
         boundaries = np.concatenate([[0], np.cumsum(support_per_class)])
         self.support_class = np.repeat(np.arange(self.n_classes), support_per_class)
-        self._pair_coef = _pairwise_coefficients(np.asarray(dual_coef, np.float64), boundaries, self.pairs)
+        pair_coef = _pairwise_coefficients(np.asarray(dual_coef, np.float64), boundaries, self.pairs)
+        self.kernel = KernelExpansion(support_vectors, pair_coef, gamma, block_bytes)
         self.intercepts = np.asarray(intercepts, dtype=np.float64)
         self.allowed_low = np.asarray(allowed_low, dtype=np.float64)
         self.allowed_high = np.asarray(allowed_high, dtype=np.float64)
@@ -153,19 +136,26 @@ class Scorer:
         self.calibrator = calibrator
         self.break_ties = break_ties
         self.calibrate_pairwise = calibrate_pairwise
-        n_support = max(1, len(self.support_vectors))
-        self.support_per_tile = min(n_support, max(_MIN_TILE, block_bytes // (8 * MIN_CHUNK_ROWS)))
-        self.rows_per_chunk = max(2, block_bytes // (8 * self.support_per_tile))
+        self.domain = domain
 
     @property
     def n_features(self) -> int:
         return len(self.center)
 
     @property
+    def gamma(self) -> float:
+        return self.kernel.gamma
+
+    @property
+    def support_vectors(self) -> np.ndarray:
+        return self.kernel.support_vectors
+
+    @property
     def resident_bytes(self) -> int:
-        """Bytes of the arrays this scorer holds (about 2 x support vectors x features x 8 bytes):
-        what keeping it loaded costs, used to bound caches of loaded versions."""
-        return sum(value.nbytes for value in vars(self).values() if isinstance(value, np.ndarray))
+        """Bytes of the arrays this scorer holds, its kernel expansions and domain model included
+        (about 2 x support vectors x features x 8 bytes): what keeping it loaded costs, used to
+        bound caches of loaded versions."""
+        return _array_bytes(self)
 
     def score(self, raw: np.ndarray) -> Scores:
         """Score ``raw`` (n, f) float64, finite, in manifest feature order and raw units."""
@@ -173,65 +163,21 @@ class Scorer:
             # numpy sends a one-row product to BLAS gemv, whose sums round differently from
             # gemm's; scoring the row twice keeps single rows on the same path as batches.
             return _first_row(self.score(raw[[0, 0]]))
-        n_rows = raw.shape[0]
-        n_pairs = len(self.pairs)
-        pairwise = np.empty((n_rows, n_pairs))
-        nearest_index = np.empty(n_rows, dtype=np.int64)
         with np.errstate(over="ignore", invalid="ignore"):
             scaled = (raw - self.center) / self.scale
-            augmented = np.empty((n_rows, self.n_features + 2))
-            augmented[:, :-2] = scaled
-            augmented[:, -2] = -self.gamma * np.einsum("ij,ij->i", scaled, scaled)
-        augmented[:, -1] = 1.0
-        far = ~np.isfinite(augmented[:, -2])
-        any_far = bool(far.any())
-        if any_far:
-            # |z|^2 overflowed: the row is infinitely far from every support vector, its kernel
-            # is 0 and its decision the intercept (as libsvm computes it). Make its exponent
-            # exactly -inf instead of the inf - inf = NaN the expanded form would give.
-            augmented[far, :-2] = 0.0
-            augmented[far, -2] = -np.inf
-        block = np.empty((min(n_rows, self.rows_per_chunk), self.support_per_tile))
-        # With a far row, BLAS may multiply its -inf by the zero padding of its kernels and raise
-        # the invalid flag; the results are exact (-inf), so silence that one case.
-        with np.errstate(invalid="ignore") if any_far else nullcontext():
-            for start in range(0, n_rows, self.rows_per_chunk):
-                stop = min(start + self.rows_per_chunk, n_rows)
-                self._score_chunk(
-                    augmented[start:stop], block[: stop - start], pairwise[start:stop], nearest_index[start:stop]
-                )
-        return self._finish(raw, scaled, pairwise, nearest_index, any_far)
-
-    def _score_chunk(self, augmented, block, pairwise_out, nearest_out) -> None:
-        n_support = self._support_augmented_t.shape[1]
-        if block.shape[1] >= n_support:  # every support vector in one tile: most bundles
-            np.matmul(augmented, self._support_augmented_t, out=block)  # -gamma d2
-            np.argmax(block, axis=1, out=nearest_out)
-            _kernel_in_place(block, block[np.arange(len(block)), nearest_out])
-            np.matmul(block, self._pair_coef, out=pairwise_out)
-        else:
-            self._score_tiles(augmented, block, pairwise_out, nearest_out)
-        pairwise_out += self.intercepts
-
-    def _score_tiles(self, augmented, block, pairwise_out, nearest_out) -> None:
-        """One tile of support vectors at a time; the nearest one and the sums carried across tiles."""
-        n_rows, tile = block.shape
-        rows = np.arange(n_rows)
-        best = np.full(n_rows, -np.inf)
-        nearest_out[:] = 0  # what one argmax returns for a row whose exponents are all -inf
-        pairwise_out[:] = 0.0
-        flat = block.reshape(-1)
-        for start in range(0, self._support_augmented_t.shape[1], tile):
-            stop = min(start + tile, self._support_augmented_t.shape[1])
-            part = flat[: n_rows * (stop - start)].reshape(n_rows, stop - start)
-            np.matmul(augmented, self._support_augmented_t[:, start:stop], out=part)
-            local = np.argmax(part, axis=1)
-            value = part[rows, local]
-            closer = value > best  # strict: a tie keeps the earlier support vector, as one argmax would
-            nearest_out[closer] = local[closer] + start
-            best[closer] = value[closer]
-            _kernel_in_place(part, value)
-            pairwise_out += part @ self._pair_coef[start:stop]
+            scaled_sq = np.einsum("ij,ij->i", scaled, scaled)
+        pairwise, nearest_index = self.kernel.evaluate(scaled, scaled_sq)
+        pairwise += self.intercepts
+        with np.errstate(over="ignore", invalid="ignore"):
+            any_far = not bool(np.isfinite(self.gamma * scaled_sq).all())
+        scores = self._finish(raw, scaled, pairwise, nearest_index, any_far)
+        if self.domain is None:
+            return scores
+        domain_score = self.domain.decision(scaled, scaled_sq)
+        # Scores is frozen; setting the two fields on the new object avoids copying the rest.
+        object.__setattr__(scores, "domain_score", domain_score)
+        object.__setattr__(scores, "domain_verdict", self.domain.verdicts(domain_score))
+        return scores
 
     def _finish(self, raw, scaled, pairwise, nearest_index, any_far: bool) -> Scores:
         binary = self.n_classes == 2
@@ -254,7 +200,7 @@ class Scorer:
             label_index = np.argmax(probabilities, axis=1)
         # The BLAS form loses precision near a support vector; recompute the winner exactly.
         with np.errstate(over="ignore", invalid="ignore") if any_far else nullcontext():
-            difference = scaled - self.support_vectors[nearest_index]
+            difference = scaled - self.kernel.support_vectors[nearest_index]
             nearest_distance = np.sqrt(np.einsum("ij,ij->i", difference, difference))
         return Scores(
             labels=self.classes[label_index],
@@ -269,15 +215,6 @@ class Scorer:
             nearest_percentile=distance_percentile(nearest_distance, self.reference_quantiles),
             range_excess=range_excess(raw, self.allowed_low, self.allowed_high),
         )
-
-
-def _kernel_in_place(exponent: np.ndarray, row_max: np.ndarray) -> None:
-    """exp(min(exponent, 0)) in place; ``row_max`` (rows,) is each row's largest exponent."""
-    # d2 >= 0, but rounding can make it slightly negative: clamp, skipping the pass over the
-    # block when no exponent is positive (the common case; the result is the same).
-    if (row_max > 0).any():
-        np.minimum(exponent, 0.0, out=exponent)
-    np.exp(exponent, out=exponent)
 
 
 def _first_row(scores: Scores) -> Scores:
@@ -343,3 +280,14 @@ def _ovr_decision(pairwise: np.ndarray, pairs, n_classes: int) -> np.ndarray:
         votes[wins_i, i] += 1
         votes[~wins_i, j] += 1
     return votes + confidence / (3 * (np.abs(confidence) + 1))
+
+
+def _array_bytes(holder: object, depth: int = 0) -> int:
+    """nbytes of the arrays among ``holder``'s attributes and, two levels down, its parts' attributes."""
+    total = 0
+    for value in vars(holder).values():
+        if isinstance(value, np.ndarray):
+            total += value.nbytes
+        elif depth < 2 and hasattr(value, "__dict__") and not isinstance(value, type):
+            total += _array_bytes(value, depth + 1)
+    return total

@@ -3,8 +3,9 @@
 Steps: stratified train/holdout split; StandardScaler + SVC(kernel='rbf');
 unless both the kernel width and C are given, a log-spaced grid search with
 stratified k-fold cross-validation on the training split; optional
-calibration (CalibratedClassifierCV, ensemble=False); metrics on the holdout
-split; export with the training split as the reference rows.
+calibration (CalibratedClassifierCV, ensemble=False); export with the training
+split as the reference rows and the holdout split as the holdout (its metrics,
+the domain thresholds and the refusal report come from it).
 
 This module imports scikit-learn; the serving path never imports it.
 """
@@ -29,8 +30,7 @@ from model_store.bundle import Bundle
 from model_store.digest import sha256_file
 from model_store.errors import CsvError, InputError
 from model_store.estimator_parts import take_apart
-from model_store.exporter import DEFAULT_MARGIN, ExportRequest, check_feature_names, export_bundle
-from model_store.metrics import classification_metrics
+from model_store.exporter import DEFAULT_MARGIN, DEFAULT_REFUSE_RATE, ExportRequest, check_feature_names, export_bundle
 from model_store.naming import check_name
 from model_store.tables import Table, read_table
 
@@ -57,6 +57,7 @@ class TrainRequest:
     test_size: float = 0.25
     seed: int = 0
     margin: float = DEFAULT_MARGIN
+    refuse_rate: float = DEFAULT_REFUSE_RATE
     feature_info: dict[str, dict] = field(default_factory=dict)
     progress: bool | None = None  # None: show a progress bar only on a terminal
 
@@ -92,7 +93,6 @@ def train_bundle(request: TrainRequest) -> Bundle:
         model = CalibratedClassifierCV(pipeline, method=request.calibration, ensemble=False, cv=folds)
         model.fit(X_train, y_train)
     parts = take_apart(model)
-    holdout = classification_metrics(parts, X_test, y_test.tolist())  # plain arrays: the model never saw names
     classes, counts = np.unique(y_train.astype(str), return_counts=True)
     export = ExportRequest(
         parts=parts,
@@ -107,13 +107,18 @@ def train_bundle(request: TrainRequest) -> Bundle:
         margin=request.margin,
         feature_info=request.feature_info,
         reference_role="training split (the holdout rows are excluded)",
+        holdout=X_test,
+        holdout_labels=y_test.tolist(),  # plain arrays: the model never saw names
+        holdout_file=str(request.data),
+        holdout_sha256=sha256_file(request.data),
+        holdout_role=f"holdout split of the same file (test size {request.test_size}, seed {request.seed})",
+        refuse_rate=request.refuse_rate,
         training={
             "split": {"test_size": request.test_size, "seed": request.seed, "stratified": True,
                       "training_rows": int(len(y_train)), "holdout_rows": int(len(y_test))},
             "class_counts": {str(label): int(count) for label, count in zip(classes, counts)},
             "search": search["record"],
             "calibration_method": request.calibration,
-            "holdout_metrics": holdout,
         },
     )
     return export_bundle(export)

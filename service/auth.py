@@ -8,7 +8,8 @@ cannot find, so a new route cannot slip in unguarded.
 Roles (``service.tokens.ROLES``):
 
     score    scores; reads model metadata and record schemas (to build requests)
-    operate  activates, rolls back and previews; reads metadata, schemas, bundles and history
+    operate  activates, rolls back, previews and chooses refuse or flag for records outside the
+             domain; reads metadata, schemas, bundles and history
     audit    reads metadata, schemas, bundles and history
 
 Without a tokens file, scoring and metadata are open; history, bundle
@@ -61,6 +62,7 @@ _METADATA = AccessRule(frozenset({"score", "operate", "audit"}), "reading model 
 _BUNDLE = AccessRule(frozenset({"operate", "audit"}), "downloading a bundle (it holds training rows)")
 _HISTORY = AccessRule(frozenset({"operate", "audit"}), "reading the history")
 _OPERATE = AccessRule(frozenset({"operate"}), "changing or previewing the active version")
+_OUTSIDE = AccessRule(frozenset({"operate"}), "choosing what the model does with records outside its domain")
 
 ACCESS_RULES: Mapping[tuple[str, str], AccessRule] = {
     ("POST", "/score/{model}"): _SCORE,
@@ -76,6 +78,7 @@ ACCESS_RULES: Mapping[tuple[str, str], AccessRule] = {
     ("POST", "/models/{model}/activate"): _OPERATE,
     ("POST", "/models/{model}/rollback"): _OPERATE,
     ("POST", "/models/{model}/preview"): _OPERATE,
+    ("POST", "/models/{model}/outside-domain"): _OUTSIDE,
     ("GET", "/healthz"): _PUBLIC,
     ("GET", "/readyz"): _PUBLIC,
     ("GET", "/metrics"): _PUBLIC,

@@ -68,6 +68,12 @@ class ServiceMetrics:
             "Percentile of that distance among the bundle's reference rows (0-100); a drift signal.",
             ["model", "version"], buckets=_PERCENTILE_BUCKETS, registry=registry,
         )
+        self.domain_verdicts = Counter(
+            "rbfgate_domain_verdicts",
+            "Domain verdicts (typical, unusual, outside) of the records that passed the range rules, by model "
+            "and version; outside ones were refused unless the model only flags them.",
+            ["model", "version", "verdict"], registry=registry,
+        )
         self.active = Gauge(
             "rbfgate_active_version_info", "1 for the version each model is served with.",
             ["model", "version", "digest"], registry=registry, multiprocess_mode="livemax",
@@ -99,8 +105,9 @@ class ServiceMetrics:
         problems: Iterable[tuple[str, str]],
         distances: np.ndarray,
         percentiles: np.ndarray,
+        verdicts: np.ndarray = np.empty(0),
     ) -> None:
-        """One scoring request: counts, (feature, reason) of each problem, (n,) distances and percentiles."""
+        """One scoring request: counts, (feature, reason) of each problem, (n,) distances, percentiles and verdicts."""
         outcome = "refused" if scored == 0 else ("partial" if refused else "scored")
         self.score_requests.labels(model, version, outcome).inc()
         if scored:
@@ -114,6 +121,11 @@ class ServiceMetrics:
         for distance, percentile in zip(distances.tolist(), percentiles.tolist()):
             distance_child.observe(distance)
             percentile_child.observe(percentile)
+        if len(verdicts):
+            # Verdicts are the three fixed words of model_store.domain, never request text.
+            names, counts = np.unique(verdicts.astype(str), return_counts=True)
+            for verdict, count in zip(names.tolist(), counts.tolist()):
+                self.domain_verdicts.labels(model, version, verdict).inc(count)
 
     def switched(self, model: str, old: tuple[str, str] | None, new: tuple[str, str]) -> None:
         """A worker now serves ``new`` (version, digest) instead of ``old``."""

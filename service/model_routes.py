@@ -56,6 +56,7 @@ def add_model_routes(app: FastAPI, services: Services) -> None:
         versions = _versions(services, model)
         return {
             **_model_summary(services, model),
+            "outside_domain": store.outside_action(model),
             "versions": [
                 {"version": info.version, "bundle_sha256": info.digest, "created": info.created,
                  "published_at": info.published_at, "active": info.active}
@@ -208,6 +209,8 @@ def _auditor_view(document: dict[str, Any], manifest: Manifest) -> dict[str, Any
         "calibration": {"method": manifest.calibration.method},
         "training": document.get("training"),
         "reference_distance": document.get("reference_distance"),
+        "domain": None if manifest.domain is None else manifest.domain.model_dump(),
+        "refusal_report": None if manifest.refusal_report is None else manifest.refusal_report.model_dump(),
         "golden": {
             "vectors": len(manifest.golden.inputs),
             "with_probabilities": manifest.golden.probabilities is not None,

@@ -28,6 +28,8 @@ from service.openapi_models import (
     History,
     ModelDetail,
     ModelList,
+    OutsideDomainChoice,
+    OutsideDomainRequest,
     Preview,
     PreviewRequest,
     Readiness,
@@ -97,6 +99,9 @@ _OPERATIONS: dict[tuple[str, str], _Operation] = {
         "rollback", RollbackRequest, {200: ("rolled back and switched", _JSON, Switched)}),
     ("POST", "/models/{model}/preview"): _Operation(
         "preview", PreviewRequest, {200: ("the comparison; nothing changes", _JSON, Preview)}),
+    ("POST", "/models/{model}/outside-domain"): _Operation(
+        "chooseOutsideDomain", OutsideDomainRequest,
+        {200: ("the choice, recorded in the history", _JSON, OutsideDomainChoice)}),
     ("GET", "/healthz"): _Operation("checkHealth", None, {200: ("the process answers", _JSON, Alive)}),
     ("GET", "/readyz"): _Operation("checkReadiness", None, {200: ("every active model is loaded", _JSON, Readiness)}),
     ("GET", "/metrics"): _Operation(
@@ -164,7 +169,7 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
             "content": {_JSON: {"schema": {"$ref": _REF.format(model=described.body.__name__)}}},
         }
         statuses |= set(_BODY_STATUSES)
-    if path.endswith(("/activate", "/rollback", "/preview", "/bundle")) or path.startswith("/score/"):
+    if path.endswith(("/activate", "/rollback", "/preview", "/bundle", "/outside-domain")) or path.startswith("/score/"):
         statuses.add(409)
     if path == "/readyz":
         statuses.add(503)

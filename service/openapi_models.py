@@ -12,14 +12,14 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from model_store.manifest import FeatureSpec, FileEntry, KernelSpec
+from model_store.manifest import DomainSpec, FeatureSpec, FileEntry, KernelSpec, RefusalReport
 from model_store.naming import MAX_NAME_LENGTH
 from model_store.refusal import MAX_ID_LENGTH, REASONS
 
 __all__ = [
     "ActivateRequest", "Alive", "DOCUMENTED_MODELS", "History", "ModelDetail", "ModelList", "NAME_PATTERN",
-    "Preview", "PreviewRequest", "Problem", "Readiness", "RecordsRefusedProblem", "RollbackRequest", "ScoreRequest",
-    "ScoreResponse", "Switched", "VersionDetail",
+    "OutsideDomainChoice", "OutsideDomainRequest", "Preview", "PreviewRequest", "Problem", "Readiness",
+    "RecordsRefusedProblem", "RollbackRequest", "ScoreRequest", "ScoreResponse", "Switched", "VersionDetail",
 ]
 
 # model_store.naming.check_name; its "no '..'" rule is not expressed (a name with '..' is a 404).
@@ -48,8 +48,9 @@ class Problem(BaseModel):
 
 
 class RecordProblem(_Doc):
-    feature: str
-    value: Any = Field(description="the value sent (a nested value or over-long text is abbreviated)")
+    feature: str | None = Field(description="the feature, or null for a record-level problem (outside_domain)")
+    value: Any = Field(description="the value sent (a nested value or over-long text is abbreviated); the domain "
+                       "score for outside_domain")
     reason: Literal[REASONS]  # type: ignore[valid-type]
     allowed: tuple[float, float] | None = Field(description="the allowed range [low, high], inclusive")
 
@@ -62,6 +63,12 @@ class NearestSupport(_Doc):
     percentile: float = Field(ge=0, le=100, description="of the distance among the reference rows")
 
 
+class DomainAnswer(_Doc):
+    verdict: Literal["typical", "unusual", "outside"] = Field(
+        description="from the bundle's domain thresholds (GET /models/{model}/versions/{version}, domain.thresholds)")
+    score: float = Field(description="the one-class SVM decision over the reference rows; larger is more typical")
+
+
 class ScoredResult(_Doc):
     id: str | int | None = _ID
     status: Literal["scored"]
@@ -69,6 +76,7 @@ class ScoredResult(_Doc):
     decision: float | dict[str, float] = Field(description="a number for a binary model, class -> number otherwise")
     probability: dict[str, float] | None = Field(description="class -> probability; null when uncalibrated")
     nearest_support: NearestSupport
+    domain: DomainAnswer | None = Field(description="null for a bundle without a domain model (format 1)")
 
 
 class RefusedResult(_Doc):
@@ -79,12 +87,13 @@ class RefusedResult(_Doc):
         min_length=1,
         description="every problem of the record, or null when the answer summarises it (see refusals)",
     )
+    domain: DomainAnswer | None = Field(None, description="present when the record was refused as outside_domain")
 
 
 class RefusalGroup(_Doc):
     """One distinct problem of an answer and the records that have it."""
 
-    feature: str | None = Field(description="null: unknown features past the first 32 distinct names")
+    feature: str | None = Field(description="null: a record-level reason (outside_domain), or unknown features past the first 32 distinct names")
     reason: Literal[REASONS]  # type: ignore[valid-type]
     allowed: tuple[float, float] | None
     count: int = Field(ge=1, description="problems in this group")
@@ -170,6 +179,8 @@ class PublishedVersion(_Doc):
 
 class ModelDetail(ModelSummary):
     versions: list[PublishedVersion]
+    outside_domain: Literal["refuse", "flag"] = Field(
+        description="what the model does with records whose domain verdict is outside (chosen by operators)")
 
 
 class Classifier(_Doc):
@@ -210,6 +221,8 @@ class VersionDetail(_Doc):
     calibration: dict[str, str]
     training: dict[str, Any] | None
     reference_distance: dict[str, Any] | None
+    domain: DomainSpec | None = Field(description="the domain model and its verdict thresholds; null for format 1")
+    refusal_report: RefusalReport | None
     golden: GoldenSummary
     files: dict[str, FileEntry]
     links: VersionLinks
@@ -250,6 +263,17 @@ class ActivateRequest(_Doc):
 
 class RollbackRequest(_Doc):
     reason: str = Field(min_length=1, max_length=1000, description=_REASON)
+
+
+class OutsideDomainRequest(_Doc):
+    action: Literal["refuse", "flag"] = Field(description="refuse records outside the domain, or answer them flagged")
+    reason: str = Field(min_length=1, max_length=1000, description=_REASON)
+
+
+class OutsideDomainChoice(_Doc):
+    model: str
+    outside_domain: Literal["refuse", "flag"]
+    entry: "HistoryEntry"
 
 
 class PreviewRequest(_Doc):
@@ -295,6 +319,7 @@ class Readiness(_Doc):
 
 
 DOCUMENTED_MODELS = [
-    Problem, RecordsRefusedProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, ActivateRequest,
-    RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness,
+    Problem, RecordsRefusedProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History,
+    ActivateRequest, RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness, OutsideDomainRequest,
+    OutsideDomainChoice,
 ]

@@ -3,6 +3,7 @@
     POST /models/{model}/activate   {"version": "...", "reason": "...", "accept_breaking": false}
     POST /models/{model}/rollback   {"reason": "..."}
     POST /models/{model}/preview    {"version": "..."}
+    POST /models/{model}/outside-domain  {"action": "refuse" | "flag", "reason": "..."}
 
 Activation and rollback go through the store (the same checks and the same
 history as the CLI, with the token's name as the actor) and answer only after
@@ -15,7 +16,7 @@ a candidate that would break callers unless ``accept_breaking`` is true.
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Literal
 
 from fastapi import FastAPI, Request
 from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictStr, ValidationError
@@ -41,6 +42,12 @@ class _ActivateBody(BaseModel):
 
 class _RollbackBody(BaseModel):
     model_config = ConfigDict(extra="forbid")
+    reason: StrictStr = Field(min_length=1, max_length=_MAX_REASON)
+
+
+class _OutsideBody(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    action: Literal["refuse", "flag"]
     reason: StrictStr = Field(min_length=1, max_length=_MAX_REASON)
 
 
@@ -77,6 +84,20 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
             check_name(model, what="model name")
             entry = services.store.rollback(model, reason=body.reason, actor=actor)
             return _switched(services, model, entry)
+
+        return await run_in_threadpool(run)
+
+    @app.post("/models/{model}/outside-domain")
+    async def choose_outside_domain(model: str, request: Request) -> dict[str, Any]:
+        """Refuse records outside the model's domain, or answer them flagged; recorded in the history."""
+        body = _validated(_OutsideBody, await read_body(request, limit))
+        actor = _actor(request)
+
+        def run() -> dict[str, Any]:
+            check_name(model, what="model name")
+            entry = services.store.set_outside_action(model, body.action, reason=body.reason, actor=actor)
+            services.registry.refresh(model, force=True)  # this worker applies it to the next request
+            return {"model": model, "outside_domain": body.action, "entry": entry}
 
         return await run_in_threadpool(run)
 

@@ -10,7 +10,10 @@ failure is kept for /readyz and the metrics.
 
 A background thread polls the store's pointers every ``poll_seconds``
 (``Store.active`` is one small read per model), so every worker, and every
-replica on the same store, follows an activation within one interval.
+replica on the same store, follows an activation within one interval. The
+operators' outside-domain choice (refuse or flag) lives in the history; the
+pointer's history head moves with every entry, so the trail is read again
+only when the head has moved.
 """
 
 from __future__ import annotations
@@ -25,6 +28,7 @@ from datetime import datetime, timezone
 from types import MappingProxyType
 
 from model_store.bundle import Bundle
+from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION
 from model_store.errors import InvalidNameError, NotFoundError, RbfgateError, StoreError
 from model_store.naming import check_name
 from service.metrics import ServiceMetrics
@@ -88,6 +92,7 @@ class ModelRegistry:
         self._table: Mapping[str, LoadedModel] = MappingProxyType({})
         self._pointers: Mapping[str, tuple[str, str]] = MappingProxyType({})
         self._failures: Mapping[str, LoadFailure] = MappingProxyType({})
+        self._outside: Mapping[str, tuple[str, str]] = MappingProxyType({})  # name -> (history head, action)
         self._poll_error: str | None = None
         self._started = False
         self._refresh_lock = threading.RLock()
@@ -104,6 +109,11 @@ class ModelRegistry:
 
     def failure(self, name: str) -> LoadFailure | None:
         return self._failures.get(name)
+
+    def outside_action(self, name: str) -> str:
+        """``refuse`` or ``flag`` for records outside ``name``'s domain, as of the last poll."""
+        known = self._outside.get(name)
+        return DEFAULT_OUTSIDE_ACTION if known is None else known[1]
 
     def readiness(self) -> tuple[bool, dict]:
         """(ready, report): ready when every model with an active pointer has a loaded version."""
@@ -155,6 +165,7 @@ class ModelRegistry:
                 return self._table.get(name)
             if record is None:
                 return self._lost(name)
+            self._follow_outside_choice(name, record.history_head)
             target = (record.version, record.digest)
             self._pointers = MappingProxyType({**self._pointers, name: target})
             current = self._table.get(name)
@@ -170,6 +181,19 @@ class ModelRegistry:
             ):
                 return current
             return self._switch(name, record.version, record.digest, current)
+
+    def _follow_outside_choice(self, name: str, head: str) -> None:
+        known = self._outside.get(name)
+        if known is not None and known[0] == head:
+            return
+        try:
+            action = self._store.outside_action(name)
+        except RbfgateError as exc:  # keep the last known choice; the next poll tries again
+            self._note_poll_error(exc)
+            return
+        self._outside = MappingProxyType({**self._outside, name: (head, action)})
+        if known is not None and known[1] != action:
+            self._on_event({"event": "outside_domain_action", "model": name, "action": action})
 
     def _switch(self, name: str, version: str, digest: str, current: LoadedModel | None) -> LoadedModel | None:
         try:

@@ -5,7 +5,11 @@ Each feature is a required property of type ``number`` with ``minimum`` and
 policy); ``additionalProperties: false`` mirrors the refusal of unknown
 features. JSON Schema's ``number`` excludes booleans and strings, and JSON has
 no NaN or Infinity, so a record is valid under this schema exactly when the
-refusal policy accepts it.
+range rules accept it. A valid record can still be refused as ``outside_domain``
+by the bundle's domain model (a combination of values unlike the reference rows),
+which no per-property schema can express: the annotation ``x-rbfgate-domain``
+(an unknown keyword, which JSON Schema 2020-12 section 6.5 collects as an
+annotation) states the domain model's thresholds.
 """
 
 from __future__ import annotations
@@ -40,4 +44,18 @@ def record_schema(manifest: Manifest, digest: str) -> dict[str, Any]:
         "properties": properties,
         "required": manifest.feature_names,
         "additionalProperties": False,
+        "x-rbfgate-domain": _domain_annotation(manifest),
+    }
+
+
+def _domain_annotation(manifest: Manifest) -> dict[str, Any] | None:
+    domain = manifest.domain
+    if domain is None:
+        return None
+    return {
+        "model": "one-class SVM over the reference rows in the model's scaled space",
+        "verdicts": "typical when score >= unusual_below, unusual when outside_below <= score < unusual_below, "
+                    "outside (refused as outside_domain unless the model only flags) when score < outside_below",
+        "unusual_below": domain.thresholds.unusual_below,
+        "outside_below": domain.thresholds.outside_below,
     }

@@ -91,7 +91,7 @@ def _score(services: Services, request: Request, records: list[dict[str, Any]], 
     """Score ``records`` with ``model`` (read once: this request finishes on this version)."""
     note = request_note(request)
     note.update(model=model.name, version=model.version)
-    batch = score_records(model, records)
+    batch = score_records(model, records, services.registry.outside_action(model.name))
     _account(services, model, batch, note, records)
     headers = version_headers(model)
     head = {"model": model.name, "version": model.version, "bundle_sha256": model.digest}
@@ -152,6 +152,7 @@ def _account(services: Services, model: LoadedModel, batch: ScoredBatch, note: d
         problems=batch.problem_pairs(set(feature_names)),
         distances=scores.nearest_distance if scores is not None else _EMPTY,
         percentiles=scores.nearest_percentile if scores is not None else _EMPTY,
+        verdicts=scores.domain_verdict if scores is not None and scores.domain_verdict is not None else _EMPTY,
     )
     services.recent.add(model.name, feature_names, batch.checked.values)
     reasons = Counter(reason for _, reason in batch.problem_pairs(set()))

@@ -2,10 +2,17 @@
 
     body      {"records": [{feature: number, ..., "id"?: str | int}, ...]}     1 to max_records records
     results   one per record, in request order, each led by the record's "id" when it sent one:
-              {"status": "scored", "label", "decision", "probability", "nearest_support"}
+              {"status": "scored", "label", "decision", "probability", "nearest_support", "domain"}
               {"status": "refused", "problem_count", "problems": [{"feature", "value", "reason", "allowed"}] or null}
+              {"status": "refused", "problem_count", "problems": [{"feature": null, ..., "reason": "outside_domain"}],
+               "domain"}
     refusals  with any refused record: each distinct problem once with its record runs
               (``service.refusal_answer``, which bounds the answer's size)
+
+``domain`` is ``{"verdict": "typical" | "unusual" | "outside", "score": number}``, or null for a
+bundle without a domain model (format rbfgate-bundle/1). A record whose verdict is ``outside``
+is refused with the record-level reason ``outside_domain`` unless the operators chose to flag
+only for this model (``model_store.domain_policy``); then it is scored and its verdict says so.
 
 ``decision`` is a number for a binary model (scikit-learn's
 ``decision_function``, positive for the second class) and an object
@@ -23,6 +30,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+
+from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION, apply_outside_policy, domain_answer
 from model_store.refusal import CheckedBatch, check_records, from_json
 from model_store.scoring import Scores
 from service.problems import ServiceProblem
@@ -38,12 +47,17 @@ class ScoredBatch:
 
     results: list[dict[str, Any]]
     checked: CheckedBatch
-    scores: Scores | None
+    scores: Scores | None  # of every row that passed the range rules, outside_domain refusals included
     refusals: RefusalAnswer
 
     @property
     def scored(self) -> int:
-        return len(self.checked.accepted)
+        return len(self.checked.accepted) - len(self.checked.problems) + self.range_refused
+
+    @property
+    def range_refused(self) -> int:
+        accepted = set(self.checked.accepted.tolist())
+        return sum(index not in accepted for index in self.checked.problems)
 
     @property
     def refused(self) -> int:
@@ -52,7 +66,8 @@ class ScoredBatch:
     def problem_pairs(self, known_features: set[str]) -> list[tuple[str, str]]:
         """(feature, reason) of every problem; unknown feature names are not echoed into metrics."""
         return [
-            (problem.feature if problem.feature in known_features else "(unknown)", problem.reason)
+            (problem.feature if problem.feature in known_features
+             else "(record)" if problem.feature is None else "(unknown)", problem.reason)
             for problems in self.checked.problems.values()
             for problem in problems
         ]
@@ -86,11 +101,14 @@ def read_records(document: Any, max_records: int) -> list[dict[str, Any]]:
     return records
 
 
-def score_records(model: LoadedModel, records: list[dict[str, Any]]) -> ScoredBatch:
+def score_records(
+    model: LoadedModel, records: list[dict[str, Any]], outside_action: str = DEFAULT_OUTSIDE_ACTION
+) -> ScoredBatch:
     """Check ``records`` against the model's features, score the accepted ones, build the results."""
     bundle = model.bundle
     checked = check_records(bundle.manifest.features, records, from_json, ids=True)
     scores = bundle.score(checked.values) if len(checked.accepted) else None
+    outside = apply_outside_policy(checked, scores, outside_action)
     position = {int(index): row for row, index in enumerate(checked.accepted.tolist())}
     classes = [str(label) for label in bundle.classes]
     scored = _scored_results(scores, classes) if scores is not None else []
@@ -98,7 +116,13 @@ def score_records(model: LoadedModel, records: list[dict[str, Any]]) -> ScoredBa
     results = []
     ids = checked.ids or [None] * len(records)
     for index, record_id in enumerate(ids):
-        result = scored[position[index]] if index in position else refusals.results[index]
+        row = position.get(index)
+        if row is not None and not outside[row]:
+            result = scored[row]
+        else:
+            result = dict(refusals.results[index])
+            if row is not None:
+                result["domain"] = scored[row]["domain"]
         results.append(result if record_id is None else {"id": record_id, **result})
     return ScoredBatch(results, checked, scores, refusals)
 
@@ -129,6 +153,7 @@ def _scored_results(scores: Scores, classes: list[str]) -> list[dict[str, Any]]:
                 "index": index,
                 "percentile": percentile,
             },
+            "domain": domain_answer(scores, row),
         })
     return results
 

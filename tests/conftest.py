@@ -38,8 +38,12 @@ def export_model(
     version: str | None = None,
     features: list[str] | None = None,
     margin: float = 0.05,
+    holdout: np.ndarray | None = None,
+    holdout_y=None,
+    refuse_rate: float = 0.01,
+    feature_info: dict | None = None,
 ) -> Bundle:
-    """Export a fitted ``model`` with ``X`` (n, f) as reference rows; return the loaded bundle."""
+    """Export a fitted ``model`` with ``X`` (n, f) as reference rows (and ``holdout`` rows); return the loaded bundle."""
     X = np.asarray(X, dtype=np.float64)
     features = features or [f"x{index}" for index in range(X.shape[1])]
     request = ExportRequest(
@@ -53,6 +57,10 @@ def export_model(
         version=version or f"v{next(_counter)}",
         out=Path(out),
         margin=margin,
+        holdout=None if holdout is None else np.asarray(holdout, dtype=np.float64),
+        holdout_labels=None if holdout_y is None else list(holdout_y),
+        refuse_rate=refuse_rate,
+        feature_info=feature_info or {},
     )
     return export_bundle(request)
 

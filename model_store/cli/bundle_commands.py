@@ -14,7 +14,7 @@ from pathlib import Path
 from model_store.api_document import DEFAULT_MAX_RECORDS, api_document
 from model_store.bundle import load_bundle
 from model_store.errors import InputError
-from model_store.inspection import describe, render_description
+from model_store.inspection import describe, refusal_report_lines, refusal_warning, render_description
 
 __all__ = ["register"]
 
@@ -60,7 +60,10 @@ def _add_export(subparsers) -> None:
     parser.add_argument("--reference", type=Path, required=True, metavar="DATA.csv",
                         help="reference rows (usually the training data): ranges, golden vectors, fingerprint")
     _identity_arguments(parser)
-    parser.add_argument("--target", help="label column of the reference CSV (excluded from the features)")
+    parser.add_argument("--target", help="label column of the reference and holdout CSV (excluded from the features)")
+    parser.add_argument("--holdout", type=Path, metavar="HOLDOUT.csv",
+                        help="rows not used in fitting, same columns as the reference: metrics, ranges, domain "
+                        "thresholds and the refusal report (without it the thresholds come from cross-validation)")
     parser.set_defaults(handler=_export)
 
 
@@ -84,6 +87,9 @@ def _add_score(subparsers) -> None:
     parser.add_argument("bundle", type=Path, help="bundle directory or .tar file")
     parser.add_argument("input", type=Path, metavar="INPUT.csv")
     parser.add_argument("--out", type=Path, required=True, metavar="OUT.csv")
+    parser.add_argument("--flag-outside", action="store_true",
+                        help="answer rows whose domain verdict is outside (flagged in domain_verdict) instead of "
+                        "refusing them as outside_domain")
     parser.set_defaults(handler=_score)
 
 
@@ -93,6 +99,9 @@ def _identity_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--out", type=Path, required=True, metavar="DIR", help="new bundle directory")
     parser.add_argument("--margin", type=float, default=0.05,
                         help="widen each feature's allowed range by this fraction of its reference range (default 0.05)")
+    parser.add_argument("--refuse-rate", type=float, default=0.01, metavar="F",
+                        help="share of holdout rows the refusal policy (ranges and domain model) may refuse "
+                        "(default 0.01)")
     parser.add_argument("--feature-info", type=Path, metavar="FILE.json",
                         help='units, descriptions and ranges: {"feature": {"unit": ..., "description": ..., '
                         '"allowed": [low, high] (replaces the derived range), "bounds": [low, high] (physical limits '
@@ -104,7 +113,8 @@ def _export(args) -> int:
 
     bundle = export_model_file(
         args.model, args.reference, name=args.name, version=args.version, out=args.out, target=args.target,
-        margin=args.margin, feature_info=read_feature_info(args.feature_info),
+        margin=args.margin, feature_info=read_feature_info(args.feature_info), holdout_path=args.holdout,
+        refuse_rate=args.refuse_rate,
     )
     _report_written(bundle)
     return 0
@@ -118,6 +128,7 @@ def _train(args) -> int:
             data=args.data, target=args.target, name=args.name, version=args.version, out=args.out,
             sigma=args.sigma, gamma=args.gamma, C=args.C, calibration=args.calibration, test_size=args.test_size,
             seed=args.seed, margin=args.margin, feature_info=read_feature_info(args.feature_info),
+            refuse_rate=args.refuse_rate,
         )
     )
     _report_written(bundle)
@@ -132,7 +143,7 @@ def _score(args) -> int:
     from model_store.batch_scoring import score_csv
 
     bundle = load_bundle(args.bundle)
-    summary = score_csv(bundle, args.input, args.out)
+    summary = score_csv(bundle, args.input, args.out, outside_action="flag" if args.flag_outside else "refuse")
     print(f"{summary.scored} scored, {summary.refused} refused", file=sys.stderr)
     return 0
 
@@ -180,7 +191,13 @@ def _report_written(bundle) -> None:
     for note in bundle.manifest.training.get("notes", []):
         print(f"note: {note}", file=sys.stderr)
     print(f"wrote {bundle.source}: {bundle.name} {bundle.version}, digest {bundle.digest}")
-    print("checked against scikit-learn on the golden vectors: labels equal, decisions and probabilities within 1e-9")
+    print("checked against scikit-learn on the golden vectors: labels equal, decisions, probabilities and domain "
+          "scores within 1e-9")
+    for line in refusal_report_lines(bundle.manifest):
+        print(line)
+    warning = refusal_warning(bundle.manifest)
+    if warning:
+        print(f"warning: {warning}", file=sys.stderr)
 
 
 def read_feature_info(path: Path | None) -> dict[str, dict]:

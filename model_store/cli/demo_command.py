@@ -1,7 +1,8 @@
 """``rbfgate demo``: the quick-start scenario end to end, offline.
 
 Generates the invented pallet-check data, trains and exports a bundle,
-scores a file of incoming pallets (three of which are refused), and
+scores a file of incoming pallets (four of which are refused, one of them as
+outside the model's domain although each reading is in range), and
 publishes and activates the bundle in a store ready for ``rbfgate serve``.
 """
 
@@ -55,12 +56,23 @@ def _demo(args) -> int:
     scored = out / "incoming_scored.csv"
     summary = score_csv(bundle, files["incoming"], scored, progress=False)
     print(f"scored {files['incoming']} -> {scored}: {summary.scored} scored, {summary.refused} refused")
+    verdict = _domain_verdict_of_last_row(scored)
+    print(f"  pallet P-0016 has every reading in range but its surface is colder than its core (probes swapped?): "
+          f"domain verdict {verdict or 'none'}; see the domain_verdict and problems columns of {scored.name}")
     store = Store(out / "store", create=True)
     store.publish(Path(bundle.source), actor="rbfgate-demo")
     store.activate(DEMO_MODEL, DEMO_VERSION, reason="quick-start demo", actor="rbfgate-demo")
     print(f"published and activated {DEMO_MODEL} {DEMO_VERSION} in {store.root}")
     print(_next_steps(store.root))
     return 0
+
+
+def _domain_verdict_of_last_row(scored: Path) -> str | None:
+    import csv
+
+    with open(scored, newline="", encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    return rows[-1]["domain_verdict"] or None if rows else None
 
 
 def _fresh_folder(folder: Path) -> Path:

@@ -1,4 +1,4 @@
-"""Store commands: publish, versions, activate, rollback, history, preview, prune, keygen, sign, trust.
+"""Store commands: publish, versions, activate, rollback, outside-domain, history, preview, prune, keygen, sign, trust.
 
 Every command that reads or changes a store takes ``--store DIR``; without
 it the store is ``$RBFGATE_STORE``, else ``$XDG_DATA_HOME/rbfgate/store``,
@@ -61,6 +61,13 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
     parser = add("rollback", _rollback, "return to the version that was active before the current one", actor=True)
     parser.add_argument("name", metavar="NAME")
     parser.add_argument("--reason", metavar="TEXT", required=True, help="why (kept in the history)")
+    parser = add("outside-domain", _outside_domain, "show or choose what a model does with records outside its "
+                 "domain: refuse them (the default) or answer them flagged; the choice is kept in the history",
+                 actor=True)
+    parser.add_argument("name", metavar="NAME")
+    parser.add_argument("action", metavar="ACTION", nargs="?", choices=("refuse", "flag"),
+                        help="refuse or flag; omit it to show the current choice")
+    parser.add_argument("--reason", metavar="TEXT", help="why (required with ACTION, kept in the history)")
     parser = add("history", _history, "print the history of a model; --verify checks its hash chain")
     parser.add_argument("name", metavar="NAME")
     parser.add_argument("--verify", action="store_true", help="check the hash chain, the active pointer's head "
@@ -188,6 +195,19 @@ def _rollback(args, environ) -> int:
     entry = _store(args, environ).rollback(args.name, reason=args.reason, actor=_actor(args, environ))
     print(f"rolled {args.name} back to {entry['version']} (digest {entry['digest']}); history entry seq {entry['seq']}")
     return 0
+
+
+def _outside_domain(args, environ) -> int:
+    store = _store(args, environ)
+    if args.action is None:
+        print(f"{args.name}: records outside the domain are {_CHOSEN[store.outside_action(args.name)]}")
+        return 0
+    entry = store.set_outside_action(args.name, args.action, reason=args.reason, actor=_actor(args, environ))
+    print(f"{args.name}: records outside the domain are now {_CHOSEN[args.action]}; history entry seq {entry['seq']}")
+    return 0
+
+
+_CHOSEN = {"refuse": "refused (outside_domain)", "flag": "answered, flagged with domain verdict outside"}
 
 
 def _history(args, environ) -> int:

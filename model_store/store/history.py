@@ -8,7 +8,7 @@ Every entry holds exactly these fields:
     action     one of ACTIONS
     version    the version concerned (null for store-level actions)
     digest     that version's bundle digest, or null when unknown
-    reason     the operator's reason (required for activate and rollback), or an explanation
+    reason     the operator's reason (required for activate, rollback and the outside-domain choice), or an explanation
     prev_hash  the previous entry's ``hash``; GENESIS for the first entry
     hash       SHA-256 (FIPS 180-4) of the canonical JSON of the entry without ``hash``
 
@@ -61,6 +61,8 @@ ACTIONS = (
     "refused-activate", # an activation was refused because the stored bundle failed verification
     "refused-rollback", # a rollback was refused because its target failed verification
     "recover",          # a change interrupted by a crash was completed by the next command
+    "outside-domain-refuse",  # operators chose to refuse records outside the model's domain (the default)
+    "outside-domain-flag",    # operators chose to answer such records, flagged (model_store.store.domain_choice)
 )
 _MAX_TEXT = 1000
 

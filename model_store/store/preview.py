@@ -6,10 +6,12 @@ refusal policy (``model_store.refusal.check_records``), exactly as the
 service would, so a row may be refused by one version and scored by the
 other. The report counts label flips (with an active-by-candidate class
 table), the largest change in decision value and probability, rows only one
-of the two would refuse, features whose allowed range changed, and the
-contract comparison (``model_store.store.contract``: which changes would break
-callers, and so make ``activate`` refuse without accept-breaking). Nothing in
-the store changes.
+of the two would refuse, features whose allowed range changed, domain verdicts
+that would change (an active-by-candidate verdict table; "none" for a version
+without a domain model; rows refused as ``outside_domain`` count there, not among
+the range refusals), and the contract comparison (``model_store.store.contract``:
+which changes would break callers, and so make ``activate`` refuse without
+accept-breaking). Nothing in the store changes.
 """
 
 from __future__ import annotations
@@ -55,6 +57,7 @@ class PreviewReport:
     examples: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
     range_changes: list[dict[str, Any]] = field(default_factory=list)
     contract: ContractComparison = field(default_factory=lambda: ContractComparison((), 0))
+    domain_changes: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -74,6 +77,7 @@ class PreviewReport:
             },
             "allowed_range_changes": self.range_changes,
             "contract": self.contract.to_dict(),
+            "domain_verdict_changes": self.domain_changes,
         }
 
     def render_text(self) -> str:
@@ -147,7 +151,23 @@ def preview(
                 scores_active.probabilities, scores_candidate.probabilities, both, origins, active.classes
             )
     _refusals(report, checked_active, checked_candidate, origins)
+    report.domain_changes = _domain_changes(scores_active, scores_candidate)
     return report
+
+
+_VERDICT_ROWS = ("typical", "unusual", "outside", "none")
+
+
+def _domain_changes(active, candidate) -> dict[str, Any]:
+    """Counts of the rows scored by both by (active verdict, candidate verdict); "none" without a domain model."""
+    def verdicts(scores) -> list[str]:
+        return ["none"] * len(scores.labels) if scores.domain_verdict is None else scores.domain_verdict.tolist()
+
+    before, after = verdicts(active), verdicts(candidate)
+    counts = [[0] * len(_VERDICT_ROWS) for _ in _VERDICT_ROWS]
+    for a, c in zip(before, after):
+        counts[_VERDICT_ROWS.index(a)][_VERDICT_ROWS.index(c)] += 1
+    return {"changed": sum(a != c for a, c in zip(before, after)), "verdicts": list(_VERDICT_ROWS), "counts": counts}
 
 
 def _rows(active: Bundle, candidate: Bundle, records, record_rows):

@@ -48,6 +48,7 @@ def render(report: "PreviewReport") -> str:
             lines.append(f"  {change['feature']}: {_range(change['active'])} -> {_range(change['candidate'])}")
     else:
         lines.append("allowed ranges that changed: none")
+    lines.extend(_domain(report.domain_changes, report.scored_by_both))
     lines.extend(report.contract.render_lines())
     lines.append("nothing was changed in the store")
     return "\n".join(lines)
@@ -89,3 +90,15 @@ def _problem(problem: dict[str, Any]) -> str:
 
 def _range(allowed) -> str:
     return "(not a feature)" if allowed is None else f"[{allowed[0]:g}, {allowed[1]:g}]"
+
+
+def _domain(changes: dict[str, Any], scored: int) -> list[str]:
+    if not changes:
+        return []
+    lines = [f"domain verdicts that would change: {changes['changed']} of {scored}"]
+    verdicts = changes["verdicts"]
+    used = [index for index in range(len(verdicts))
+            if any(changes["counts"][index]) or any(row[index] for row in changes["counts"])]
+    table = {"active_classes": [verdicts[i] for i in used], "candidate_classes": [verdicts[i] for i in used],
+             "counts": [[changes["counts"][i][j] for j in used] for i in used]}
+    return lines + _table(table) if used else lines

@@ -26,7 +26,7 @@ from model_store.errors import (
 )
 from model_store.manifest import SIGNATURE_FILE
 from model_store.refusal import Converter, from_json
-from model_store.store import changes
+from model_store.store import changes, domain_choice
 from model_store.store.audit import check_active, check_chain, check_head, check_versions
 from model_store.store.history import format_time, read_trail
 from model_store.store.layout import StoreLayout, model_names, open_layout, read_settings, require_model, version_names
@@ -178,6 +178,10 @@ class Store:
         check_versions(records, lines, name, auditing=True)
         return len(lines)
 
+    def outside_action(self, name: str) -> str:
+        """``refuse`` or ``flag``: what the model does with records outside its domain (from the history)."""
+        return domain_choice.outside_action_from(self.history(name))
+
     def trusted_keys(self) -> list[TrustedKey]:
         """The keys whose signatures the store accepts; empty means signatures are not required."""
         keys = read_settings(self._layout).get("trusted_keys", [])
@@ -199,6 +203,9 @@ class Store:
 
     def rollback(self, name: str, *, reason: str, actor: str) -> dict[str, Any]:
         return changes.rollback(self, name, reason=reason, actor=actor)
+
+    def set_outside_action(self, name: str, action: str, *, reason: str, actor: str) -> dict[str, Any]:
+        return domain_choice.set_outside_action(self, name, action, reason=reason, actor=actor)
 
     def prune(self, name: str, *, keep: int, actor: str) -> list[str]:
         return changes.prune(self, name, keep=keep, actor=actor)

@@ -76,7 +76,7 @@ def test_batch_sizes_1_7_and_10000_give_the_same_results(fixture, request):
 def test_tiny_chunks_give_the_same_results_as_one_chunk(wine_sigmoid, monkeypatch):
     bundle, _, X = wine_sigmoid
     rows = _rows(X, 1_000, seed=2)
-    scorer = bundle.scorer
+    scorer = bundle.scorer.kernel  # the classifier's kernel expansion
     assert scorer.rows_per_chunk >= len(rows)  # one chunk by default at this size
     whole = bundle.score(rows)
     chunk_sizes = []
@@ -98,7 +98,7 @@ def test_kernel_block_stays_within_the_bound(cancer_standard, wine_sigmoid, iris
     # float64) stays under 4 MiB whatever the batch size, holding as many rows as fit.
     assert KERNEL_BLOCK_BYTES == 4 * 1024 * 1024
     for bundle, _, _ in (cancer_standard, wine_sigmoid, iris_raw):
-        scorer = bundle.scorer
+        scorer = bundle.scorer.kernel
         block_bytes = scorer.rows_per_chunk * len(scorer.support_vectors) * 8
         assert block_bytes <= KERNEL_BLOCK_BYTES
         assert block_bytes + len(scorer.support_vectors) * 8 > KERNEL_BLOCK_BYTES  # as many rows as fit

@@ -133,11 +133,14 @@ def test_reference_with_the_wrong_number_of_features_is_refused(tmp_path):
 
 
 def test_allowed_range_is_the_reference_range_widened_by_the_margin(bundle_factory):
-    # README, Concepts: the allowed range is the reference min/max widened by margin x range.
+    # README, Concepts: the allowed range is the reference min/max widened by margin x range; every
+    # iris measurement is positive, so a lower bound widened below 0 stops at 0 (inferred non-negative).
     X, y = _iris()
     bundle = bundle_factory(SVC().fit(X, y), X, margin=0.1)
     low, high = X.min(axis=0), X.max(axis=0)
     for index, feature in enumerate(bundle.manifest.features):
         span = high[index] - low[index]
-        assert feature.allowed == pytest.approx((low[index] - 0.1 * span, high[index] + 0.1 * span), rel=1e-12)
+        expected_low = max(0.0, low[index] - 0.1 * span)
+        assert feature.allowed == pytest.approx((expected_low, high[index] + 0.1 * span), rel=1e-12)
+        assert feature.non_negative == (low[index] - 0.1 * span < 0)
         assert feature.training.min == low[index] and feature.training.max == high[index]

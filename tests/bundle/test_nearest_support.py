@@ -5,6 +5,9 @@ scikit-learn scaler's ``transform``), Euclidean distance sqrt(sum (z - s)^2), fi
 minimum on ties; quantiles with numpy's default 'linear' method, which is definition 7
 of R. J. Hyndman and Y. Fan, "Sample quantiles in statistical packages", The American
 Statistician 50(4), 1996, as the numpy.quantile documentation states.
+
+The reference distances are leave-self-out: a reference row that is itself a support vector is
+measured to the nearest *other* support vector, every other row to the nearest support vector.
 """
 
 from __future__ import annotations
@@ -62,28 +65,36 @@ def test_nearest_support_vector_equals_brute_force(fixture, request):
     assert np.allclose(scores.nearest_similarity, np.exp(-gamma * distance**2), rtol=1e-12, atol=0)
 
 
-@pytest.mark.parametrize("fixture", ["iris_raw", "cancer_standard", "wine_sigmoid"])
-def test_reference_quantiles_are_quantiles_of_the_reference_distances(fixture, request):
-    # The exporter's reference rows are X; their brute-force distances give the stored quantiles.
+def leave_self_out(Z: np.ndarray, support: np.ndarray) -> np.ndarray:
+    """Distance of each row of Z to the nearest support vector that is not the row itself, by brute force:
+    all distances by a loop, a row's own support vector (distance exactly 0 in the SVC's input
+    space, where the scaler's transform gives the support vectors bit for bit) set aside."""
+    distances = np.stack([np.sqrt(np.sum((Z - vector) ** 2, axis=1)) for vector in support], axis=1)
+    distances[distances == 0.0] = np.inf
+    return distances.min(axis=1)
+
+
+# Not iris: it repeats rows, and a duplicate of a support vector is at 0 from it without being it.
+@pytest.mark.parametrize("fixture", ["cancer_standard", "wine_sigmoid"])
+def test_reference_quantiles_are_quantiles_of_the_leave_self_out_distances(fixture, request):
+    # The exporter's reference rows are X (no holdout): the stored quantiles are numpy's quantiles
+    # (Hyndman and Fan definition 7) of the brute-force leave-self-out distances, none of them 0.
     bundle, model, X = request.getfixturevalue(fixture)
     svc, transform = _parts(model)
-    _, distance = brute_force_nearest(transform(X), svc.support_vectors_)
-    expected = np.quantile(distance, LEVELS)  # Hyndman and Fan definition 7
+    Z = transform(X)
+    assert len(np.unique(Z, axis=0)) == len(Z)
+    expected = np.quantile(leave_self_out(Z, svc.support_vectors_), LEVELS)
     assert np.allclose(bundle.scorer.reference_quantiles, expected, rtol=1e-12, atol=1e-12)
+    assert bundle.scorer.reference_quantiles[0] > 0
 
 
-def test_support_vector_row_gets_distance_zero_and_the_share_of_reference_rows_at_zero(cancer_standard):
-    # A training row that is a support vector is at distance 0; its percentile is the highest
-    # quantile level whose reference distance is still 0 (the documented tie rule).
+def test_a_record_on_a_support_vector_reads_as_the_nearest_there_is(cancer_standard):
+    # A training row that is a support vector is at distance 0 from it: percentile 0, the most
+    # typical distance, not the share of zero self-distances it read as before.
     bundle, model, X = cancer_standard
     scores = bundle.score(X[model[-1].support_[:5]])
     assert np.all(scores.nearest_distance == 0.0)
-    quantiles = bundle.scorer.reference_quantiles
-    expected = 100.0 * np.flatnonzero(quantiles <= 0.0).max() / 100
-    assert np.all(scores.nearest_percentile == expected)
-    # About n_support / n_rows of the reference rows are support vectors at distance 0.
-    share = len(model[-1].support_) / len(X)
-    assert abs(expected / 100 - share) <= 0.01 + 1e-12
+    assert np.all(scores.nearest_percentile == 0.0)
 
 
 def test_far_row_gets_percentile_100(cancer_standard):
@@ -94,20 +105,22 @@ def test_far_row_gets_percentile_100(cancer_standard):
     assert scores.nearest_percentile[0] == 100.0
 
 
-def test_reference_rows_score_at_their_rank(cancer_standard):
-    # For a reference row with a distinct positive distance d, the share of reference
-    # distances below it is rank / (n - 1) (definition 7); interpolating in 101 quantiles
-    # is off by at most one step, i.e. one percentile point.
-    bundle, _, X = cancer_standard
-    scores = bundle.score(X)
-    distance = scores.nearest_distance
-    rank = np.empty(len(X))
-    rank[np.argsort(distance, kind="stable")] = np.arange(len(X))
-    values, counts = np.unique(distance, return_counts=True)
-    distinct = np.isin(distance, values[counts == 1]) & (distance > 0)
-    assert distinct.sum() > 300
-    expected = 100.0 * rank[distinct] / (len(X) - 1)
-    assert np.max(np.abs(scores.nearest_percentile[distinct] - expected)) <= 1.0 + 1e-9
+def test_reference_rows_that_are_not_support_vectors_spread_over_0_to_100(cancer_standard):
+    # How it is computed: the reference distances are the leave-self-out distances of all n
+    # reference rows (brute force above); a row that is not a support vector is scored at its own
+    # distance d, whose share of reference distances below it is rank / (n - 1) (definition 7).
+    # Interpolating in 101 stored quantiles is off by at most one step, one percentile point.
+    bundle, model, X = cancer_standard
+    svc, transform = _parts(model)
+    reference = leave_self_out(transform(X), svc.support_vectors_)
+    not_support = np.setdiff1d(np.arange(len(X)), svc.support_)
+    scores = bundle.score(X[not_support])
+    assert np.allclose(scores.nearest_distance, reference[not_support], rtol=1e-12, atol=0)
+    rank = np.searchsorted(np.sort(reference), reference[not_support], side="left")
+    expected = 100.0 * rank / (len(X) - 1)
+    assert np.max(np.abs(scores.nearest_percentile - expected)) <= 1.0 + 1e-9
+    counts, _ = np.histogram(scores.nearest_percentile, bins=10, range=(0, 100))
+    assert np.all(counts > 0), counts  # every decile of 0-100 is reached, none floored at a zero share
 
 
 def test_percentile_interpolates_linearly_between_quantiles():

@@ -26,13 +26,13 @@ EXACT = ("labels", "label_index", "nearest_index", "nearest_label", "nearest_dis
 
 
 def _tiled(monkeypatch, scorer, tile: int) -> None:
-    monkeypatch.setattr(scorer, "support_per_tile", tile)
-    monkeypatch.setattr(scorer, "rows_per_chunk", 5)
+    monkeypatch.setattr(scorer.kernel, "support_per_tile", tile)
+    monkeypatch.setattr(scorer.kernel, "rows_per_chunk", 5)
 
 
 def test_small_bundles_use_one_tile(cancer_standard, wine_sigmoid):
     for bundle, _, _ in (cancer_standard, wine_sigmoid):
-        scorer = bundle.scorer
+        scorer = bundle.scorer.kernel
         assert len(scorer.support_vectors) <= KERNEL_BLOCK_BYTES // (8 * MIN_CHUNK_ROWS)
         assert scorer.support_per_tile == len(scorer.support_vectors)
 
@@ -61,10 +61,10 @@ def test_a_tie_between_tiles_keeps_the_earlier_support_vector(cancer_standard, m
     first = 3
     duplicate = scorer.support_vectors.copy()
     duplicate[20] = duplicate[first]  # same point in tile 0 (index 3) and tile 2 (index 20) of size 8
-    monkeypatch.setattr(scorer, "support_vectors", duplicate)
-    augmented = scorer._support_augmented_t.copy()
+    monkeypatch.setattr(scorer.kernel, "support_vectors", duplicate)
+    augmented = scorer.kernel._support_augmented_t.copy()
     augmented[:, 20] = augmented[:, first]
-    monkeypatch.setattr(scorer, "_support_augmented_t", augmented)
+    monkeypatch.setattr(scorer.kernel, "_support_augmented_t", augmented)
     raw = scorer.center + scorer.scale * duplicate[first]
     whole = scorer.score(np.vstack([raw, raw]))
     _tiled(monkeypatch, scorer, 8)

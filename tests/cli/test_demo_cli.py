@@ -30,8 +30,10 @@ def test_demo_trains_scores_publishes_and_activates(tmp_path, capsys):
     assert main(["demo", "--out", str(out), "--rows", "400"]) == 0
     with open(out / "incoming_scored.csv", newline="") as handle:
         rows = list(csv.DictReader(handle))
-    assert [row["status"] for row in rows].count("refused") == 3  # the three planted bad pallets
-    assert rows[-1]["problems"].startswith("core_temp_c=19.0 outside")
+    assert [row["status"] for row in rows].count("refused") == 4  # the four planted bad pallets
+    assert rows[-2]["problems"].startswith("core_temp_c=19.0 outside")
+    # Every reading of the last one is in range, but its surface is 5 degC colder than its core.
+    assert rows[-1]["domain_verdict"] == "outside" and "outside the model's domain" in rows[-1]["problems"]
     store = Store(out / "store")
     active = store.active("pallet-checks")
     assert active is not None and active.version == "1.0.0"

@@ -54,7 +54,8 @@ def test_schemathesis_finds_nothing_against_the_openapi_document(fuzzed_server):
     # Each route gets a token whose role it admits (service/auth.py); scoring routes answer 422 to
     # schema-valid records that the refusal policy refuses (features and ranges differ by model, so the
     # document cannot state them) and 413 to more records than --max-records (RFC 9110 section
-    # 15.5.14, README "Errors"), and activate/rollback refuse a reason with control characters.
+    # 15.5.14, README "Errors"), and activate, rollback and outside-domain refuse a reason with control
+    # characters.
     config = workdir / "schemathesis.toml"
     config.write_text(f"""
 [generation]
@@ -67,13 +68,13 @@ checks.positive_data_acceptance.expected-statuses = ["2xx", "401", "403", "404",
 checks.negative_data_rejection.expected-statuses = ["400", "401", "403", "404", "405", "409", "413", "415", "422"]
 
 [[operations]]
-include-path-regex = "^/models/[^/]+/(activate|rollback)$"
+include-path-regex = "^/models/[^/]+/(activate|rollback|outside-domain)$"
 headers = {{ Authorization = "Bearer {tokens['operate']}" }}
 checks.positive_data_acceptance.expected-statuses = ["2xx", "401", "403", "404", "409", "422"]
 
 [[operations]]
 include-path-regex = "^/(models|healthz|readyz|metrics)"
-exclude-path-regex = "^/models/[^/]+/(activate|rollback)$"
+exclude-path-regex = "^/models/[^/]+/(activate|rollback|outside-domain)$"
 headers = {{ Authorization = "Bearer {tokens['operate']}" }}
 """)
     environ = {**os.environ, "SCHEMATHESIS_HOOKS": "reliability.schemathesis_hooks",

@@ -251,7 +251,7 @@ def test_scores_do_not_depend_on_order_batching_or_chunking(data):
     _assert_same(_concatenate([bundle.score(rows[piece]) for piece in pieces if len(piece)]), whole, mass, "in pieces")
 
     tiny_blocks = Scorer(**arguments, block_bytes=1)  # two rows per kernel block
-    assert tiny_blocks.rows_per_chunk == 2
+    assert tiny_blocks.kernel.rows_per_chunk == 2
     _assert_same(tiny_blocks.score(rows), whole, mass, "two-row kernel blocks")
 
 

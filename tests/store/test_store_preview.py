@@ -148,3 +148,23 @@ def test_preview_inputs_are_matched_by_column_name(setup, tmp_path):
     active_labels, candidate_labels = iris_model(1.0)[0].predict(rows), iris_model(0.05)[0].predict(rows)
     assert report.flips_by_source["inputs"] == int((active_labels != candidate_labels).sum())
     assert (report.refused_by_both, report.refused_by_active_only, report.refused_by_candidate_only) == (0, 0, 0)
+
+
+def test_domain_verdict_changes_are_counted_from_both_versions_scores(setup):
+    # The reference: each stored bundle's own verdicts (its one-class decision is checked against
+    # scikit-learn in tests/bundle/test_domain_model.py) on the rows both versions accept.
+    store, active_dir, candidate_dir = setup
+    rows = decision_rows([active_dir, candidate_dir])
+    rows = rows[_inside(rows, _allowed(active_dir)) & _inside(rows, _allowed(candidate_dir))]
+    odd = np.array([[4.4, 4.3, 6.8, 0.2]])  # in range for both, unlike any iris flower
+    records = [dict(zip(FEATURES, odd[0].tolist()))]
+    before = store.load_verified("iris", "1.0.0").score(np.vstack([rows, odd])).domain_verdict.tolist()
+    after = store.load_verified("iris", "2.0.0").score(np.vstack([rows, odd])).domain_verdict.tolist()
+    changes = preview(store, "iris", "2.0.0", records).domain_changes
+    assert changes["changed"] == sum(a != c for a, c in zip(before, after))
+    verdicts = changes["verdicts"]
+    for a in set(before):
+        for c in set(after):
+            expected = sum(x == a and y == c for x, y in zip(before, after))
+            assert changes["counts"][verdicts.index(a)][verdicts.index(c)] == expected, (a, c)
+    assert "domain verdicts that would change" in preview(store, "iris", "2.0.0", records).render_text()

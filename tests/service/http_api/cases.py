@@ -100,6 +100,8 @@ ROLE_MATRIX = {
     ("POST", "/models/{model}/activate"): ({"operate"}, False, "/models/iris/activate", {"version": "2.0.0", "reason": "matrix", "accept_breaking": True}),
     ("POST", "/models/{model}/rollback"): ({"operate"}, False, "/models/iris/rollback", {"reason": "matrix"}),
     ("POST", "/models/{model}/preview"): ({"operate"}, False, "/models/iris/preview", {"version": "2.0.0"}),
+    ("POST", "/models/{model}/outside-domain"): (
+        {"operate"}, False, "/models/iris/outside-domain", {"action": "refuse", "reason": "matrix"}),
     ("GET", "/healthz"): ("public", True, "/healthz", None),
     ("GET", "/readyz"): ("public", True, "/readyz", None),
     ("GET", "/metrics"): ("public", True, "/metrics", None),

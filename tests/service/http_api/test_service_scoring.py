@@ -9,6 +9,7 @@ distances (textbook definition), computed from scikit-learn's distances.
 from __future__ import annotations
 
 import numpy as np
+from sklearn.metrics.pairwise import euclidean_distances
 
 from .cases import assert_problem
 from .reference import assert_close, sklearn_reference
@@ -73,6 +74,9 @@ def test_nearest_support_equals_sklearn_and_the_scorer(make_client, shared_store
 def test_nearest_percentile_is_the_rank_among_the_reference_distances(make_client, shared_store, service_models):
     # The bundle interpolates 101 quantiles (steps of 1 %) of the reference rows' nearest distances,
     # so its percentile is within one step plus one row (100 / n points) of 100 x ECDF(distance).
+    # A reference row that is a support vector counts its distance to the nearest *other* one
+    # (leave-self-out): scikit-learn's euclidean_distances to every support vector, the row's own
+    # entry (support_ gives the rows) set aside.
     published = service_models.cancer1  # exported with every breast cancer row as its reference
     rows = published.X[::20] + _RNG.normal(scale=0.2, size=published.X[::20].shape) * published.X.std(axis=0)
     low, high = np.array([f.allowed for f in published.bundle.manifest.features]).T
@@ -80,7 +84,10 @@ def test_nearest_percentile_is_the_rank_among_the_reference_distances(make_clien
     body = _score(make_client(shared_store.root), published, rows)
     percentiles = np.array([result["nearest_support"]["percentile"] for result in body["results"]])
     distances = sklearn_reference(published.model, rows)["nearest_distance"]
-    reference_distances = np.sort(sklearn_reference(published.model, published.X)["nearest_distance"])
+    scaler, svc = published.model[0], published.model[-1]
+    all_distances = euclidean_distances(scaler.transform(published.X), svc.support_vectors_)
+    all_distances[svc.support_, np.arange(len(svc.support_))] = np.inf
+    reference_distances = np.sort(all_distances.min(axis=1))
     assert distances.min() > 1e-3  # off the support vectors, where sklearn's distance is rounding noise
     ecdf = 100.0 * np.searchsorted(reference_distances, distances, side="right") / len(reference_distances)
     assert np.ptp(ecdf) > 20  # the rows spread over the distribution
