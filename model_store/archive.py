@@ -25,7 +25,7 @@ from model_store.errors import BundleFormatError, UnsafeArchiveError
 from model_store.manifest import MANIFEST_FILE, MAX_MANIFEST_BYTES, MAX_MANIFEST_DEPTH, SIGNATURE_FILE
 from model_store.strict_json import loads_strict
 
-__all__ = ["MAX_MEMBER_BYTES", "is_archive", "pack_directory", "read_archive"]
+__all__ = ["MAX_MEMBER_BYTES", "is_archive", "pack_directory", "pack_members", "read_archive"]
 
 MAX_MEMBER_BYTES = 2 * 1024**3  # per entry and in total: the archive is read into memory
 _MAX_MEMBERS = 64
@@ -69,12 +69,22 @@ def pack_directory(bundle_dir: Path, out: Path | io.BufferedIOBase) -> None:
 
 
 def _write_tar(bundle_dir: Path, names: list[str], handle) -> None:
+    members = {}
+    for name in names:
+        try:
+            members[name] = (bundle_dir / name).read_bytes()
+        except OSError as exc:
+            raise BundleFormatError(f"{bundle_dir}/{name}: cannot read it to pack: {exc.strerror}") from exc
+    pack_members(members, handle)
+
+
+def pack_members(members: dict[str, bytes], handle) -> None:
+    """Write ``{file name: bytes}`` as the deterministic tar to ``handle``: the manifest, the other files sorted,
+    the signature last (the order ``pack_directory`` writes)."""
+    names = sorted(members, key=lambda name: ({MANIFEST_FILE: 0, SIGNATURE_FILE: 2}.get(name, 1), name))
     with tarfile.open(fileobj=handle, mode="w", format=tarfile.PAX_FORMAT) as tar:
         for name in names:
-            try:
-                data = (bundle_dir / name).read_bytes()
-            except OSError as exc:
-                raise BundleFormatError(f"{bundle_dir}/{name}: cannot read it to pack: {exc.strerror}") from exc
+            data = members[name]
             info = tarfile.TarInfo(name)
             info.size = len(data)
             info.mode = 0o644

@@ -39,7 +39,7 @@ from service.request_ids import RequestIdMiddleware
 from service.score_routes import add_score_routes
 from service.settings import Settings
 
-__all__ = ["create_app", "create_app_from_environ"]
+__all__ = ["create_app", "create_app_from_environ", "poll_deadline"]
 
 _MULTIPROCESS_ENVIRON_KEY = "PROMETHEUS_MULTIPROC_DIR"
 
@@ -58,7 +58,8 @@ def create_app(
     metrics = ServiceMetrics(environ.get(_MULTIPROCESS_ENVIRON_KEY) or None)
     store = store if store is not None else Store(settings.store_root)
     authenticator = Authenticator(settings.tokens_file)
-    registry = ModelRegistry(store, metrics, on_event=write_log, pinned_cache_bytes=settings.pinned_cache_bytes)
+    registry = ModelRegistry(store, metrics, on_event=write_log, poll_deadline=poll_deadline(settings.poll_seconds),
+                             pinned_cache_bytes=settings.pinned_cache_bytes)
     gate = ScoringGate(settings.scoring_threads, settings.scoring_queue)
     services = Services(
         settings=settings,
@@ -70,16 +71,20 @@ def create_app(
         write_log=write_log,
         gate=gate,
     )
-    poller = Poller(settings.poll_seconds, [registry.refresh_all, authenticator.refresh])
+    # Two threads: a store read that hangs (a stuck network filesystem) must never keep a revoked token working.
+    pollers = [Poller(settings.poll_seconds, [registry.refresh_all], name="rbfgate-store-poll"),
+               Poller(settings.poll_seconds, [authenticator.refresh], name="rbfgate-token-poll")]
 
     @asynccontextmanager
     async def lifespan(app: FastAPI):
         await run_in_threadpool(registry.refresh_all)
-        poller.start()
+        for poller in pollers:
+            poller.start()
         try:
             yield
         finally:
-            poller.stop()
+            for poller in pollers:
+                poller.stop()
             gate.close()
             metrics.worker_exited()
 
@@ -102,6 +107,16 @@ def create_app(
     app.add_middleware(RequestIdMiddleware)  # outermost: every answer the app gives carries X-Request-ID
     app.state.services = services
     return app
+
+
+def poll_deadline(poll_seconds: float) -> float:
+    """How long one store poll may run before the worker reports not ready: 10 intervals, at least 2 s.
+
+    A poll reads one small pointer per model and, after a switch, loads one
+    bundle (about 1 s for 100,000 support vectors x 50 features, see the
+    README's performance section), so only a hung read takes this long.
+    """
+    return max(2.0, 10.0 * poll_seconds)
 
 
 def create_app_from_environ() -> FastAPI:

@@ -8,6 +8,7 @@
     GET /models/{model}/versions/{version}/openapi.json   the same for one version
     GET /models/{model}/versions/{version}/bundle    the single-file bundle (deterministic tar)
     GET /models/{model}/history                      the hash-chained trail and its verification
+    GET /models/{model}/history?at=TIME              the version live at an RFC 3339 time, from the verified trail
 
 Metadata leaves out the golden vectors' inputs (they are reference rows,
 often training data); the bundle download, which holds them, needs a token.
@@ -24,11 +25,12 @@ from fastapi import FastAPI, Request
 from starlette.responses import JSONResponse, Response, StreamingResponse
 
 from model_store.api_document import api_document
-from model_store.archive import pack_directory
+from model_store.archive import pack_members
 from model_store.digest import canonical_json, sha256_bytes
-from model_store.errors import HistoryError, NotFoundError
-from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, Manifest, read_manifest
+from model_store.errors import NotFoundError
+from model_store.manifest import Manifest
 from model_store.naming import check_name
+from model_store.store.timeline import parse_moment
 from service.context import Services
 from service.schema import record_schema
 
@@ -70,7 +72,7 @@ def add_model_routes(app: FastAPI, services: Services) -> None:
         info = _version_info(services, model, version)
         document, manifest, digest = _manifest(services, model, version)
         serving = registry.serving(model)
-        signed = (store.bundle_dir(model, version) / SIGNATURE_FILE).is_file()
+        signed = store.signature(model, version) is not None
         return {
             "model": model,
             "version": version,
@@ -114,9 +116,10 @@ def add_model_routes(app: FastAPI, services: Services) -> None:
     @app.get("/models/{model}/versions/{version}/bundle")
     def download_bundle(model: str, version: str, request: Request) -> Response:
         """The version's single-file bundle, verified before it is sent."""
-        bundle = store.load_verified(model, version)  # never hand out a bundle that fails its checks
+        # Never hand out a bundle that fails its checks, and ship exactly the bytes that were checked.
+        bundle, members = store.verified_members(model, version)
         spool = tempfile.SpooledTemporaryFile(max_size=_SPOOL_BYTES)
-        pack_directory(store.bundle_dir(model, version), spool)
+        pack_members(members, spool)
         size = spool.tell()
         spool.seek(0)
         tar_digest = hashlib.sha256()
@@ -133,15 +136,15 @@ def add_model_routes(app: FastAPI, services: Services) -> None:
         return StreamingResponse(_chunks(spool), media_type=_bundle_media_type(request), headers=headers)
 
     @app.get("/models/{model}/history")
-    def model_history(model: str) -> dict[str, Any]:
-        """Every activation and rollback, oldest first, with the result of checking its hash chain."""
+    def model_history(model: str, at: str | None = None) -> dict[str, Any]:
+        """Every entry, oldest first, with its verification; with ``at``, the version live at that time.
+
+        The same document as ``rbfgate history NAME --verify --json`` (or ``--at TIME --json``).
+        """
         _versions(services, model)
-        entries = store.history(model)
-        try:
-            verification = {"ok": True, "entries": store.verify_history(model), "detail": None}
-        except HistoryError as exc:
-            verification = {"ok": False, "entries": len(entries), "detail": str(exc)}
-        return {"model": model, "entries": entries, "verification": verification}
+        if at is not None:
+            return store.live_at(model, parse_moment(at)).to_dict()
+        return store.history_document(model)
 
 
 def _model_summary(services: Services, name: str) -> dict[str, Any]:
@@ -155,6 +158,7 @@ def _model_summary(services: Services, name: str) -> dict[str, Any]:
         },
         "served_by_this_worker": None if serving is None else {"version": serving.version, "bundle_sha256": serving.digest},
         "load_failure": None if failure is None else failure.to_dict(),
+        "unexplained_pointer": services.registry.unexplained(name),
     }
 
 
@@ -179,9 +183,7 @@ def _manifest(services: Services, name: str, version: str) -> tuple[dict[str, An
     loaded = services.registry.serving(name)
     if loaded is not None and loaded.version == version:
         return loaded.bundle.document, loaded.bundle.manifest, loaded.digest
-    directory = services.store.bundle_dir(name, version)
-    document, manifest = read_manifest(directory / MANIFEST_FILE)
-    return document, manifest, sha256_bytes(canonical_json(document))
+    return services.store.manifest(name, version)
 
 
 def _document(services: Services, name: str, version: str) -> dict[str, Any]:

@@ -19,6 +19,7 @@ from pydantic import BaseModel
 from pydantic.json_schema import models_json_schema
 
 from model_store.naming import MAX_NAME_LENGTH
+from model_store.store.timeline import AT_PATTERN
 from service.auth import ACCESS_RULES
 from service.openapi_models import (
     DOCUMENTED_MODELS,
@@ -92,7 +93,9 @@ _OPERATIONS: dict[tuple[str, str], _Operation] = {
         {200: ("the single-file bundle (octet-stream when Accept asks only for that)",
                ("application/x-tar", "application/octet-stream"), {"type": "string", "format": "binary"})}),
     ("GET", "/models/{model}/history"): _Operation(
-        "getHistory", None, {200: ("the trail and its verification", _JSON, History)}),
+        "getHistory", None, {200: ("the trail and its verification; with ?at=, the version live then", _JSON,
+                                   {"anyOf": [{"$ref": _REF.format(model="History")},
+                                              {"$ref": _REF.format(model="LiveAt")}]})}),
     ("POST", "/models/{model}/activate"): _Operation(
         "activate", ActivateRequest, {200: ("activated and switched", _JSON, Switched)}),
     ("POST", "/models/{model}/rollback"): _Operation(
@@ -151,6 +154,9 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
     rule = ACCESS_RULES[(method, path)]
     operation["operationId"] = described.operation_id
     for parameter in operation.get("parameters", []):
+        if parameter["in"] == "query" and parameter["name"] == "at":
+            parameter["description"] = "RFC 3339 date-time with Z or an offset: answer the version live then"
+            parameter["schema"] = {"type": "string", "format": "date-time", "pattern": AT_PATTERN}
         if parameter["in"] == "path":
             parameter["schema"] = {"type": "string", "minLength": 1, "maxLength": MAX_NAME_LENGTH,
                                    "pattern": NAME_PATTERN}
@@ -169,8 +175,11 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
             "content": {_JSON: {"schema": {"$ref": _REF.format(model=described.body.__name__)}}},
         }
         statuses |= set(_BODY_STATUSES)
-    if path.endswith(("/activate", "/rollback", "/preview", "/bundle", "/outside-domain")) or path.startswith("/score/"):
+    if path.endswith(("/activate", "/rollback", "/preview", "/bundle", "/outside-domain", "/history")) or \
+            path.startswith("/score/"):
         statuses.add(409)
+    if path.endswith("/history"):
+        statuses.add(422)  # ?at= that is not an RFC 3339 date-time
     if path == "/readyz":
         statuses.add(503)
     if path.startswith("/problems/"):

@@ -17,7 +17,7 @@ from model_store.naming import MAX_NAME_LENGTH
 from model_store.refusal import MAX_ID_LENGTH, REASONS
 
 __all__ = [
-    "ActivateRequest", "Alive", "DOCUMENTED_MODELS", "History", "ModelDetail", "ModelList", "NAME_PATTERN",
+    "ActivateRequest", "Alive", "DOCUMENTED_MODELS", "History", "LiveAt", "ModelDetail", "ModelList", "NAME_PATTERN",
     "OutsideDomainChoice", "OutsideDomainRequest", "Preview", "PreviewRequest", "Problem", "Readiness",
     "RecordsRefusedProblem", "RollbackRequest", "ScoreRequest", "ScoreResponse", "Switched", "VersionDetail",
 ]
@@ -163,6 +163,8 @@ class ModelSummary(_Doc):
     active: ActiveVersion | None
     served_by_this_worker: ServedVersion | None
     load_failure: LoadFailureInfo | None
+    unexplained_pointer: str | None = Field(
+        description="why this worker does not follow the pointer (its history does not explain it), or null")
 
 
 class ModelList(_Doc):
@@ -232,6 +234,8 @@ class HistoryEntry(_Doc):
     seq: int = Field(ge=1)
     time: str
     actor: str
+    via: Literal["cli", "http", "python"] | None = Field(
+        default=None, description="through what the actor acted; absent in entries written before it was recorded")
     action: str
     version: str | None
     digest: str | None
@@ -245,7 +249,22 @@ class HistoryEntry(_Doc):
 class Verification(_Doc):
     ok: bool
     entries: int
-    detail: str | None
+    problem: str | None
+
+
+class LiveAt(_Doc):
+    model: str
+    at: str
+    version: str
+    bundle_sha256: str
+    made_live: HistoryEntry
+    ended: HistoryEntry | None
+
+
+class Undone(_Doc):
+    version: str
+    bundle_sha256: str
+    activated_at_seq: int
 
 
 class History(_Doc):
@@ -285,6 +304,7 @@ class Switched(_Doc):
     entry: HistoryEntry
     served_by_this_worker: ServedVersion | None
     load_failure: LoadFailureInfo | None
+    undid: Undone | None = Field(default=None, description="rollback only: the activation it undid")
 
 
 class Preview(_Doc):
@@ -303,6 +323,7 @@ class ReadyModel(_Doc):
     active: ServedVersion
     serving: ServedVersion | None
     failure: LoadFailureInfo | None
+    unexplained_pointer: str | None
 
 
 class TokensStatus(_Doc):
@@ -319,7 +340,7 @@ class Readiness(_Doc):
 
 
 DOCUMENTED_MODELS = [
-    Problem, RecordsRefusedProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History,
+    Problem, RecordsRefusedProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, LiveAt,
     ActivateRequest, RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness, OutsideDomainRequest,
     OutsideDomainChoice,
 ]

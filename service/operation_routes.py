@@ -6,7 +6,7 @@
     POST /models/{model}/outside-domain  {"action": "refuse" | "flag", "reason": "..."}
 
 Activation and rollback go through the store (the same checks and the same
-history as the CLI, with the token's name as the actor) and answer only after
+history as the CLI, with the token's name as the actor and ``via: http``) and answer only after
 this worker has switched, so the caller's next request here is served by the
 new version. Other workers and replicas follow within one poll interval.
 Activation compares the contracts of the active version and the candidate on
@@ -24,6 +24,7 @@ from starlette.concurrency import run_in_threadpool
 
 from model_store.naming import check_name
 from model_store.store.preview import preview
+from model_store.store.state import stack_before
 from service.body import parse_json, read_body
 from service.context import Services
 from service.problems import ServiceProblem, validation_problem
@@ -68,9 +69,11 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
 
         def run() -> dict[str, Any]:
             check_name(model, what="model name")
-            entry = services.store.activate(model, body.version, reason=body.reason, actor=actor,
-                                            accept_breaking=body.accept_breaking, recent=services.recent.records(model))
-            return _switched(services, model, entry)
+            verified: list = []
+            entry = services.store.activate(model, body.version, reason=body.reason, actor=actor, via="http",
+                                            accept_breaking=body.accept_breaking, recent=services.recent.records(model),
+                                            on_verified=verified.append)
+            return _switched(services, model, entry, verified)
 
         return await run_in_threadpool(run)
 
@@ -82,8 +85,13 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
 
         def run() -> dict[str, Any]:
             check_name(model, what="model name")
-            entry = services.store.rollback(model, reason=body.reason, actor=actor)
-            return _switched(services, model, entry)
+            verified: list = []
+            entry = services.store.rollback(model, reason=body.reason, actor=actor, via="http",
+                                            on_verified=verified.append)
+            undone = stack_before(services.store.history(model), entry["seq"])[-1]
+            # Which step it walked back: the activation it undid (see model_store.store.state).
+            return {**_switched(services, model, entry, verified),
+                    "undid": {"version": undone.version, "bundle_sha256": undone.digest, "activated_at_seq": undone.seq}}
 
         return await run_in_threadpool(run)
 
@@ -95,7 +103,7 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
 
         def run() -> dict[str, Any]:
             check_name(model, what="model name")
-            entry = services.store.set_outside_action(model, body.action, reason=body.reason, actor=actor)
+            entry = services.store.set_outside_action(model, body.action, reason=body.reason, actor=actor, via="http")
             services.registry.refresh(model, force=True)  # this worker applies it to the next request
             return {"model": model, "outside_domain": body.action, "entry": entry}
 
@@ -132,9 +140,12 @@ def _actor(request: Request) -> str:
     return caller.name
 
 
-def _switched(services: Services, model: str, entry: dict[str, Any]) -> dict[str, Any]:
-    loaded = services.registry.refresh(model, force=True)
-    failure = services.registry.failure(model)
+def _switched(services: Services, model: str, entry: dict[str, Any], verified: list) -> dict[str, Any]:
+    # The bundle the store verified for this change is served as it is: loading and verifying it a
+    # second time doubled the time to answer, and kept the other workers' polls waiting for the pointer.
+    registry = services.registry
+    loaded = registry.adopt(model, verified[0]) if verified else registry.refresh(model, force=True)
+    failure = registry.failure(model)
     return {
         "model": model,
         "entry": entry,

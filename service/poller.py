@@ -1,8 +1,9 @@
 """A background thread that runs the service's periodic checks.
 
-Each tick runs every task in order (follow the store's active pointers,
-re-read the tokens file). A failing task is logged and the thread goes on:
-serving must never stop because one poll went wrong.
+Each tick runs every task in order. The service runs one poller for the
+store and one for the tokens file, so that neither waits for the other. A
+failing task is logged and the thread goes on: serving must never stop
+because one poll went wrong.
 """
 
 from __future__ import annotations
@@ -19,14 +20,15 @@ _log = logging.getLogger("rbfgate.service")
 class Poller:
     """Runs ``tasks`` every ``interval`` seconds on a daemon thread until ``stop``."""
 
-    def __init__(self, interval: float, tasks: Sequence[Callable[[], None]]) -> None:
+    def __init__(self, interval: float, tasks: Sequence[Callable[[], None]], *, name: str = "rbfgate-poller") -> None:
         self.interval = interval
+        self.name = name
         self._tasks = tuple(tasks)
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
 
     def start(self) -> None:
-        self._thread = threading.Thread(target=self._run, name="rbfgate-poller", daemon=True)
+        self._thread = threading.Thread(target=self._run, name=self.name, daemon=True)
         self._thread.start()
 
     def stop(self, timeout: float = 10.0) -> None:

@@ -10,10 +10,19 @@ failure is kept for /readyz and the metrics.
 
 A background thread polls the store's pointers every ``poll_seconds``
 (``Store.active`` is one small read per model), so every worker, and every
-replica on the same store, follows an activation within one interval. The
-operators' outside-domain choice (refuse or flag) lives in the history; the
-pointer's history head moves with every entry, so the trail is read again
-only when the head has moved.
+replica on the same store, follows an activation within one interval.
+
+Only pointer states the verified history explains are followed: when a
+pointer changes, ``Store.explained_active`` checks the hash chain, the
+pointer's head and that the trail's activations lead to the version it
+names. A pointer edited by hand (or a trail that no longer verifies) is not
+followed: the last verified version keeps serving, and the model is reported
+not ready with the reason (``/readyz``, ``/models/{model}``). A poll that
+runs past its deadline (a hung read on a network filesystem) also makes the
+worker not ready; tokens are refreshed by their own thread, never behind it.
+The operators' outside-domain choice (refuse or flag) lives in the history;
+the pointer's history head moves with every entry, so the trail is read
+again only when the head has moved.
 """
 
 from __future__ import annotations
@@ -29,7 +38,7 @@ from types import MappingProxyType
 
 from model_store.bundle import Bundle
 from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION
-from model_store.errors import InvalidNameError, NotFoundError, RbfgateError, StoreError
+from model_store.errors import HistoryError, InvalidNameError, NotFoundError, RbfgateError, StoreError
 from model_store.naming import check_name
 from service.metrics import ServiceMetrics
 from service.settings import DEFAULT_PINNED_CACHE_BYTES
@@ -82,9 +91,11 @@ class ModelRegistry:
         *,
         on_event: Callable[[dict], None] | None = None,
         clock: Callable[[], float] = time.monotonic,
+        poll_deadline: float = 10.0,
         pinned_cache_bytes: int = DEFAULT_PINNED_CACHE_BYTES,
     ) -> None:
         self._store = store
+        self.poll_deadline = poll_deadline
         self._pinned_cache_bytes = pinned_cache_bytes
         self._metrics = metrics
         self._on_event = on_event or (lambda event: None)
@@ -94,6 +105,9 @@ class ModelRegistry:
         self._failures: Mapping[str, LoadFailure] = MappingProxyType({})
         self._outside: Mapping[str, tuple[str, str]] = MappingProxyType({})  # name -> (history head, action)
         self._poll_error: str | None = None
+        self._explained: Mapping[str, tuple[str, str, str]] = MappingProxyType({})  # pointers the history explains
+        self._unexplained: Mapping[str, str] = MappingProxyType({})  # model -> why its pointer is not followed
+        self._poll_started: float | None = None
         self._started = False
         self._refresh_lock = threading.RLock()
         self._pinned: OrderedDict[tuple[str, str], LoadedModel] = OrderedDict()
@@ -110,14 +124,30 @@ class ModelRegistry:
     def failure(self, name: str) -> LoadFailure | None:
         return self._failures.get(name)
 
+    def unexplained(self, name: str) -> str | None:
+        """Why this worker does not follow ``name``'s pointer (the history does not explain it), or None."""
+        return self._unexplained.get(name)
+
+    def poll_overrun(self) -> str | None:
+        """Set while the current store poll has run past its deadline (a store read hangs)."""
+        started = self._poll_started
+        if started is None:
+            return None
+        running = self._clock() - started
+        if running <= self.poll_deadline:
+            return None
+        return (f"the store poll has been running for {running:.0f} s (deadline {self.poll_deadline:g} s): a store "
+                "read hangs; serving the versions already loaded")
+
     def outside_action(self, name: str) -> str:
         """``refuse`` or ``flag`` for records outside ``name``'s domain, as of the last poll."""
         known = self._outside.get(name)
         return DEFAULT_OUTSIDE_ACTION if known is None else known[1]
 
     def readiness(self) -> tuple[bool, dict]:
-        """(ready, report): ready when every model with an active pointer has a loaded version."""
-        table, pointers, failures = self._table, self._pointers, self._failures
+        """(ready, report): ready when every model with an active pointer has a loaded version that the
+        verified history explains, and the store poll is not stuck past its deadline."""
+        table, pointers, failures, unexplained = self._table, self._pointers, self._failures, self._unexplained
         models = []
         for name in sorted(pointers):
             loaded = table.get(name)
@@ -127,31 +157,47 @@ class ModelRegistry:
                 "active": {"version": pointers[name][0], "bundle_sha256": pointers[name][1]},
                 "serving": None if loaded is None else {"version": loaded.version, "bundle_sha256": loaded.digest},
                 "failure": None if failure is None else failure.to_dict(),
+                "unexplained_pointer": unexplained.get(name),
             })
-        ready = self._started and all(entry["serving"] is not None for entry in models)
+        overrun = self.poll_overrun()
+        ready = (
+            self._started and overrun is None
+            and all(entry["serving"] is not None and entry["unexplained_pointer"] is None for entry in models)
+        )
         degraded = bool(failures) or self._poll_error is not None
         status = "ready" if ready and not degraded else ("degraded" if ready else "not_ready")
-        return ready, {"state": status, "store_error": self._poll_error, "models": models}
+        return ready, {"state": status, "store_error": overrun or self._poll_error, "models": models}
 
     # ---- following the store
 
     def refresh_all(self) -> None:
-        """Bring every model in line with the store's active pointers."""
-        with self._refresh_lock:
-            try:
-                if not self._store.root.is_dir():
-                    raise StoreError(f"{self._store.root}: the store directory no longer exists; serving the "
-                                     "versions already loaded until it is back")
-                names = self._store.models()
-            except RbfgateError as exc:
-                self._note_poll_error(exc)
-                return
-            self._poll_error = None  # a refresh below sets it again if a pointer cannot be read
-            for name in names:
-                self.refresh(name)
-            for gone in (set(self._table) | set(self._pointers)) - set(names):
-                self._lost(gone)
-            self._started = True
+        """Bring every model in line with the store's active pointers.
+
+        The poll's start is noted before it waits for the lock, so a poll stuck
+        behind another refresh counts against its deadline too.
+        """
+        self._poll_started = self._clock()
+        try:
+            with self._refresh_lock:
+                self._refresh_all()
+        finally:
+            self._poll_started = None
+
+    def _refresh_all(self) -> None:
+        try:
+            if not self._store.root.is_dir():
+                raise StoreError(f"{self._store.root}: the store directory no longer exists; serving the "
+                                 "versions already loaded until it is back")
+            names = self._store.models()
+        except RbfgateError as exc:
+            self._note_poll_error(exc)
+            return
+        self._poll_error = None  # a refresh below sets it again if a pointer cannot be read
+        for name in names:
+            self.refresh(name)
+        for gone in (set(self._table) | set(self._pointers)) - set(names):
+            self._lost(gone)
+        self._started = True
 
     def refresh(self, name: str, *, force: bool = False) -> LoadedModel | None:
         """Follow ``name``'s active pointer; return what this worker now serves for it."""
@@ -165,9 +211,11 @@ class ModelRegistry:
                 return self._table.get(name)
             if record is None:
                 return self._lost(name)
-            self._follow_outside_choice(name, record.history_head)
             target = (record.version, record.digest)
             self._pointers = MappingProxyType({**self._pointers, name: target})
+            if not self._follows(name, record):
+                return self._table.get(name)  # nor its outside-domain choice: the history does not verify
+            self._follow_outside_choice(name, record.history_head)
             current = self._table.get(name)
             if current is not None and (current.version, current.digest) == target:
                 self._clear_failure(name)
@@ -181,6 +229,51 @@ class ModelRegistry:
             ):
                 return current
             return self._switch(name, record.version, record.digest, current)
+
+    def adopt(self, name: str, bundle: Bundle) -> LoadedModel | None:
+        """Serve ``bundle``, just verified by an activation or rollback in this worker, if the store's pointer
+        (explained by its history) names it; otherwise follow the pointer as a poll would."""
+        with self._refresh_lock:
+            try:
+                record = self._store.active(name)
+            except RbfgateError:
+                record = None
+            current = self._table.get(name)
+            if (
+                record is None
+                or (record.version, record.digest) != (bundle.version, bundle.digest)
+                or not self._follows(name, record)
+            ):
+                return self.refresh(name, force=True)
+            self._pointers = MappingProxyType({**self._pointers, name: (record.version, record.digest)})
+            if current is not None and (current.version, current.digest) == (bundle.version, bundle.digest):
+                return current
+            return self._install(name, bundle, current, load_seconds=0.0)
+
+    def _follows(self, name: str, record) -> bool:
+        """Whether the verified history explains ``record`` (checked once per pointer state)."""
+        state = (record.version, record.digest, record.history_head)
+        if self._explained.get(name) == state and name not in self._unexplained:
+            return True
+        try:
+            explained = self._store.explained_active(name)
+        except HistoryError as exc:
+            reason = (f"the store's pointer names {record.version}, which its history does not explain ({exc}); "
+                      "serving the last verified version")
+            if self._unexplained.get(name) != reason:
+                _log.error("not following %s: %s", name, reason)
+                self._on_event({"event": "pointer_unexplained", "model": name, "version": record.version,
+                                "detail": str(exc)})
+            self._unexplained = MappingProxyType({**self._unexplained, name: reason})
+            return False
+        except RbfgateError as exc:
+            self._note_poll_error(exc)
+            return False
+        if explained is None or (explained.version, explained.digest) != state[:2]:
+            return False  # the pointer moved between the two reads: the next poll looks again
+        self._explained = MappingProxyType({**self._explained, name: state})
+        self._unexplained = MappingProxyType({key: value for key, value in self._unexplained.items() if key != name})
+        return True
 
     def _follow_outside_choice(self, name: str, head: str) -> None:
         known = self._outside.get(name)
@@ -196,6 +289,7 @@ class ModelRegistry:
             self._on_event({"event": "outside_domain_action", "model": name, "action": action})
 
     def _switch(self, name: str, version: str, digest: str, current: LoadedModel | None) -> LoadedModel | None:
+        started = self._clock()
         try:
             bundle = self._store.load_verified(name, version)
             if bundle.digest != digest:
@@ -205,13 +299,17 @@ class ModelRegistry:
         except Exception as exc:  # noqa: BLE001 - whatever a bundle does, the old version keeps serving
             self._record_failure(name, version, digest, exc)
             return current
-        loaded = LoadedModel(name, version, digest, bundle, _now())
+        return self._install(name, bundle, current, load_seconds=self._clock() - started)
+
+    def _install(self, name: str, bundle: Bundle, current: LoadedModel | None, *, load_seconds: float) -> LoadedModel:
+        loaded = LoadedModel(name, bundle.version, bundle.digest, bundle, _now())
         self._table = MappingProxyType({**self._table, name: loaded})  # the switch: one assignment
         self._clear_failure(name)
         old = None if current is None else (current.version, current.digest)
-        self._metrics.switched(name, old, (version, digest))
-        self._on_event({"event": "switch", "model": name, "version": version, "bundle_sha256": digest,
-                        "previous": None if current is None else current.version})
+        self._metrics.switched(name, old, (bundle.version, bundle.digest))
+        self._on_event({"event": "switch", "model": name, "version": bundle.version, "bundle_sha256": bundle.digest,
+                        "previous": None if current is None else current.version,
+                        "load_seconds": round(load_seconds, 3)})
         return loaded
 
     def _record_failure(self, name: str, version: str, digest: str, exc: Exception) -> None:

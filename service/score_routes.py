@@ -118,6 +118,13 @@ def _active(services: Services, name: str) -> LoadedModel:
     loaded = registry.serving(name) or registry.refresh(name)
     if loaded is not None:
         return loaded
+    unexplained = registry.unexplained(name)
+    if unexplained is not None:
+        raise ServiceProblem(
+            503, "model-unavailable", "The model's active version cannot be served",
+            f"{name}: {unexplained}, and no verified version is loaded in this worker; "
+            f"'rbfgate history {name} --verify' names the problem", headers={"Retry-After": "5"},
+        )
     failure = registry.failure(name)
     if failure is not None:
         raise ServiceProblem(

@@ -4,7 +4,7 @@ Every command that reads or changes a store takes ``--store DIR``; without
 it the store is ``$RBFGATE_STORE``, else ``$XDG_DATA_HOME/rbfgate/store``,
 else ``~/.local/share/rbfgate/store``. Commands that change a store take
 ``--actor NAME`` (default: the operating-system user), which the history
-records. ``publish`` and ``trust add`` create the store when the directory
+records with ``via: cli``. ``publish`` and ``trust add`` create the store when the directory
 is missing or empty; every other command needs an existing store.
 """
 
@@ -20,13 +20,15 @@ from collections.abc import Mapping
 from datetime import datetime, timezone
 from pathlib import Path
 
-from model_store.errors import CsvError, HistoryError, NotFoundError
+from model_store.errors import CsvError, NotFoundError
 from model_store.refusal import from_text
 from model_store.store import Store, resolve_store_root
 from model_store.store.history import format_time
 from model_store.store.preview import preview
 from model_store.store.signer import generate_key_files, sign_bundle
 from model_store.store.signing import parse_public_key
+from model_store.store.state import stack_before
+from model_store.store.timeline import parse_moment
 from model_store.tables import CsvFile
 
 __all__ = ["default_actor", "read_preview_inputs", "register"]
@@ -68,10 +70,13 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
     parser.add_argument("action", metavar="ACTION", nargs="?", choices=("refuse", "flag"),
                         help="refuse or flag; omit it to show the current choice")
     parser.add_argument("--reason", metavar="TEXT", help="why (required with ACTION, kept in the history)")
-    parser = add("history", _history, "print the history of a model; --verify checks its hash chain")
+    parser = add("history", _history, "print the history of a model; --verify checks everything it vouches for; "
+                 "--at TIME says which version was live then")
     parser.add_argument("name", metavar="NAME")
-    parser.add_argument("--verify", action="store_true", help="check the hash chain, the active pointer's head "
-                        "and that every stored version has its publish entry")
+    parser.add_argument("--verify", action="store_true", help="check the hash chain, the active pointer, every "
+                        "version folder against its publish entry, and the trust trail")
+    parser.add_argument("--at", metavar="TIME", help="RFC 3339 date-time (e.g. 2026-11-30T14:00:00Z): the version live "
+                        "then, the entry that made it live and the one that ended it, from the verified history")
     parser.add_argument("--json", action="store_true", help="print JSON instead of text")
     parser = add("preview", _preview, "compare a candidate version with the active one; changes nothing")
     parser.add_argument("name", metavar="NAME")
@@ -98,10 +103,13 @@ def _register_trust(parser, environ) -> None:
         ("add", _trust_add, "trust a public key (a .pub file from 'rbfgate keygen', or 64 hex characters)"),
         ("list", _trust_list, "list the trusted keys"),
         ("remove", _trust_remove, "stop trusting a key (by its key id)"),
+        ("history", _trust_history, "print the trust trail: every key added or removed, by whom and when"),
     ):
         sub = actions.add_parser(name, help=help_text, description=help_text)
         sub.add_argument("--store", metavar="DIR", help="store directory (default as for the other store commands)")
-        if name != "list":
+        if name == "history":
+            sub.add_argument("--json", action="store_true", help="print JSON instead of text")
+        if name in ("add", "remove"):
             sub.add_argument("--actor", metavar="NAME", help="who is acting (default: the OS user)")
         sub.set_defaults(handler=functools.partial(_guarded, handler, environ=environ))
         if name == "add":
@@ -161,7 +169,7 @@ def _publish(args, environ) -> int:
     if not Path(args.bundle).exists():  # before the store is created: a typo must not leave an empty store
         raise NotFoundError(f"{args.bundle}: no such bundle; pass a bundle directory or its .tar file")
     store = _store(args, environ, create=True)
-    outcome = store.publish(Path(args.bundle), actor=_actor(args, environ))
+    outcome = store.publish(Path(args.bundle), actor=_actor(args, environ), via="cli")
     if outcome.already_present:
         print(f"{outcome.name} {outcome.version} is already published with digest {outcome.digest}; nothing changed")
     else:
@@ -182,7 +190,7 @@ def _versions(args, environ) -> int:
 def _activate(args, environ) -> int:
     records, _ = read_preview_inputs(Path(args.inputs)) if args.inputs else ([], [])
     entry = _store(args, environ).activate(
-        args.name, args.version, reason=args.reason, actor=_actor(args, environ),
+        args.name, args.version, reason=args.reason, actor=_actor(args, environ), via="cli",
         accept_breaking=args.accept_breaking, recent=records, convert=from_text,
     )
     print(f"activated {args.name} {entry['version']} (digest {entry['digest']}); history entry seq {entry['seq']}")
@@ -192,8 +200,12 @@ def _activate(args, environ) -> int:
 
 
 def _rollback(args, environ) -> int:
-    entry = _store(args, environ).rollback(args.name, reason=args.reason, actor=_actor(args, environ))
-    print(f"rolled {args.name} back to {entry['version']} (digest {entry['digest']}); history entry seq {entry['seq']}")
+    store = _store(args, environ)
+    entry = store.rollback(args.name, reason=args.reason, actor=_actor(args, environ), via="cli")
+    undone = stack_before(store.history(args.name), entry["seq"])[-1]
+    print(f"rolled {args.name} back from {undone.version} to {entry['version']} (digest {entry['digest']}): "
+          f"{entry['version']} was active before {undone.version} was activated at seq {undone.seq}; "
+          f"history entry seq {entry['seq']}")
     return 0
 
 
@@ -202,7 +214,7 @@ def _outside_domain(args, environ) -> int:
     if args.action is None:
         print(f"{args.name}: records outside the domain are {_CHOSEN[store.outside_action(args.name)]}")
         return 0
-    entry = store.set_outside_action(args.name, args.action, reason=args.reason, actor=_actor(args, environ))
+    entry = store.set_outside_action(args.name, args.action, reason=args.reason, actor=_actor(args, environ), via="cli")
     print(f"{args.name}: records outside the domain are now {_CHOSEN[args.action]}; history entry seq {entry['seq']}")
     return 0
 
@@ -212,31 +224,43 @@ _CHOSEN = {"refuse": "refused (outside_domain)", "flag": "answered, flagged with
 
 def _history(args, environ) -> int:
     store = _store(args, environ)
-    entries = store.history(args.name)
-    problem, count = None, None
-    if args.verify:
-        try:
-            count = store.verify_history(args.name)
-        except HistoryError as exc:
-            problem = str(exc)
+    if args.at is not None:
+        return _history_at(store, args)
+    document = store.history_document(args.name, verify=args.verify)
+    verification = document.get("verification")
+    problem = None if verification is None else verification["problem"]
     if args.json:
-        document = {"model": args.name, "entries": entries}
-        if args.verify:
-            document["verification"] = {"ok": problem is None, "entries": count, "problem": problem}
         print(json.dumps(document, indent=2, ensure_ascii=False))
     else:
-        for entry in entries:
-            digest = f"{entry['digest'][:16]}..." if entry["digest"] else "-"
-            print(f"seq {entry['seq']}  {entry['time']}  {entry['action']}  {entry['version'] or '-'}  "
-                  f"digest {digest}  by {entry['actor']}  reason: {entry['reason'] or '-'}"
-                  + "".join(f"  accepted breaking: {change}" for change in entry.get("accepted_breaking", [])))
-        if args.verify and problem is None:
-            print(f"verified: {count} entries, the hash chain is intact, its last entry matches the active pointer "
-                  "and every stored version has its publish entry")
+        for entry in document["entries"]:
+            print(_entry_line(entry))
+        if verification is not None and problem is None:
+            print(f"verified: {verification['entries']} entries, the hash chain is intact, its last entry matches the "
+                  "active pointer, every version folder holds what its publish entry recorded, and the trusted keys "
+                  "match the trust trail")
     if problem is not None:
         print(f"rbfgate history: verification failed: {problem}", file=sys.stderr)
         return 1
     return 0
+
+
+def _history_at(store: Store, args) -> int:
+    live = store.live_at(args.name, parse_moment(args.at))
+    if args.json:
+        print(json.dumps(live.to_dict(), indent=2, ensure_ascii=False))
+        return 0
+    print(f"{args.name} at {live.at}: version {live.version} (digest {live.digest})")
+    print(f"made live by: {_entry_line(live.made_live)}")
+    print(f"ended by:     {_entry_line(live.ended)}" if live.ended else "ended by:     - (still live)")
+    return 0
+
+
+def _entry_line(entry: dict) -> str:
+    digest = f"{entry['digest'][:16]}..." if entry["digest"] else "-"
+    key = f"  key {entry['key_id']}" if "key_id" in entry else ""
+    return (f"seq {entry['seq']}  {entry['time']}  {entry['action']}  {entry['version'] or '-'}  digest {digest}{key}  "
+            f"by {entry['actor']} via {entry.get('via') or '-'}  reason: {entry['reason'] or '-'}"
+            + "".join(f"  accepted breaking: {change}" for change in entry.get("accepted_breaking", [])))
 
 
 def _preview(args, environ) -> int:
@@ -248,7 +272,7 @@ def _preview(args, environ) -> int:
 
 
 def _prune(args, environ) -> int:
-    removed = _store(args, environ).prune(args.name, keep=args.keep, actor=_actor(args, environ))
+    removed = _store(args, environ).prune(args.name, keep=args.keep, actor=_actor(args, environ), via="cli")
     print(f"removed from {args.name}: {', '.join(removed)}" if removed else f"nothing to remove from {args.name}")
     return 0
 
@@ -269,7 +293,7 @@ def _sign(args, environ) -> int:
 def _trust_add(args, environ) -> int:
     public_key = parse_public_key(args.public_key)
     key = _store(args, environ, create=True).add_trusted_key(
-        public_key, label=args.label or "", actor=_actor(args, environ)
+        public_key, label=args.label or "", actor=_actor(args, environ), via="cli"
     )
     print(f"trusted key {key.key_id} ({key.label or 'no label'}); this store now requires signed bundles")
     return 0
@@ -286,8 +310,19 @@ def _trust_list(args, environ) -> int:
 
 def _trust_remove(args, environ) -> int:
     store = _store(args, environ)
-    key = store.remove_trusted_key(args.key_id, actor=_actor(args, environ))
+    key = store.remove_trusted_key(args.key_id, actor=_actor(args, environ), via="cli")
     remaining = store.trusted_keys()
     print(f"removed trusted key {key.key_id}" + ("" if remaining else "; no trusted keys remain, so signatures are no "
                                                   "longer required"))
+    return 0
+
+
+def _trust_history(args, environ) -> int:
+    entries = _store(args, environ).trust_history()
+    if args.json:
+        print(json.dumps({"entries": entries}, indent=2, ensure_ascii=False))
+    elif not entries:
+        print("no trust changes recorded")
+    for entry in [] if args.json else entries:
+        print(_entry_line(entry))
     return 0

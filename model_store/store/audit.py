@@ -20,7 +20,9 @@ from __future__ import annotations
 from model_store.errors import HistoryError
 from model_store.store.history import GENESIS, HistoryLine
 from model_store.store.pointer import Pointer
+from model_store.store.folders import StoredVersion, binding_problem
 from model_store.store.publishing import VersionRecord
+from model_store.store.state import Step, stored_versions
 
 __all__ = ["check_active", "check_chain", "check_head", "check_versions", "head_position"]
 
@@ -131,9 +133,9 @@ def check_head(lines: list[HistoryLine], pointer: Pointer | None, model: str) ->
     )
 
 
-def check_active(pointer: Pointer | None, stack: list[tuple[str, str]], model: str) -> None:
+def check_active(pointer: Pointer | None, stack: list[Step], model: str) -> None:
     """Raise ``HistoryError`` unless the pointer names the version the trail's activations lead to."""
-    expected = stack[-1] if stack else (None, None)
+    expected = stack[-1][:2] if stack else (None, None)
     found = (pointer.version, pointer.digest) if pointer is not None else (None, None)
     if found != expected:
         raise HistoryError(
@@ -144,28 +146,35 @@ def check_active(pointer: Pointer | None, stack: list[tuple[str, str]], model: s
 
 
 def check_versions(
-    records: list[VersionRecord], lines: list[HistoryLine], model: str, *, auditing: bool
+    stored: list[StoredVersion], lines: list[HistoryLine], model: str, *, auditing: bool
 ) -> VersionRecord | None:
-    """Raise ``HistoryError`` unless each stored version's ``publish_seq`` names its publish entry.
+    """Raise ``HistoryError`` unless every version folder is bound to its publish entry, and every version the
+    trail says is stored has its folder.
 
-    One version may lack its entry because its publisher was killed after
-    storing it: the one whose ``publish_seq`` is the trail's last seq + 1. An
-    auditor (``auditing=True``) gets that reported, and a record whose digest
-    differs from its publish entry too. A change about to write gets the
-    interrupted version back to record it, and leaves digests alone: a
-    rewritten record loses no entry, and no change can make it match the
-    trail, so ``verify_history`` keeps reporting it. Any other version
-    without its entry means entries were deleted or a version was added by hand.
+    Each folder must agree with itself (``folders.binding_problem``: folder
+    name, record and manifest) and its record's ``publish_seq`` must name the
+    publish entry of that version with that digest. One version may lack its
+    entry because its publisher was killed after storing it: the one whose
+    ``publish_seq`` is the trail's last seq + 1. An auditor (``auditing=True``)
+    gets that reported; a change about to write gets it back to record it.
+    Any other version without its entry means entries were deleted or a
+    version was added by hand; a version whose last publish/prune entry is a
+    publish but whose folder is gone was deleted by hand.
     """
     entries = {item.seq: item.entry for item in lines}
     after_last = (lines[-1].seq if lines else 0) + 1
     interrupted = None
-    for record in sorted(records, key=lambda record: (record.publish_seq, record.version)):
+    for item in sorted(stored, key=lambda item: (item.record.publish_seq if item.record else 0, item.folder)):
+        problem = binding_problem(model, item)
+        if problem is not None:
+            raise problem
+        record = item.record
         entry = entries.get(record.publish_seq)
-        if entry is not None and (entry["action"], entry["version"]) == ("publish", record.version):
-            if entry["digest"] == record.digest or not auditing:
-                continue
-        elif entry is None and record.publish_seq == after_last and interrupted is None:
+        if entry is not None and (entry["action"], entry["version"], entry["digest"]) == (
+            "publish", record.version, record.digest
+        ):
+            continue
+        if entry is None and record.publish_seq == after_last and interrupted is None:
             interrupted = record
             continue
         if entry is None:
@@ -181,6 +190,14 @@ def check_versions(
             f"published.json names publish seq {record.publish_seq}, but {found}; entries were deleted, or the "
             f"version was added or its record rewritten by hand; {_RESTORE}"
         )
+    folders = {item.folder for item in stored}
+    for version, entry in stored_versions([item.entry for item in lines]).items():
+        if version not in folders:
+            raise HistoryError(
+                f"history of {model}: version {version} was published at seq {entry['seq']} (digest "
+                f"{str(entry['digest'])[:16]}...) and never pruned, but its folder versions/{version} is missing; "
+                "it was deleted by hand (prune records every removal); restore the folder from a backup"
+            )
     if interrupted is not None and auditing:
         raise HistoryError(
             f"history of {model}: version {interrupted.version} was stored at {interrupted.published_at} by "

@@ -29,13 +29,13 @@ from model_store.errors import (
     SignatureError,
     VersionConflictError,
 )
-from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, read_manifest
+from model_store.manifest import SIGNATURE_FILE
 from model_store.refusal import Converter, from_json
 from model_store.store.contract import compare_contracts
 from model_store.naming import check_name
 from model_store.store.durable import atomic_write, fsync_directory
-from model_store.store.history import check_text
-from model_store.store.layout import read_settings, require_model, write_settings
+from model_store.store.history import VIAS, check_text
+from model_store.store.layout import require_model
 from model_store.store.publishing import (
     PublishOutcome,
     VersionRecord,
@@ -48,56 +48,60 @@ from model_store.store.publishing import (
 )
 from model_store.store.recovery import commit, recover
 from model_store.store.signing import TrustedKey, check_bundle_signature, key_id
-from model_store.store.state import ModelState
+from model_store.store.state import ModelState, rollback_refusal
+from model_store.store.trust import change_trust, recover_trust, verified_keys
 
 if TYPE_CHECKING:
     from model_store.store.store import Store
 
-__all__ = ["activate", "add_trusted_key", "prune", "publish", "remove_trusted_key", "rollback"]
+__all__ = [
+    "activate", "add_trusted_key", "begin_change", "draft_entry", "prune", "publish", "remove_trusted_key", "rollback",
+    "who",
+]
 
 
-def publish(store: "Store", source: Path, *, actor: str) -> PublishOutcome:
+def publish(store: "Store", source: Path, *, actor: str, via: str = "python") -> PublishOutcome:
     """Verify ``source`` (directory or single file), then store it as an immutable version."""
-    actor = check_text(actor, what="actor", required=True)
+    actor, via = who(actor, via)
     try:
         bundle = load_bundle(source)
         bundle.self_test()
     except CheckFailedError as exc:
-        _refuse_unverified(store, source, exc, actor)
+        _refuse_unverified(store, source, exc, actor, via)
     members = bundle_members(source, bundle)
     name, version, digest = bundle.name, bundle.version, bundle.digest
     layout = store.layout
     with store.locked():
         layout.versions(name).mkdir(parents=True, exist_ok=True)
-        state = _begin(store, name, actor)
+        state = begin_change(store, name, actor, via)
         if layout.version(name, version).is_dir():
-            stored = read_record(layout.record(name, version))
+            stored = read_record(layout, name, version)
             if stored.digest != digest:
                 _refuse(store, state, "refused-publish", version, digest, None, VersionConflictError(
                     f"{name} {version} is already published with digest {stored.digest[:16]}..., this bundle has "
                     f"{digest[:16]}...; published versions never change, export it under a new version"
-                ), actor=actor)
-            _add_missing_signature(store, state, version, digest, members.get(SIGNATURE_FILE), actor)
+                ), actor=actor, via=via)
+            _add_missing_signature(store, state, version, digest, members.get(SIGNATURE_FILE), actor, via)
             return PublishOutcome(name, version, digest, already_present=True)
         earlier = state.published_digest(version)
         if earlier is not None and earlier != digest:
             _refuse(store, state, "refused-publish", version, digest, None, VersionConflictError(
                 f"{name} {version} was published before with digest {earlier[:16]}... (and pruned since); "
                 "a version name is never reused for other content, export it under a new version"
-            ), actor=actor)
+            ), actor=actor, via=via)
         try:
             check_bundle_signature(members.get(SIGNATURE_FILE), digest, store.trusted_keys(), str(source))
         except SignatureError as exc:
-            _refuse(store, state, "refused-publish", version, digest, None, exc, actor=actor)
+            _refuse(store, state, "refused-publish", version, digest, None, exc, actor=actor, via=via)
         last = state.last_entry
         record = VersionRecord(
-            name, version, digest, bundle.manifest.created, store.now(), actor, (last["seq"] if last else 0) + 1
+            name, version, digest, bundle.manifest.created, store.now(), actor, (last["seq"] if last else 0) + 1, via
         )
         staged = stage_version(layout.staging, record, members, store.publish_step)
         os.rename(staged, layout.version(name, version))
         fsync_directory(layout.versions(name))
         store.publish_step("stored")
-        commit(layout, state, [_draft(store, actor, "publish", version, digest, None)])
+        commit(layout, state, [draft_entry(store, actor, via, "publish", version, digest, None)])
         store.publish_step("recorded")
     return PublishOutcome(name, version, digest, already_present=False)
 
@@ -109,22 +113,26 @@ def activate(
     *,
     reason: str,
     actor: str,
+    via: str = "python",
     accept_breaking: bool = False,
     recent: Sequence[Mapping[str, Any]] = (),
     convert: Converter = from_json,
+    on_verified: Callable[[Bundle], None] | None = None,
 ) -> dict[str, Any]:
     """Re-verify the stored bundle and make it the active version; refuse (and record it) if it fails.
 
     A candidate whose contract would break callers of the active version
     (``model_store.store.contract``; ``recent`` input records judge narrowed ranges) is refused
     with ``BreakingChangeError`` unless ``accept_breaking``; then the entry lists what was accepted.
+    ``on_verified(bundle)`` is called with the bundle verified for the change once it is committed, so a
+    caller that serves it (the service) need not load and verify it a second time.
     """
     check_name(name, what="model name")
     check_name(version, what="model version")
     reason = check_text(reason, what="reason", required=True)
-    actor = check_text(actor, what="actor", required=True)
+    actor, via = who(actor, via)
     with store.locked():
-        state = _begin(store, name, actor)
+        state = begin_change(store, name, actor, via)
         digest = _stored_digest(store, state, version)
 
         def check_contract(candidate: Bundle) -> list[str] | None:
@@ -134,45 +142,48 @@ def activate(
                 _refuse(store, state, "refused-activate", version, digest, reason, BreakingChangeError(
                     f"{name} {version} would break callers of the active version: {listed}; tell them, then "
                     "activate with --accept-breaking (HTTP: \"accept_breaking\": true)", tuple(breaking),
-                ), actor=actor)
+                ), actor=actor, via=via)
             return breaking or None
 
-        return _switch(store, state, "activate", version, digest, reason, actor, check=check_contract)
+        return _switch(store, state, "activate", version, digest, reason, actor, via, check=check_contract,
+                       on_verified=on_verified)
 
 
-def rollback(store: "Store", name: str, *, reason: str, actor: str) -> dict[str, Any]:
-    """Return to the version that was active before the current one, after re-verifying it."""
+def rollback(
+    store: "Store", name: str, *, reason: str, actor: str, via: str = "python",
+    on_verified: Callable[[Bundle], None] | None = None,
+) -> dict[str, Any]:
+    """Walk back one step of the activation stack (``model_store.store.state``), after re-verifying the target;
+    ``on_verified`` as for ``activate``."""
     check_name(name, what="model name")
     reason = check_text(reason, what="reason", required=True)
-    actor = check_text(actor, what="actor", required=True)
+    actor, via = who(actor, via)
     with store.locked():
-        state = _begin(store, name, actor)
+        state = begin_change(store, name, actor, via)
         stack = state.stack()
         if len(stack) < 2:
-            current = f"{stack[-1][0]} is the only version ever made active" if stack else "no version is active"
-            raise CheckFailedError(
-                f"cannot roll back {name}: {current}, so there is no earlier version to return to; "
-                f"use 'rbfgate activate {name} VERSION' instead"
-            )
-        version, digest = stack[-2]
-        if not store.layout.version(name, version).is_dir():
-            _refuse(store, state, "refused-rollback", version, digest, reason, CheckFailedError(
-                f"rollback of {name} would return to {version}, which was pruned; activate a stored version instead"
-            ), actor=actor)
-        return _switch(store, state, "rollback", version, digest, reason, actor)
+            raise CheckFailedError(rollback_refusal(name, state.entries))
+        target, current = stack[-2], stack[-1]
+        if not store.layout.version(name, target.version).is_dir():
+            _refuse(store, state, "refused-rollback", target.version, target.digest, reason, CheckFailedError(
+                f"rollback of {name} would return to {target.version} (active before {current.version} was activated "
+                f"at seq {current.seq}), which was pruned; activate a stored version instead"
+            ), actor=actor, via=via)
+        return _switch(store, state, "rollback", target.version, target.digest, reason, actor, via,
+                       on_verified=on_verified)
 
 
-def prune(store: "Store", name: str, *, keep: int, actor: str) -> list[str]:
+def prune(store: "Store", name: str, *, keep: int, actor: str, via: str = "python") -> list[str]:
     """Remove all but the ``keep`` newest versions, never the active one or the rollback target."""
     check_name(name, what="model name")
     if isinstance(keep, bool) or not isinstance(keep, int) or keep < 0:
         raise InputError(f"--keep {keep!r}: expected a whole number of versions, 0 or more")
-    actor = check_text(actor, what="actor", required=True)
+    actor, via = who(actor, via)
     with store.locked():
-        state = _begin(store, name, actor)
+        state = begin_change(store, name, actor, via)
         ordered = [info.version for info in store.versions(name)]
         target = state.rollback_target()
-        protected = {state.active_version(), target[0] if target else None}
+        protected = {state.active_version(), target.version if target else None}
         newest = set(ordered[len(ordered) - keep:]) if keep else set()
         doomed = [version for version in ordered if version not in newest and version not in protected]
         if not doomed:
@@ -183,7 +194,7 @@ def prune(store: "Store", name: str, *, keep: int, actor: str) -> list[str]:
             "(the newest, the active version and the rollback target are always kept)"
         )
         drafts = [
-            _draft(store, actor, "prune", version, read_record(store.layout.record(name, version)).digest, reason)
+            draft_entry(store, actor, via, "prune", version, read_record(store.layout, name, version).digest, reason)
             for version in doomed
         ]
         commit(store.layout, state, drafts)  # the history says "pruned" before the files go (see recovery)
@@ -192,48 +203,60 @@ def prune(store: "Store", name: str, *, keep: int, actor: str) -> list[str]:
     return doomed
 
 
-def add_trusted_key(store: "Store", public_key: bytes, *, label: str, actor: str) -> TrustedKey:
-    """Trust ``public_key`` (32 raw Ed25519 bytes); from then on every bundle must be signed."""
+def add_trusted_key(store: "Store", public_key: bytes, *, label: str, actor: str, via: str = "python") -> TrustedKey:
+    """Trust ``public_key`` (32 raw Ed25519 bytes), recorded in the trust trail; from then on bundles must be signed."""
     if len(public_key) != 32:
         raise InputError(f"an Ed25519 public key is 32 bytes, got {len(public_key)}")
     label = check_text(label, what="label", required=False) or ""
-    actor = check_text(actor, what="actor", required=True)
+    actor, via = who(actor, via)
     with store.locked():
-        settings = read_settings(store.layout)
+        recover_trust(store.layout, now=store.now(), actor=actor, via=via)
         new_id = key_id(public_key)
-        existing = [TrustedKey(**key) for key in settings.get("trusted_keys", [])]
-        for key in existing:
+        for key in verified_keys(store.layout):
             if key.key_id == new_id:
                 return key
         key = TrustedKey(new_id, public_key.hex(), label, store.now(), actor)
-        settings["trusted_keys"] = [*(item.to_dict() for item in existing), key.to_dict()]
-        write_settings(store.layout, settings)
+        change_trust(store.layout, "trust-add", key, now=store.now(), actor=actor, via=via,
+                     reason=f"trusted key {new_id}" + (f" ({label})" if label else ""))
     return key
 
 
-def remove_trusted_key(store: "Store", key_id_: str, *, actor: str) -> TrustedKey:
-    check_text(actor, what="actor", required=True)
+def remove_trusted_key(store: "Store", key_id_: str, *, actor: str, via: str = "python") -> TrustedKey:
+    """Stop trusting a key, recorded in the trust trail (so the end of a signature requirement is visible)."""
+    actor, via = who(actor, via)
     with store.locked():
-        settings = read_settings(store.layout)
-        existing = [TrustedKey(**key) for key in settings.get("trusted_keys", [])]
+        recover_trust(store.layout, now=store.now(), actor=actor, via=via)
+        existing = verified_keys(store.layout)
         removed = next((key for key in existing if key.key_id == key_id_), None)
         if removed is None:
             listed = ", ".join(key.key_id for key in existing) or "none"
             raise NotFoundError(f"key {key_id_!r} is not trusted by this store (trusted: {listed})")
-        settings["trusted_keys"] = [key.to_dict() for key in existing if key.key_id != key_id_]
-        write_settings(store.layout, settings)
+        remaining = len(existing) - 1
+        change_trust(store.layout, "trust-remove", removed, now=store.now(), actor=actor, via=via,
+                     reason=f"stopped trusting key {removed.key_id}" + (
+                         "" if remaining else "; no trusted keys remain, so signatures are no longer required"))
     return removed
 
 
-def _begin(store: "Store", name: str, actor: str) -> ModelState:
+def begin_change(store: "Store", name: str, actor: str, via: str) -> ModelState:
+    """Start a change of ``name`` (store lock held): complete interrupted changes, refuse if verification fails."""
     require_model(store.layout, name)
     clear_staging(store.layout.staging)
-    return recover(store.layout, name, now=store.now(), actor=actor)
+    recover_trust(store.layout, now=store.now(), actor=actor, via=via)
+    return recover(store.layout, name, now=store.now(), actor=actor, via=via)
+
+
+def who(actor: str, via: str) -> tuple[str, str]:
+    """The checked ``actor`` and ``via`` of a change."""
+    actor = check_text(actor, what="actor", required=True)
+    if via not in VIAS:
+        raise InputError(f"via {via!r}: expected one of {', '.join(VIAS)} (through what the actor acts)")
+    return actor, via
 
 
 def _switch(
-    store: "Store", state: ModelState, action: str, version: str, digest: str, reason: str, actor: str,
-    *, check: Callable[[Bundle], list[str] | None] | None = None,
+    store: "Store", state: ModelState, action: str, version: str, digest: str, reason: str, actor: str, via: str,
+    *, check: Callable[[Bundle], list[str] | None] | None = None, on_verified: Callable[[Bundle], None] | None = None,
 ) -> dict[str, Any]:
     """Re-verify the stored ``version`` and make it active, recorded as ``action`` ("activate", "rollback").
 
@@ -243,12 +266,15 @@ def _switch(
     try:
         bundle = store.load_verified(state.name, version)
     except CheckFailedError as exc:
-        _refuse(store, state, f"refused-{action}", version, digest, reason, exc, actor=actor)
+        _refuse(store, state, f"refused-{action}", version, digest, reason, exc, actor=actor, via=via)
     accepted = check(bundle) if check is not None else None
     [entry] = commit(
-        store.layout, state, [_draft(store, actor, action, version, bundle.digest, reason, accepted)],
+        store.layout, state,
+        [draft_entry(store, actor, via, action, version, bundle.digest, reason, accepted_breaking=accepted)],
         activate=(version, bundle.digest),
     )
+    if on_verified is not None:
+        on_verified(bundle)
     return entry
 
 
@@ -263,13 +289,13 @@ def _breaking_changes(store: "Store", state: ModelState, candidate: Bundle, rece
     if active_version is None or active_version == candidate.version:
         return []
     try:
-        _, active = read_manifest(store.layout.bundle(state.name, active_version) / MANIFEST_FILE)
+        _, active, _ = store.manifest(state.name, active_version)
     except (CheckFailedError, InputError):
         return []
     return [change.detail for change in compare_contracts(active, candidate.manifest, recent, convert).breaking]
 
 
-def _refuse_unverified(store: "Store", source: Path, exc: CheckFailedError, actor: str) -> NoReturn:
+def _refuse_unverified(store: "Store", source: Path, exc: CheckFailedError, actor: str, via: str) -> NoReturn:
     """Record a publish refused because the bundle failed its checksums or golden self-test, then raise.
 
     Recorded only when the manifest names a model the store already holds:
@@ -279,7 +305,8 @@ def _refuse_unverified(store: "Store", source: Path, exc: CheckFailedError, acto
     if claimed is not None and store.layout.model(claimed[0]).is_dir():
         name, version, digest = claimed
         with store.locked():
-            _refuse(store, _begin(store, name, actor), "refused-publish", version, digest, None, exc, actor=actor)
+            _refuse(store, begin_change(store, name, actor, via), "refused-publish", version, digest, None, exc, actor=actor,
+                    via=via)
     raise exc
 
 
@@ -290,31 +317,30 @@ def _stored_digest(store: "Store", state: ModelState, version: str) -> str:
             f"{state.name} {version} is not in the store{' (it was pruned)' if pruned else ''}; "
             f"'rbfgate versions {state.name}' lists the stored versions"
         )
-    return read_record(store.layout.record(state.name, version)).digest
+    return read_record(store.layout, state.name, version).digest
 
 
-def _add_missing_signature(store, state, version, digest, signature: bytes | None, actor: str) -> None:
+def _add_missing_signature(store, state, version, digest, signature: bytes | None, actor: str, via: str) -> None:
     """Re-publishing a signed copy of a stored unsigned version adds its signature (the digest is unchanged)."""
     target = store.layout.bundle(state.name, version) / SIGNATURE_FILE
     trusted = store.trusted_keys()
-    if signature is None or target.exists() or not trusted:
+    if signature is None or os.path.lexists(target) or not trusted:
         return
     key = check_bundle_signature(signature, digest, trusted, f"{state.name} {version}")
     atomic_write(target, signature)
     reason = f"signature by trusted key {key.key_id} added to the stored version (its content is unchanged)"
-    commit(store.layout, state, [_draft(store, actor, "add-signature", version, digest, reason)])
+    commit(store.layout, state, [draft_entry(store, actor, via, "add-signature", version, digest, reason)])
 
 
-def _refuse(store, state, action, version, digest, reason, exc: CheckFailedError, *, actor: str) -> NoReturn:
+def _refuse(store, state, action, version, digest, reason, exc: CheckFailedError, *, actor: str, via: str) -> NoReturn:
     """Record a refused attempt in the history, then raise its error."""
     text = f"refused: {exc}" + (f" (reason given: {reason})" if reason else "")
-    commit(store.layout, state, [_draft(store, actor, action, version, digest, text)])
+    commit(store.layout, state, [draft_entry(store, actor, via, action, version, digest, text[:1000])])
     raise exc
 
 
-def _draft(store, actor, action, version, digest, reason, accepted_breaking=None) -> dict[str, Any]:
-    draft = {"time": store.now(), "actor": actor, "action": action, "version": version, "digest": digest,
-             "reason": reason}
-    if accepted_breaking:
-        draft["accepted_breaking"] = accepted_breaking
-    return draft
+def draft_entry(store, actor, via, action, version, digest, reason, **fields) -> dict[str, Any]:
+    """The make_entry arguments of one entry; ``fields`` are those its kind declares (entry_kinds.KINDS),
+    an optional one given as None is left out."""
+    return {"time": store.now(), "actor": actor, "via": via, "action": action, "version": version, "digest": digest,
+            "reason": reason, **{name: value for name, value in fields.items() if value is not None}}

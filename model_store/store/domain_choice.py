@@ -14,10 +14,9 @@ from typing import TYPE_CHECKING, Any
 from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION, OUTSIDE_ACTIONS
 from model_store.errors import InputError
 from model_store.naming import check_name
+from model_store.store.changes import begin_change, draft_entry, who
 from model_store.store.history import check_text
-from model_store.store.layout import require_model
-from model_store.store.publishing import clear_staging
-from model_store.store.recovery import commit, recover
+from model_store.store.recovery import commit
 
 if TYPE_CHECKING:
     from model_store.store.store import Store
@@ -37,18 +36,20 @@ def outside_action_from(entries: list[dict[str, Any]]) -> str:
     return DEFAULT_OUTSIDE_ACTION
 
 
-def set_outside_action(store: "Store", name: str, action: str, *, reason: str, actor: str) -> dict[str, Any]:
-    """Record ``action`` (refuse or flag) for ``name``; return the history entry."""
+def set_outside_action(
+    store: "Store", name: str, action: str, *, reason: str, actor: str, via: str = "python"
+) -> dict[str, Any]:
+    """Record ``action`` (refuse or flag) for ``name``; return the history entry.
+
+    Like every change, refused while the model fails verification (``changes.begin_change``).
+    """
     check_name(name, what="model name")
     if action not in OUTSIDE_ACTIONS:
         raise InputError(f"outside-domain action {action!r}: expected one of {', '.join(OUTSIDE_ACTIONS)}")
     reason = check_text(reason, what="reason", required=True)
-    actor = check_text(actor, what="actor", required=True)
+    actor, via = who(actor, via)
     with store.locked():
-        require_model(store.layout, name)
-        clear_staging(store.layout.staging)
-        state = recover(store.layout, name, now=store.now(), actor=actor)
-        draft = {"time": store.now(), "actor": actor, "action": CHOICE_ACTIONS[action], "version": None,
-                 "digest": None, "reason": reason}
+        state = begin_change(store, name, actor, via)
+        draft = draft_entry(store, actor, via, CHOICE_ACTIONS[action], None, None, reason)
         [entry] = commit(store.layout, state, [draft])
     return entry

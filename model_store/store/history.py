@@ -1,20 +1,27 @@
 """The history trail: one JSON object per line, chained by SHA-256.
 
-Every entry holds exactly these fields:
+Every entry holds these core fields:
 
     seq        1, 2, 3, ... in file order
     time       RFC 3339 UTC, whole seconds, e.g. "2026-12-01T21:40:00Z"
-    actor      who ran the command
-    action     one of ACTIONS
+    actor      who acted: the --actor given or the OS user (CLI), the token's name (HTTP)
+    action     one of ACTIONS (``model_store.store.entry_kinds``)
     version    the version concerned (null for store-level actions)
     digest     that version's bundle digest, or null when unknown
     reason     the operator's reason (required for activate, rollback and the outside-domain choice), or an explanation
     prev_hash  the previous entry's ``hash``; GENESIS for the first entry
     hash       SHA-256 (FIPS 180-4) of the canonical JSON of the entry without ``hash``
 
-and, only on an activation that the operator let through although it breaks callers:
+and, in entries written since it was introduced, ``via`` (``cli``, ``http``
+or ``python``: through what the actor acted) plus the fields of its kind
+(``model_store.store.entry_kinds``), for example, only on an activation that
+the operator let through although it breaks callers:
 
     accepted_breaking  the breaking changes accepted, one line each (``model_store.store.contract``)
+
+Older entries have the core fields only (and possibly ``accepted_breaking``);
+both verify, because a hash covers exactly the fields its entry holds, and no
+old entry is ever rewritten.
 
 Changing any byte of an entry changes its hash, and the next entry records
 the old one, so an edit anywhere breaks the chain at that point. The active
@@ -31,12 +38,14 @@ from typing import Any, NamedTuple
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import HistoryError, InputError, StoreError
 from model_store.store.durable import append_bytes
+from model_store.store.entry_kinds import KINDS, VIAS, check_fields
+from model_store.store.files import UnsafeStoreEntry, read_store_file
 
 __all__ = [
     "ACTIONS",
     "FIELDS",
     "GENESIS",
-    "OPTIONAL_FIELDS",
+    "VIAS",
     "HistoryLine",
     "Trail",
     "append_entries",
@@ -49,21 +58,10 @@ __all__ = [
 
 GENESIS = "0" * 64
 FIELDS = ("seq", "time", "actor", "action", "version", "digest", "reason", "prev_hash", "hash")
-OPTIONAL_FIELDS = ("accepted_breaking",)
-ACTIONS = (
-    "publish",          # a version was stored
-    "add-signature",    # a trusted signature was added beside an already published version
-    "activate",         # the active pointer moved to a version
-    "rollback",         # the active pointer moved back to the previously active version
-    "prune",            # a version was removed by retention
-    "refused-publish",  # a publish was refused (conflicting digest, bad signature, checksum or golden
-                        # mismatch); only recorded for a model the store already holds
-    "refused-activate", # an activation was refused because the stored bundle failed verification
-    "refused-rollback", # a rollback was refused because its target failed verification
-    "recover",          # a change interrupted by a crash was completed by the next command
-    "outside-domain-refuse",  # operators chose to refuse records outside the model's domain (the default)
-    "outside-domain-flag",    # operators chose to answer such records, flagged (model_store.store.domain_choice)
-)
+ACTIONS = tuple(KINDS)
+# Entries written before ``via`` existed hold FIELDS (and possibly these) and one of these actions.
+_LEGACY_ACTIONS = frozenset((*ACTIONS[:9], "outside-domain-refuse", "outside-domain-flag"))
+_LEGACY_OPTIONAL = frozenset({"accepted_breaking"})
 _MAX_TEXT = 1000
 
 
@@ -123,27 +121,35 @@ def make_entry(
     *,
     time: str,
     actor: str,
+    via: str,
     action: str,
     version: str | None,
     digest: str | None,
     reason: str | None,
-    accepted_breaking: list[str] | None = None,
+    **fields: Any,
 ) -> dict[str, Any]:
-    """The entry that follows ``previous`` (None for the first), with its hash filled in."""
-    if action not in ACTIONS:
-        raise ValueError(f"unknown history action {action!r}")
+    """The entry that follows ``previous`` (None for the first), with its hash filled in.
+
+    ``fields`` are the fields of the action's kind (``entry_kinds.KINDS``); an optional one given as None is left out.
+    """
+    fields = {name: value for name, value in fields.items() if value is not None}
+    problem = check_fields(action, fields)
+    if problem is not None:
+        raise ValueError(f"history entry {action}: {problem}")
+    if via not in VIAS:
+        raise ValueError(f"history entry {action}: via {via!r} is not one of {VIAS}")
     entry = {
         "seq": 1 if previous is None else previous["seq"] + 1,
         "time": time,
         "actor": actor,
+        "via": via,
         "action": action,
         "version": version,
         "digest": digest,
         "reason": reason,
+        **fields,
         "prev_hash": GENESIS if previous is None else previous["hash"],
     }
-    if accepted_breaking:
-        entry["accepted_breaking"] = list(accepted_breaking)
     entry["hash"] = entry_hash(entry)
     return entry
 
@@ -154,20 +160,25 @@ def append_entries(path: Path, entries: list[dict[str, Any]]) -> None:
     append_bytes(path, data)
 
 
-def read_trail(path: Path, model: str) -> Trail:
+def read_trail(path: Path, model: str, *, root: Path | None = None) -> Trail:
     """Parse every line of the trail.
 
     A last line without its newline is what a writer killed mid-append
     leaves: if it still parses as an entry it is kept (``unterminated``),
     otherwise it is set aside as ``unfinished`` for the caller to report
-    (an auditor) or skip (a reader) or remove (the next writer).
+    (an auditor) or skip (a reader) or remove (the next writer). With
+    ``root`` (the store root) the file is read without following links.
     """
     try:
-        data = Path(path).read_bytes()
+        data = _read(Path(path), root)
     except FileNotFoundError:
         return Trail([], False, False)
+    except UnsafeStoreEntry as exc:
+        raise HistoryError(f"history of {model}: {exc}") from exc
     except OSError as exc:
         raise StoreError(f"{path}: cannot read the history: {exc.strerror}") from exc
+    if data is None:
+        return Trail([], False, False)
     pieces = data.split(b"\n")
     tail = pieces.pop()  # empty when the file ends with a newline
     lines = [HistoryLine(number, _parse(piece, number, path, model)) for number, piece in enumerate(pieces, 1)]
@@ -188,17 +199,11 @@ def _parse(raw: bytes, number: int, path: Path, model: str) -> dict[str, Any]:
         raise HistoryError(
             f"{where}: not a JSON entry ({exc}); the trail {path} was edited or damaged, restore it from a backup"
         ) from exc
-    if not isinstance(entry, dict) or not set(FIELDS) <= set(entry) <= set(FIELDS + OPTIONAL_FIELDS):
+    if not isinstance(entry, dict) or not set(FIELDS) <= set(entry):
         found = sorted(entry) if isinstance(entry, dict) else type(entry).__name__
         raise HistoryError(
-            f"{where}: expected an entry with the fields {list(FIELDS)} (and optionally {list(OPTIONAL_FIELDS)}), "
-            f"found {found}; the trail was edited"
+            f"{where}: expected an entry with the fields {list(FIELDS)}, found {found}; the trail was edited"
         )
-    accepted = entry.get("accepted_breaking")
-    if "accepted_breaking" in entry and not (
-        isinstance(accepted, list) and accepted and all(isinstance(item, str) for item in accepted)
-    ):
-        raise HistoryError(f"{where}: accepted_breaking {accepted!r} is not a list of text; the trail was edited")
     if type(entry["seq"]) is not int or entry["seq"] < 1:
         raise HistoryError(f"{where}: seq {entry['seq']!r} is not a positive integer; the trail was edited")
     for key in ("hash", "prev_hash"):
@@ -208,4 +213,27 @@ def _parse(raw: bytes, number: int, path: Path, model: str) -> dict[str, Any]:
     for key in ("time", "actor", "action", "version", "digest", "reason"):
         if entry[key] is not None and not isinstance(entry[key], str):
             raise HistoryError(f"{where}: {key} {entry[key]!r} should be text or null; the trail was edited")
+    problem = _shape_problem(entry)
+    if problem is not None:
+        raise HistoryError(f"{where}: {problem}; the trail was edited")
     return entry
+
+
+def _shape_problem(entry: dict[str, Any]) -> str | None:
+    """None when ``entry`` is a legacy entry (core fields, a legacy action) or a current one (``via`` + its kind's fields)."""
+    extra = {key: value for key, value in entry.items() if key not in FIELDS}
+    if "via" not in extra:
+        if entry["action"] not in _LEGACY_ACTIONS:
+            return f"action {entry['action']!r} without \"via\": it is not an action entries without \"via\" can have"
+        if not set(extra) <= _LEGACY_OPTIONAL:
+            return f"fields {sorted(extra)} beyond {list(FIELDS)}, but no \"via\""
+        return check_fields(str(entry["action"]), extra) if extra else None
+    if extra.pop("via") not in VIAS:
+        return f"via {entry['via']!r} is not one of {list(VIAS)}"
+    return check_fields(str(entry["action"]), extra)
+
+
+def _read(path: Path, root: Path | None) -> bytes | None:
+    if root is None:
+        return path.read_bytes()
+    return read_store_file(root, path)

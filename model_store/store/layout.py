@@ -1,7 +1,8 @@
 """Where a store keeps what, how it is found, and its settings file.
 
     STORE/
-      rbfgate-store.json              store settings: kind, creation time, trusted signing keys
+      rbfgate-store.json              store settings: kind, creation time, trusted signing keys, trust trail head
+      trust.jsonl                     the hash-chained trail of trust changes (trust-add, trust-remove)
       lock                            flock target that serialises every change
       staging/                        work area of publish and prune; emptied by the next change
       models/NAME/
@@ -27,6 +28,8 @@ from typing import Any
 from model_store.errors import NotFoundError, StoreError
 from model_store.naming import check_name
 from model_store.store.durable import TEMP_PREFIX, atomic_write
+from model_store.store.files import read_store_file
+from model_store.store.history import GENESIS
 
 __all__ = [
     "SETTINGS_FILE",
@@ -56,6 +59,10 @@ class StoreLayout:
     @property
     def settings(self) -> Path:
         return self.root / SETTINGS_FILE
+
+    @property
+    def trust_trail(self) -> Path:
+        return self.root / "trust.jsonl"
 
     @property
     def lock(self) -> Path:
@@ -174,7 +181,8 @@ def open_layout(root: Path, *, create: bool, created_at: str) -> StoreLayout:
     if not create:
         raise StoreError(f"{root}: empty directory, not a store yet; publish a bundle to create a store here")
     try:
-        write_settings(layout, {"kind": STORE_KIND, "created": created_at, "trusted_keys": []})
+        write_settings(layout, {"kind": STORE_KIND, "created": created_at, "trusted_keys": [],
+                                "trust_head": GENESIS, "trust_seq": 0})
     except OSError as exc:
         raise StoreError(f"{root}: cannot create the store: {exc.strerror}") from exc
     return layout
@@ -183,10 +191,11 @@ def open_layout(root: Path, *, create: bool, created_at: str) -> StoreLayout:
 def read_settings(layout: StoreLayout) -> dict[str, Any]:
     """The settings document, checked to be ours."""
     path = layout.settings
+    data = read_store_file(layout.root, path)  # StoreError (UnsafeStoreEntry) for a link or a FIFO
+    if data is None:
+        raise StoreError(f"{path}: the store settings are missing; restore them from a backup")
     try:
-        document = json.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise StoreError(f"{path}: cannot read the store settings: {exc.strerror}") from exc
+        document = json.loads(data.decode("utf-8"))
     except (UnicodeDecodeError, ValueError) as exc:
         raise StoreError(f"{path}: the store settings are not valid JSON ({exc}); restore them from a backup") from exc
     if not isinstance(document, dict) or document.get("kind") != STORE_KIND:

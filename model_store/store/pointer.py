@@ -19,6 +19,7 @@ from pathlib import Path
 
 from model_store.errors import StoreError
 from model_store.store.durable import atomic_write
+from model_store.store.files import read_store_file
 from model_store.store.history import GENESIS
 
 __all__ = ["GENESIS_POINTER", "ActiveRecord", "Pointer", "read_pointer", "write_pointer"]
@@ -56,14 +57,20 @@ class Pointer:
 GENESIS_POINTER = Pointer(version=None, digest=None, activated_at=None, history_head=GENESIS, history_seq=0)
 
 
-def read_pointer(path: Path) -> Pointer | None:
-    """The pointer in ``path``, or None when the model has none yet."""
+def read_pointer(path: Path, *, root: Path | None = None) -> Pointer | None:
+    """The pointer in ``path``, or None when the model has none yet.
+
+    With ``root`` (the store root) it is read without following links, and a
+    link or a FIFO in its place is a ``StoreError``.
+    """
     try:
-        data = Path(path).read_bytes()
+        data = Path(path).read_bytes() if root is None else read_store_file(root, Path(path))
     except FileNotFoundError:
         return None
     except OSError as exc:
         raise StoreError(f"{path}: cannot read the active pointer: {exc.strerror}") from exc
+    if data is None:
+        return None
     try:
         document = json.loads(data)
         pointer = Pointer(

@@ -23,6 +23,7 @@ from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import IntegrityError, NotFoundError, RbfgateError, StoreError
 from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, parse_manifest_bytes
 from model_store.store.durable import fsync_directory, fsync_tree, temporary_name
+from model_store.store.files import read_store_file
 from model_store.store.layout import StoreLayout, version_names
 
 __all__ = [
@@ -51,7 +52,10 @@ class PublishOutcome:
 
 @dataclass(frozen=True)
 class VersionRecord:
-    """``published.json``: what was stored, when and by whom; ``publish_seq`` orders versions."""
+    """``published.json``: what was stored, when and by whom; ``publish_seq`` orders versions.
+
+    ``published_via`` (cli, http, python) is absent from records written before it existed.
+    """
 
     name: str
     version: str
@@ -60,29 +64,30 @@ class VersionRecord:
     published_at: str
     published_by: str
     publish_seq: int
+    published_via: str | None = None
 
 
-def read_record(path: Path) -> VersionRecord:
-    """The version record; ``NotFoundError`` when the version is gone (pruned meanwhile)."""
+def read_record(layout: StoreLayout, name: str, version: str) -> VersionRecord:
+    """The version record, read without following links; ``NotFoundError`` when the version is gone."""
+    path = layout.record(name, version)
+    data = read_store_file(layout.root, path)  # UnsafeStoreEntry for a link: callers say what it means to them
+    if data is None:
+        raise NotFoundError(f"{path}: no version record; the version was removed or was not stored by rbfgate")
     try:
-        document = json.loads(Path(path).read_text(encoding="utf-8"))
+        document = json.loads(data.decode("utf-8"))
         record = VersionRecord(**document)
         if type(record.publish_seq) is not int or not all(
             isinstance(value, str) for value in (record.version, record.digest, record.published_at, record.published_by)
         ):
             raise TypeError("publish_seq must be a whole number and the other fields text")
         return record
-    except FileNotFoundError:
-        raise NotFoundError(f"{path}: no version record; the version was removed or was not stored by rbfgate") from None
-    except OSError as exc:
-        raise StoreError(f"{path}: cannot read the version record: {exc.strerror}") from exc
     except (ValueError, TypeError) as exc:
         raise StoreError(f"{path}: the version record is malformed ({exc}); restore it from a backup") from exc
 
 
 def read_records(layout: StoreLayout, name: str) -> list[VersionRecord]:
     """The records of every stored version of ``name``; call it holding the lock (no prune in between)."""
-    return [read_record(layout.record(name, version)) for version in version_names(layout, name)]
+    return [read_record(layout, name, version) for version in version_names(layout, name)]
 
 
 def claimed_identity(source: Path) -> tuple[str, str, str] | None:

@@ -33,7 +33,8 @@ from model_store.store.durable import TEMP_PREFIX, atomic_write
 from model_store.store.history import HistoryLine, append_entries, make_entry, read_trail
 from model_store.store.layout import StoreLayout
 from model_store.store.pointer import GENESIS_POINTER, Pointer, read_pointer, write_pointer
-from model_store.store.publishing import discard_version, read_records
+from model_store.store.folders import read_stored_versions
+from model_store.store.publishing import discard_version
 from model_store.store.state import ModelState
 
 __all__ = ["commit", "recover"]
@@ -67,15 +68,18 @@ def commit(
     return entries
 
 
-def recover(layout: StoreLayout, name: str, *, now: str, actor: str) -> ModelState:
+def recover(layout: StoreLayout, name: str, *, now: str, actor: str, via: str) -> ModelState:
     """Load the model's state for a change, completing any interrupted change first (lock held).
 
-    Every check runs before anything is written, so a tampered model is left as it was found.
+    Every check ``Store.verify_history`` makes runs before anything is written
+    (only the states a crash leaves are completed instead of refused), so a
+    tampered model is left as it was found and no change is made while it
+    fails verification.
     """
     history_path = layout.history(name)
-    trail = read_trail(history_path, name)
+    trail = read_trail(history_path, name, root=layout.root)
     lines, dropped = trail.lines, trail.unfinished
-    pointer = read_pointer(layout.pointer(name))
+    pointer = read_pointer(layout.pointer(name), root=layout.root)
     check_chain(lines, name, pointer.history_head if pointer else None)
     if pointer is None:
         check_head(lines, None, name)  # raises when the trail has entries: its pointer was deleted
@@ -87,8 +91,9 @@ def recover(layout: StoreLayout, name: str, *, now: str, actor: str) -> ModelSta
         check_head(lines, state.pointer, name)  # raises: the trail is shorter than the pointer says
     if position == len(lines) - 1:
         check_active(state.pointer, state.stack(), name)  # no interrupted change explains a mismatch
-    records = read_records(layout, name)
-    interrupted = check_versions(records, lines, name, auditing=False)
+    stored = read_stored_versions(layout, name)
+    interrupted = check_versions(stored, lines, name, auditing=False)
+    records = [item.record for item in stored]
     _remove_temporaries(layout.model(name))
     if pointer is None:
         write_pointer(layout.pointer(name), state.pointer)
@@ -108,7 +113,8 @@ def recover(layout: StoreLayout, name: str, *, now: str, actor: str) -> ModelSta
     drafts = []
     if interrupted is not None:
         drafts.append(
-            _draft(now, interrupted.published_by, "publish", interrupted.version, interrupted.digest,
+            _draft(now, interrupted.published_by, interrupted.published_via or via, "publish", interrupted.version,
+                   interrupted.digest,
                    f"recovered: stored at {interrupted.published_at}, but the publisher was interrupted "
                    "before it wrote this entry")
         )
@@ -118,10 +124,11 @@ def recover(layout: StoreLayout, name: str, *, now: str, actor: str) -> ModelSta
             discard_version(layout.version(name, record.version), layout.staging)
             notes.append(f"finished removing pruned version {record.version}")
     if notes:
-        drafts.append(_draft(now, actor, "recover", None, None, "completed an interrupted change: " + "; ".join(notes)))
+        drafts.append(_draft(now, actor, via, "recover", None, None,
+                             "completed an interrupted change: " + "; ".join(notes)))
     if drafts:
         stack = state.stack()
-        target = stack[-1] if stack else None
+        target = stack[-1][:2] if stack else None
         current = (state.pointer.version, state.pointer.digest)
         commit(layout, state, drafts, activate=target if target and target != current else None)
     return state
@@ -135,5 +142,7 @@ def _remove_temporaries(directory: Path) -> None:
             path.unlink()
 
 
-def _draft(time: str, actor: str, action: str, version: str | None, digest: str | None, reason: str) -> dict[str, Any]:
-    return {"time": time, "actor": actor, "action": action, "version": version, "digest": digest, "reason": reason}
+def _draft(time: str, actor: str, via: str, action: str, version: str | None, digest: str | None,
+           reason: str) -> dict[str, Any]:
+    return {"time": time, "actor": actor, "via": via, "action": action, "version": version, "digest": digest,
+            "reason": reason}

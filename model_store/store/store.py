@@ -8,6 +8,7 @@ Changes (publish, activate, rollback, prune, trust) live in
 
 from __future__ import annotations
 
+import json
 from collections.abc import Callable, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -16,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from model_store.bundle import Bundle, load_bundle
+from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import (
     BundleFormatError,
     HistoryError,
@@ -24,17 +26,21 @@ from model_store.errors import (
     StoreError,
     UnsafeArchiveError,
 )
-from model_store.manifest import SIGNATURE_FILE
+from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, Manifest, parse_manifest_bytes
 from model_store.refusal import Converter, from_json
 from model_store.store import changes, domain_choice
-from model_store.store.audit import check_active, check_chain, check_head, check_versions
+from model_store.store.audit import check_active, check_chain, check_head, check_versions, head_position
+from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_file, store_entry_kind
+from model_store.store.folders import binding_problem, read_stored_version, read_stored_versions
 from model_store.store.history import format_time, read_trail
-from model_store.store.layout import StoreLayout, model_names, open_layout, read_settings, require_model, version_names
+from model_store.store.layout import StoreLayout, model_names, open_layout, require_model, version_names
 from model_store.store.locking import exclusive_lock, shared_lock
 from model_store.store.pointer import ActiveRecord, read_pointer
-from model_store.store.publishing import PublishOutcome, StepHook, read_record, read_records
+from model_store.store.publishing import PublishOutcome, StepHook, read_record
 from model_store.store.signing import TrustedKey, check_bundle_signature
-from model_store.store.state import activation_stack
+from model_store.store.state import activation_stack, stored_versions
+from model_store.store.timeline import LiveAt, live_at
+from model_store.store.trust import trust_entries, verified_keys
 
 __all__ = ["Store", "VersionInfo"]
 
@@ -94,7 +100,7 @@ class Store:
         records = []
         for version in version_names(self._layout, name):
             try:
-                records.append(read_record(self._layout.record(name, version)))
+                records.append(read_record(self._layout, name, version))
             except NotFoundError:
                 continue  # pruned between listing and reading
         records.sort(key=lambda record: (record.publish_seq, record.version))
@@ -110,40 +116,66 @@ class Store:
         ]
 
     def active(self, name: str) -> ActiveRecord | None:
-        """The active version: one small file read, cheap enough to poll every second."""
-        pointer = read_pointer(self._layout.pointer(name))
+        """The pointer's active version, as the file says: one small read, cheap enough to poll every second.
+
+        Not checked against the history; ``explained_active`` is.
+        """
+        pointer = read_pointer(self._layout.pointer(name), root=self.root)
         return pointer.active_record() if pointer is not None else None
+
+    def explained_active(self, name: str) -> ActiveRecord | None:
+        """The active version, only if the verified trail explains the pointer; ``HistoryError`` saying why not.
+
+        Read without the lock (pointer first, then the trail), so a change in
+        progress only ever adds entries after the pointer's head.
+        """
+        pointer = read_pointer(self._layout.pointer(name), root=self.root)
+        trail = read_trail(self._layout.history(name), name, root=self.root)
+        if pointer is None:
+            check_head(trail.lines, None, name)  # a trail without its pointer: deleted
+            return None
+        check_chain(trail.lines, name, pointer.history_head)
+        position = head_position(trail.lines, pointer.history_head)
+        if position is None:
+            check_head(trail.lines, pointer, name)  # raises: truncated, or the head was edited
+        check_active(pointer, activation_stack([item.entry for item in trail.lines[: position + 1]]), name)
+        return pointer.active_record()
 
     def bundle_dir(self, name: str, version: str) -> Path:
         path = self._layout.bundle(name, version)
-        if not path.is_dir():
+        if store_entry_kind(self.root, path) != "directory":
             raise NotFoundError(
                 f"{name} {version} is not in the store {self.root}; 'rbfgate versions {name}' lists what is"
             )
         return path
 
     def load_verified(self, name: str, version: str) -> Bundle:
-        """The stored bundle after checksums, digest, golden self-test and the signature policy."""
-        path = self.bundle_dir(name, version)
-        record = read_record(self._layout.record(name, version))
-        try:
-            bundle = load_bundle(path)
-        except (BundleFormatError, UnsafeArchiveError) as exc:
-            raise IntegrityError(f"stored bundle {name} {version} is damaged: {exc}; publish a new version") from exc
-        if bundle.digest != record.digest:
-            raise IntegrityError(
-                f"stored bundle {name} {version}: its digest is {bundle.digest[:16]}..., but it was published with "
-                f"{record.digest[:16]}...; the stored manifest was altered, publish a new version"
-            )
-        bundle.self_test()
-        signature = path / SIGNATURE_FILE
-        check_bundle_signature(
-            signature.read_bytes() if signature.is_file() else None,
-            bundle.digest,
-            self.trusted_keys(),
-            f"{name} {version} in the store",
-        )
+        """The stored bundle after its binding to the trail, checksums, golden self-test and the signature policy."""
+        bundle, _ = self._load_checked(name, version, with_members=False)
         return bundle
+
+    def verified_members(self, name: str, version: str) -> tuple[Bundle, dict[str, bytes]]:
+        """The verified bundle and the bytes of its files (manifest, arrays, signature), read once, for shipping."""
+        return self._load_checked(name, version, with_members=True)
+
+    def manifest(self, name: str, version: str) -> tuple[dict[str, Any], Manifest, str]:
+        """The stored manifest (document, parsed, digest), read without following links; its arrays are not read."""
+        path = self.bundle_dir(name, version) / MANIFEST_FILE
+        try:
+            data = read_store_file(self.root, path)
+        except UnsafeStoreEntry as exc:
+            raise IntegrityError(f"stored bundle {name} {version}: {exc}") from exc
+        if data is None:
+            raise IntegrityError(f"stored bundle {name} {version}: {MANIFEST_FILE} is missing; publish a new version")
+        document, manifest = parse_manifest_bytes(data, source=str(path))
+        return document, manifest, sha256_bytes(canonical_json(document))
+
+    def signature(self, name: str, version: str) -> bytes | None:
+        """The stored ``signature.json`` (read without following links), or None when the version is unsigned."""
+        try:
+            return read_store_file(self.root, self.bundle_dir(name, version) / SIGNATURE_FILE)
+        except UnsafeStoreEntry as exc:
+            raise IntegrityError(f"stored bundle {name} {version}: {exc}") from exc
 
     def history(self, name: str) -> list[dict[str, Any]]:
         """Every history entry, oldest first, read without waiting for a writer.
@@ -152,20 +184,23 @@ class Store:
         not at all; an unfinished last line left by a crashed writer is skipped.
         """
         require_model(self._layout, name)
-        return [item.entry for item in read_trail(self._layout.history(name), name).lines]
+        return [item.entry for item in read_trail(self._layout.history(name), name, root=self.root).lines]
 
     def verify_history(self, name: str) -> int:
-        """Check the hash chain, the pointer's head and the stored versions; return the number of entries.
+        """Check everything the history vouches for; return the number of entries.
 
+        The hash chain, the pointer's head and active version, every version
+        folder against its publish entry (``folders``), every version the
+        trail says is stored, and the trust trail against the settings.
         Raises ``HistoryError`` naming the first problem. Holds the lock shared,
-        so that the trail, the pointer and the versions are read at one moment
-        between two changes (it waits for a change in progress).
+        so that everything is read at one moment between two changes.
         """
         require_model(self._layout, name)
         with shared_lock(self._layout.lock, self.lock_timeout):
-            trail = read_trail(self._layout.history(name), name)
-            pointer = read_pointer(self._layout.pointer(name))
-            records = read_records(self._layout, name)
+            trail = read_trail(self._layout.history(name), name, root=self.root)
+            pointer = read_pointer(self._layout.pointer(name), root=self.root)
+            stored = read_stored_versions(self._layout, name)
+            verified_keys(self._layout)
         lines = trail.lines
         if trail.unfinished:
             raise HistoryError(
@@ -175,46 +210,129 @@ class Store:
         check_chain(lines, name, pointer.history_head if pointer else None)
         check_head(lines, pointer, name)
         check_active(pointer, activation_stack([item.entry for item in lines]), name)
-        check_versions(records, lines, name, auditing=True)
+        check_versions(stored, lines, name, auditing=True)
         return len(lines)
+
+    def history_document(self, name: str, *, verify: bool = True) -> dict[str, Any]:
+        """What ``history --json`` prints and ``GET /models/{model}/history`` answers: the same keys in both.
+
+        ``{"model", "entries", "verification": {"ok", "entries", "problem"}}``.
+        """
+        entries = self.history(name)
+        document: dict[str, Any] = {"model": name, "entries": entries}
+        if verify:
+            try:
+                document["verification"] = {"ok": True, "entries": self.verify_history(name), "problem": None}
+            except HistoryError as exc:
+                document["verification"] = {"ok": False, "entries": len(entries), "problem": str(exc)}
+        return document
 
     def outside_action(self, name: str) -> str:
         """``refuse`` or ``flag``: what the model does with records outside its domain (from the history)."""
         return domain_choice.outside_action_from(self.history(name))
 
-    def trusted_keys(self) -> list[TrustedKey]:
-        """The keys whose signatures the store accepts; empty means signatures are not required."""
-        keys = read_settings(self._layout).get("trusted_keys", [])
+    def live_at(self, name: str, moment: datetime) -> LiveAt:
+        """The version live at ``moment``, from the verified trail; ``HistoryError`` when it does not verify."""
         try:
-            return [TrustedKey(**key) for key in keys]
-        except TypeError as exc:
-            raise StoreError(f"{self._layout.settings}: a trusted key entry is malformed ({exc})") from exc
+            self.verify_history(name)
+        except HistoryError as exc:
+            raise HistoryError(f"cannot say what was live: the history does not verify: {exc}") from exc
+        return live_at(name, self.history(name), moment)
+
+    def trusted_keys(self) -> list[TrustedKey]:
+        """The keys whose signatures the store accepts (checked against the trust trail); empty: none required."""
+        return verified_keys(self._layout)
+
+    def trust_history(self) -> list[dict[str, Any]]:
+        """The trust trail's entries, oldest first."""
+        return trust_entries(self._layout)
+
+    def _load_checked(self, name: str, version: str, *, with_members: bool) -> tuple[Bundle, dict[str, bytes]]:
+        """Check the folder is bound to its publish entry and holds regular files only, then load and verify it."""
+        path = self.bundle_dir(name, version)
+        publish = self._publish_entry(name, version)
+        try:
+            stored = read_stored_version(self._layout, name, version)
+            problem = binding_problem(name, stored)
+            if problem is not None:
+                raise problem
+            if stored.record.digest != publish["digest"] or stored.record.publish_seq != publish["seq"]:
+                raise HistoryError(
+                    f"stored version {name} {version}: its record names digest {stored.record.digest[:16]}... and "
+                    f"publish seq {stored.record.publish_seq}, but the history published it at seq {publish['seq']} "
+                    f"with digest {str(publish['digest'])[:16]}...; the version folder was replaced by hand"
+                )
+            names = check_tree(self.root, path)
+            members = {entry: read_store_file(self.root, path / entry) for entry in names if with_members}
+            signature = read_store_file(self.root, path / SIGNATURE_FILE)
+        except UnsafeStoreEntry as exc:
+            raise IntegrityError(f"stored bundle {name} {version}: {exc}; publish a new version") from exc
+        try:
+            bundle = load_bundle(path)
+        except (BundleFormatError, UnsafeArchiveError) as exc:
+            raise IntegrityError(f"stored bundle {name} {version} is damaged: {exc}; publish a new version") from exc
+        if bundle.digest != publish["digest"]:
+            raise IntegrityError(
+                f"stored bundle {name} {version}: its digest is {bundle.digest[:16]}..., but it was published with "
+                f"{str(publish['digest'])[:16]}...; the stored manifest was altered, publish a new version"
+            )
+        bundle.self_test()
+        check_bundle_signature(signature, bundle.digest, self.trusted_keys(), f"{name} {version} in the store")
+        if with_members:
+            # The bytes shipped must be the bytes verified: the manifest's digest, each file's checksum.
+            if sha256_bytes(canonical_json(json.loads(members[MANIFEST_FILE]))) != bundle.digest or any(
+                sha256_bytes(members.get(entry) or b"") != spec.sha256 for entry, spec in bundle.manifest.files.items()
+            ):
+                raise IntegrityError(f"stored bundle {name} {version} changed while it was read; try again")
+            listed = {MANIFEST_FILE, SIGNATURE_FILE, *bundle.manifest.files}
+            members = {entry: data for entry, data in members.items() if entry in listed and data is not None}
+        return bundle, members
+
+    def _publish_entry(self, name: str, version: str) -> dict[str, Any]:
+        """The publish entry that put ``version`` in the store, from the hash-verified trail."""
+        trail = read_trail(self._layout.history(name), name, root=self.root)
+        pointer = read_pointer(self._layout.pointer(name), root=self.root)
+        check_chain(trail.lines, name, pointer.history_head if pointer else None)
+        entry = stored_versions([item.entry for item in trail.lines]).get(version)
+        if entry is None:
+            raise HistoryError(
+                f"stored version {name} {version}: the history has no publish entry for it (or records it pruned); "
+                "it was added by hand or its publisher was interrupted (the next change records it); "
+                f"'rbfgate history {name} --verify' says which"
+            )
+        return entry
 
     # ----- changing (each takes the store lock) ----------------------------------------------
 
-    def publish(self, bundle_path: Path, *, actor: str) -> PublishOutcome:
-        return changes.publish(self, Path(bundle_path), actor=actor)
+    # ``via`` says through what the actor acts ("cli", "http", "python"); the history records it.
 
-    def activate(self, name: str, version: str, *, reason: str, actor: str, accept_breaking: bool = False,
-                 recent: Sequence[Mapping[str, Any]] = (), convert: Converter = from_json) -> dict[str, Any]:
+    def publish(self, bundle_path: Path, *, actor: str, via: str = "python") -> PublishOutcome:
+        return changes.publish(self, Path(bundle_path), actor=actor, via=via)
+
+    def activate(self, name: str, version: str, *, reason: str, actor: str, via: str = "python",
+                 accept_breaking: bool = False, recent: Sequence[Mapping[str, Any]] = (),
+                 convert: Converter = from_json, on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:
         """See ``changes.activate``: refuses a candidate that breaks callers unless ``accept_breaking``."""
-        return changes.activate(self, name, version, reason=reason, actor=actor, accept_breaking=accept_breaking,
-                                recent=recent, convert=convert)
+        return changes.activate(self, name, version, reason=reason, actor=actor, via=via,
+                                accept_breaking=accept_breaking, recent=recent, convert=convert,
+                                on_verified=on_verified)
 
-    def rollback(self, name: str, *, reason: str, actor: str) -> dict[str, Any]:
-        return changes.rollback(self, name, reason=reason, actor=actor)
+    def rollback(self, name: str, *, reason: str, actor: str, via: str = "python",
+                 on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:
+        return changes.rollback(self, name, reason=reason, actor=actor, via=via, on_verified=on_verified)
 
-    def set_outside_action(self, name: str, action: str, *, reason: str, actor: str) -> dict[str, Any]:
-        return domain_choice.set_outside_action(self, name, action, reason=reason, actor=actor)
+    def set_outside_action(self, name: str, action: str, *, reason: str, actor: str,
+                           via: str = "python") -> dict[str, Any]:
+        return domain_choice.set_outside_action(self, name, action, reason=reason, actor=actor, via=via)
 
-    def prune(self, name: str, *, keep: int, actor: str) -> list[str]:
-        return changes.prune(self, name, keep=keep, actor=actor)
+    def prune(self, name: str, *, keep: int, actor: str, via: str = "python") -> list[str]:
+        return changes.prune(self, name, keep=keep, actor=actor, via=via)
 
-    def add_trusted_key(self, public_key: bytes, *, label: str, actor: str) -> TrustedKey:
-        return changes.add_trusted_key(self, public_key, label=label, actor=actor)
+    def add_trusted_key(self, public_key: bytes, *, label: str, actor: str, via: str = "python") -> TrustedKey:
+        return changes.add_trusted_key(self, public_key, label=label, actor=actor, via=via)
 
-    def remove_trusted_key(self, key_id: str, *, actor: str) -> TrustedKey:
-        return changes.remove_trusted_key(self, key_id, actor=actor)
+    def remove_trusted_key(self, key_id: str, *, actor: str, via: str = "python") -> TrustedKey:
+        return changes.remove_trusted_key(self, key_id, actor=actor, via=via)
 
     @contextmanager
     def locked(self):

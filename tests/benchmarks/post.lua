@@ -6,6 +6,10 @@ wrk.method = "POST"
 wrk.body = file:read("*a")
 file:close()
 wrk.headers["Content-Type"] = "application/json"
+local token = os.getenv("BENCH_TOKEN")  -- a bearer token, for a server started with a tokens file
+if token and token ~= "" then
+  wrk.headers["Authorization"] = "Bearer " .. token
+end
 
 function done(summary, latency, requests)
   io.write(string.format(

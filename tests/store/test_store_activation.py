@@ -10,7 +10,7 @@ from store_support import break_golden_vectors, flip_byte, iris_bundle, start_py
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import (
     CheckFailedError,
-    GoldenMismatchError,
+    HistoryError,
     InputError,
     IntegrityError,
     LockTimeoutError,
@@ -55,27 +55,38 @@ def test_a_corrupted_stored_array_is_refused_and_the_active_version_kept(store):
     assert store.verify_history("iris") == 5
 
 
-def test_a_stored_bundle_that_fails_its_golden_vectors_is_refused(store):
-    """Checksums, manifest and version record all consistently rewritten: only the self-test can tell."""
+def test_a_bundle_and_its_record_rewritten_consistently_refuse_every_change(store):
+    """Checksums, manifest and version record all rewritten to agree: only the publish entry in the hash-chained
+    history still names the original digest, so the store fails verification and refuses to change anything."""
     store.activate("iris", "1.0.0", reason="first release", actor="alice")
     version_dir = store.layout.version("iris", "1.1.0")
     manifest = break_golden_vectors(version_dir / "bundle")
     record = json.loads((version_dir / "published.json").read_text())
     record["digest"] = sha256_bytes(canonical_json(manifest))
     (version_dir / "published.json").write_text(json.dumps(record))
-    with pytest.raises(GoldenMismatchError):
-        store.activate("iris", "1.1.0", reason="upgrade", actor="bob")
+    trail = store.layout.history("iris").read_bytes()
+    with pytest.raises(HistoryError, match="1.1.0"):
+        store.verify_history("iris")
+    for change in (
+        lambda: store.activate("iris", "1.1.0", reason="upgrade", actor="bob"),
+        lambda: store.activate("iris", "1.2.0", reason="another version", actor="bob"),
+        lambda: store.prune("iris", keep=5, actor="bob"),
+    ):
+        with pytest.raises(HistoryError, match="entry seq 2 is publish 1.1.0"):
+            change()
     assert store.active("iris").version == "1.0.0"
-    assert store.history("iris")[-1]["action"] == "refused-activate"
+    assert store.layout.history("iris").read_bytes() == trail  # nothing written: the evidence stays
 
 
-def test_a_stored_manifest_changed_after_publishing_is_refused(store):
+def test_a_stored_manifest_changed_after_publishing_refuses_changes(store):
     manifest_path = store.bundle_dir("iris", "1.1.0") / "manifest.json"
     manifest = json.loads(manifest_path.read_text())
     manifest["creator"] = "someone else"
     manifest_path.write_text(json.dumps(manifest))
-    with pytest.raises(IntegrityError, match="published with"):
+    with pytest.raises(HistoryError, match="published with"):
         store.activate("iris", "1.1.0", reason="upgrade", actor="bob")
+    with pytest.raises(HistoryError, match="published with"):
+        store.load_verified("iris", "1.1.0")
     assert store.active("iris") is None
 
 

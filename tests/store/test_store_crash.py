@@ -13,6 +13,7 @@ from pathlib import Path
 import pytest
 from store_support import iris_bundle, start_python, trail_lines, wait_until
 
+from model_store.bundle import load_bundle
 from model_store.errors import HistoryError, NotFoundError
 from model_store.store import Store
 from model_store.store.history import append_entries, make_entry
@@ -92,7 +93,9 @@ def test_killed_after_the_rename_the_version_is_complete_and_the_next_change_rec
     bundle = iris_bundle(bundle_factory, "1.1.0", C=2.0)
     _kill_publisher_at(store, bundle, "stored", tmp_path)
     assert [info.version for info in store.versions("iris")] == ["1.0.0", "1.1.0"]
-    store.load_verified("iris", "1.1.0")  # complete and verifying
+    load_bundle(store.layout.bundle("iris", "1.1.0")).self_test()  # complete and verifying ...
+    with pytest.raises(HistoryError, match="next change records it"):
+        store.load_verified("iris", "1.1.0")  # ... but not served before the history records it
     assert [entry["action"] for entry in store.history("iris")] == ["publish", "activate"]
 
     store.activate("iris", "1.1.0", reason="after the crash", actor="bob")
@@ -118,7 +121,7 @@ def test_a_first_publish_killed_after_the_rename_is_recorded_by_the_next_change(
 def test_entries_written_before_the_pointer_update_are_reported_then_completed(store):
     # What a writer killed between appending its entry and replacing the pointer leaves behind.
     last = store.history("iris")[-1]
-    orphan = make_entry(last, time=last["time"], actor="killed", action="activate", version="1.0.0",
+    orphan = make_entry(last, time=last["time"], actor="killed", via="cli", action="activate", version="1.0.0",
                         digest=last["digest"], reason="interrupted")
     append_entries(store.layout.history("iris"), [orphan])
     with pytest.raises(HistoryError, match="interrupted command"):

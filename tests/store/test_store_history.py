@@ -26,7 +26,7 @@ def store(tmp_path, bundle_factory):
 
 
 def test_entries_have_exactly_the_documented_fields(store):
-    fields = {"seq", "time", "actor", "action", "version", "digest", "reason", "prev_hash", "hash"}
+    fields = {"seq", "time", "actor", "via", "action", "version", "digest", "reason", "prev_hash", "hash"}
     assert all(set(entry) == fields for entry in store.history("iris"))
 
 

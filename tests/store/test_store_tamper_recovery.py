@@ -110,7 +110,7 @@ def _copy_version(store, source: str, target: str, publish_seq: int) -> None:
 def test_a_version_whose_publish_seq_names_another_entry_is_reported(store):
     _copy_version(store, "1.1.0", "9.9.9", publish_seq=3)  # seq 3 is the activation of 1.0.0
     message = _verify_error(store)
-    assert "9.9.9" in message and "entry seq 3 is activate 1.0.0" in message
+    assert "versions/9.9.9 holds the bundle of iris 1.1.0" in message
 
 
 def test_a_version_record_with_a_rewritten_digest_is_reported(store):
@@ -119,7 +119,7 @@ def test_a_version_record_with_a_rewritten_digest_is_reported(store):
     record["digest"] = "ab" * 32
     record_path.write_text(json.dumps(record))
     message = _verify_error(store)
-    assert "1.0.0" in message and "entry seq 1 is publish 1.0.0" in message
+    assert "versions/1.0.0" in message and "published with abababab" in message
 
 
 def test_a_version_record_with_a_non_integer_publish_seq_is_a_clear_error(store):

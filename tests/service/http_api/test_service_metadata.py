@@ -52,7 +52,7 @@ def test_history_comes_with_its_chain_verification(make_client, store, tokens):
     path, issued = tokens
     client = make_client(store.root, tokens_file=path)
     body = client.get("/models/iris/history", headers=bearer(issued["audit"])).json()
-    assert body["verification"] == {"ok": True, "entries": len(body["entries"]), "detail": None}
+    assert body["verification"] == {"ok": True, "entries": len(body["entries"]), "problem": None}
     assert [entry["action"] for entry in body["entries"]][-1] == "activate"
 
 
@@ -62,7 +62,7 @@ def test_a_tampered_history_is_served_with_a_failed_verification(make_client, st
     trail.chmod(0o644)
     trail.write_text(trail.read_text().replace("first release", "first relaese"))  # one edited reason
     body = make_client(store.root, tokens_file=path).get("/models/iris/history", headers=bearer(issued["audit"])).json()
-    assert body["verification"]["ok"] is False and body["verification"]["detail"]
+    assert body["verification"]["ok"] is False and body["verification"]["problem"]
     assert any(entry.get("reason") == "first relaese" for entry in body["entries"])
 
 
