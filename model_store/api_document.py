@@ -26,6 +26,7 @@ component in ``_components`` if it needs one). OpenAPI 3.1 schema objects are JS
 
 from __future__ import annotations
 
+import re
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -41,6 +42,8 @@ __all__ = [
     "ResultField",
     "api_document",
     "problem_type_uri",
+    "record_id_schema",
+    "record_properties",
 ]
 
 OPENAPI_VERSION = "3.1.0"
@@ -191,11 +194,7 @@ def _components(manifest: Manifest, digest: str, max_records: int) -> dict[str, 
     schemas: dict[str, Any] = {
         "Label": _label_schema(manifest),
         "RefusalReason": {"type": "string", "enum": list(REASONS), "description": "why a record was refused"},
-        "RecordId": {
-            "description": f"your id for the record, echoed on its result; a string of 1 to {MAX_ID_LENGTH} "
-                           f"characters or an integer of at most {MAX_ID_LENGTH} digits; not a feature",
-            "anyOf": [{"type": "string", "minLength": 1, "maxLength": MAX_ID_LENGTH}, {"type": "integer"}],
-        },
+        "RecordId": record_id_schema(),
         "Record": _record_schema(manifest),
         "ScoreRequest": {
             "type": "object",
@@ -304,8 +303,24 @@ def _components(manifest: Manifest, digest: str, max_records: int) -> dict[str, 
     return schemas
 
 
-def _record_schema(manifest: Manifest) -> dict[str, Any]:
-    properties: dict[str, Any] = {RECORD_ID: _ref("RecordId")}
+def record_id_schema() -> dict[str, Any]:
+    """JSON Schema 2020-12 of a record's ``id``, exactly as ``model_store.refusal`` accepts it."""
+    largest = 10**MAX_ID_LENGTH - 1  # the largest integer of MAX_ID_LENGTH digits
+    return {
+        "description": f"your id for the record, echoed on its result; a string of 1 to {MAX_ID_LENGTH} "
+                       f"characters or an integer of at most {MAX_ID_LENGTH} digits; not a feature",
+        "anyOf": [{"type": "string", "minLength": 1, "maxLength": MAX_ID_LENGTH},
+                  {"type": "integer", "minimum": -largest, "maximum": largest}],
+    }
+
+
+def record_properties(manifest: Manifest, record_id: dict[str, Any]) -> dict[str, Any]:
+    """The members of one record: ``id`` (schema ``record_id``) and each feature as the refusal policy
+    checks it (``type: number``, inclusive ``minimum``/``maximum``, unit in ``x-unit`` and the description).
+
+    A feature named ``id`` (only in bundles exported before the name was reserved) stays a feature.
+    """
+    properties: dict[str, Any] = {RECORD_ID: record_id}
     for feature in manifest.features:
         low, high = feature.allowed
         text = feature.description or feature.name
@@ -314,10 +329,14 @@ def _record_schema(manifest: Manifest) -> dict[str, Any]:
         if feature.unit:
             prop["x-unit"] = feature.unit
         properties[feature.name] = prop
+    return properties
+
+
+def _record_schema(manifest: Manifest) -> dict[str, Any]:
     return {
         "type": "object",
         "description": "one record; a record outside these ranges, or with any other member, is refused",
-        "properties": properties,
+        "properties": record_properties(manifest, _ref("RecordId")),
         "required": manifest.feature_names,
         "additionalProperties": False,
     }
@@ -344,7 +363,30 @@ def _result_union() -> dict[str, Any]:
 
 
 def _per_class(classes: list[str], value: dict[str, Any], description: str) -> dict[str, Any]:
-    return {**_object({label: dict(value) for label in classes}, classes), "description": description}
+    """One property per class, or a map keyed by the classes when they do not make distinct names.
+
+    Client generators make an attribute name of each property by dropping everything but letters and
+    digits and folding case (common practice; openapi-python-client turns both ``-1`` and ``1`` into
+    ``field_1``), and a clash makes them drop the type and every type that uses it. Labels such as
+    -1 and 1 therefore get an object whose keys are exactly the classes: ``propertyNames`` with
+    ``minProperties`` = ``maxProperties`` = the number of classes (JSON Schema 2020-12, sections
+    10.3.2.4 and 6.5), which validates the same answers.
+    """
+    if _distinct_names(classes):
+        return {**_object({label: dict(value) for label in classes}, classes), "description": description}
+    return {
+        "type": "object",
+        "description": f"{description}; keyed by class label (the labels do not make distinct attribute names)",
+        "propertyNames": {"enum": list(classes)},
+        "additionalProperties": dict(value),
+        "minProperties": len(classes),
+        "maxProperties": len(classes),
+    }
+
+
+def _distinct_names(labels: list[str]) -> bool:
+    folded = [re.sub(r"[^0-9a-z]", "", label.casefold()) for label in labels]
+    return all(folded) and len(set(folded)) == len(folded)
 
 
 def _object(properties: dict[str, Any], required: list[str]) -> dict[str, Any]:

@@ -29,6 +29,8 @@ from model_store.errors import InputError
 
 __all__ = ["feature_matrix"]
 
+_NOT_REAL = {"c": "complex", "M": "date-time", "m": "time-span"}  # numpy dtype kinds
+
 
 def feature_matrix(X: Any, feature_names: Sequence[str]) -> np.ndarray:
     """``X`` as a float64 array of shape (n, f), columns in ``feature_names`` order.
@@ -72,8 +74,11 @@ def _from_columns(columns: Mapping, feature_names: Sequence[str], what: str) -> 
     arrays = []
     for name in feature_names:
         column = _as_float(columns[name], f"feature {name!r}")
+        if column.ndim == 0:
+            raise InputError(f"feature {name!r}: expected a 1-D array of values, one per row, got a single value; "
+                             f"wrap it in a list ({{{name!r}: [value]}}) to score one row")
         if column.ndim != 1:
-            raise InputError(f"feature {name!r}: expected a 1-D array of values, got shape {column.shape}")
+            raise InputError(f"feature {name!r}: expected a 1-D array of values, one per row, got shape {column.shape}")
         arrays.append(column)
     lengths = sorted({len(column) for column in arrays})
     if len(lengths) > 1:
@@ -94,6 +99,11 @@ def _check_present(feature_names: Sequence[str], present: set, what: str) -> Non
 
 
 def _as_float(values: Any, what: str) -> np.ndarray:
+    kind = getattr(getattr(values, "dtype", None), "kind", None)
+    if kind in _NOT_REAL:
+        # numpy would cast these silently: complex drops its imaginary part, times become counts of units.
+        raise InputError(f"{what}: not numbers ({_NOT_REAL[kind]} values, dtype {values.dtype}); "
+                         "pass float values in raw units")
     try:
         return np.asarray(values, dtype=np.float64)
     except (TypeError, ValueError) as exc:

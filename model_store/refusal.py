@@ -190,7 +190,6 @@ def check_records(
     return CheckedBatch(values, np.asarray(accepted, dtype=np.int64), problems, record_ids)
 
 
-
 def _printable_id(value: Any) -> Any:
     """An invalid id as it can be echoed: a lone surrogate becomes its escape (UTF-8 cannot hold it)."""
     if isinstance(value, str):

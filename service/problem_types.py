@@ -43,7 +43,7 @@ PROBLEM_TYPES: Mapping[str, ProblemType] = {
         "feature's allowed range; GET /models/{model}/openapi.json gives the whole contract.",
     ),
     "invalid-request": ProblemType(
-        422, "The request body does not have the expected shape",
+        422, "The request body is not what the route takes",
         "The body is JSON but not what the route takes: a missing or unknown member, a wrong type, an empty "
         "list, or a value the operation cannot use. The problems member points at each part with a JSON pointer.",
         "Send the body the route documents in /openapi.json; scoring takes {\"records\": [{feature: number}]}.",

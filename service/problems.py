@@ -93,7 +93,7 @@ _ERROR_STATUS: tuple[tuple[type[RbfgateError], int, str, str], ...] = (
     (StoreError, 503, "store-unavailable", "The store cannot be used"),
     (BreakingChangeError, 409, "breaking-changes", "The candidate would break callers"),
     (CheckFailedError, 409, "check-failed", "A check refused the request"),
-    (InputError, 422, "invalid-request", "The request cannot be carried out as given"),
+    (InputError, 422, "invalid-request", "The request body is not what the route takes"),
 )
 
 
@@ -158,7 +158,7 @@ def validation_problem(errors: list[Mapping[str, Any]]) -> ServiceProblem:
     return ServiceProblem(
         422,
         "invalid-request",
-        "The request body does not have the expected shape",
+        "The request body is not what the route takes",
         f"{first['pointer']}: {first['detail']}" + (f" (and {len(problems) - 1} more)" if len(problems) > 1 else ""),
         extra={"problems": problems},
     )

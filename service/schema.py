@@ -2,20 +2,23 @@
 
 Each feature is a required property of type ``number`` with ``minimum`` and
 ``maximum`` set to its allowed range (both inclusive, as in the refusal
-policy); ``additionalProperties: false`` mirrors the refusal of unknown
-features. JSON Schema's ``number`` excludes booleans and strings, and JSON has
-no NaN or Infinity, so a record is valid under this schema exactly when the
-range rules accept it. A valid record can still be refused as ``outside_domain``
-by the bundle's domain model (a combination of values unlike the reference rows),
-which no per-property schema can express: the annotation ``x-rbfgate-domain``
-(an unknown keyword, which JSON Schema 2020-12 section 6.5 collects as an
-annotation) states the domain model's thresholds.
+policy), and the optional record ``id``; ``additionalProperties: false``
+mirrors the refusal of unknown features. JSON Schema's ``number`` excludes
+booleans and strings, and JSON has no NaN or Infinity, so a record is valid
+under this schema exactly when the range rules accept it. The members are the
+per-model OpenAPI document's ``Record`` (``model_store.api_document``). A valid
+record can still be refused as ``outside_domain`` by the bundle's domain model
+(a combination of values unlike the reference rows), which no per-property
+schema can express: the annotation ``x-rbfgate-domain`` (an unknown keyword,
+which JSON Schema 2020-12 section 6.5 collects as an annotation) states the
+domain model's thresholds.
 """
 
 from __future__ import annotations
 
 from typing import Any
 
+from model_store.api_document import record_id_schema, record_properties
 from model_store.manifest import Manifest
 
 __all__ = ["DIALECT", "record_schema"]
@@ -25,14 +28,6 @@ DIALECT = "https://json-schema.org/draft/2020-12/schema"
 
 def record_schema(manifest: Manifest, digest: str) -> dict[str, Any]:
     """The schema of one record for ``manifest`` (whose bundle digest is ``digest``)."""
-    properties: dict[str, Any] = {}
-    for feature in manifest.features:
-        low, high = feature.allowed
-        described = [part for part in (feature.description, f"unit: {feature.unit}" if feature.unit else None) if part]
-        prop: dict[str, Any] = {"type": "number", "minimum": low, "maximum": high}
-        if described:
-            prop["description"] = "; ".join(described)
-        properties[feature.name] = prop
     return {
         "$schema": DIALECT,
         "title": f"one record for {manifest.name} {manifest.version}",
@@ -41,7 +36,7 @@ def record_schema(manifest: Manifest, digest: str) -> dict[str, Any]:
             f"POST /score/{manifest.name}/versions/{manifest.version}"
         ),
         "type": "object",
-        "properties": properties,
+        "properties": record_properties(manifest, record_id_schema()),
         "required": manifest.feature_names,
         "additionalProperties": False,
         "x-rbfgate-domain": _domain_annotation(manifest),

@@ -162,7 +162,7 @@ def _shape(pointer: str, detail: str) -> ServiceProblem:
     return ServiceProblem(
         422,
         "invalid-request",
-        "The request body does not have the expected shape",
+        "The request body is not what the route takes",
         f"{pointer}: {detail}",
         extra={"problems": [{"pointer": pointer, "detail": detail}]},
     )

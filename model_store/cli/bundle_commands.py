@@ -36,7 +36,7 @@ def register(subparsers) -> None:
     shown.add_argument("--openapi", action="store_true",
                        help="print the OpenAPI 3.1 document for scoring this bundle, as "
                        "GET /models/NAME/versions/VERSION/openapi.json serves it")
-    inspect.add_argument("--max-records", type=int, default=DEFAULT_MAX_RECORDS, metavar="N",
+    inspect.add_argument("--max-records", type=int, default=None, metavar="N",
                          help=f"with --openapi: the records-per-request limit of the service (default {DEFAULT_MAX_RECORDS}, "
                          "as rbfgate serve)")
     inspect.set_defaults(handler=_inspect)
@@ -149,11 +149,15 @@ def _score(args) -> int:
 
 
 def _inspect(args) -> int:
-    if args.max_records < 1:
-        raise InputError(f"--max-records {args.max_records}: expected 1 or more records per request")
+    if args.max_records is not None and not args.openapi:
+        raise InputError(f"--max-records {args.max_records}: it sets the records limit of the --openapi document; "
+                         "add --openapi or leave --max-records out")
+    max_records = DEFAULT_MAX_RECORDS if args.max_records is None else args.max_records
+    if max_records < 1:
+        raise InputError(f"--max-records {max_records}: expected 1 or more records per request")
     bundle = load_bundle(args.bundle)
     if args.openapi:
-        print(json.dumps(api_document(bundle.manifest, bundle.digest, max_records=args.max_records),
+        print(json.dumps(api_document(bundle.manifest, bundle.digest, max_records=max_records),
                          indent=2, ensure_ascii=False))
         return 0
     description = describe(bundle)

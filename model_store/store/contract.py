@@ -114,10 +114,11 @@ def _compare_features(active: Manifest, candidate: Manifest, recent, convert) ->
                 f"feature {name} removed: records that still send it would be refused as unknown_feature",
             ))
             continue
-        if old.unit != new.unit:
+        old_unit, new_unit = old.unit or None, new.unit or None  # "" (from a feature-info file) is no unit
+        if old_unit != new_unit:
             changes.append(ContractChange(
-                "unit_changed", name, old.unit, new.unit, True,
-                f"feature {name}: unit {old.unit or '(none)'} -> {new.unit or '(none)'}; callers sending the old "
+                "unit_changed", name, old_unit, new_unit, True,
+                f"feature {name}: unit {old_unit or '(none)'} -> {new_unit or '(none)'}; callers sending the old "
                 "unit would get scores for the wrong values",
             ))
         change = _compare_range(old, new, recent, convert)

@@ -118,3 +118,29 @@ def test_export_refuses_reference_columns_in_another_order_than_the_model_was_fi
     with pytest.raises(InputError, match="pass the reference columns in the model's order"):
         export_model(model, shuffled.to_numpy(), tmp_path / "bundle", features=list(shuffled.columns))
     assert not (tmp_path / "bundle").exists()
+
+
+def test_a_feature_given_in_two_columns_is_an_error_naming_it(wine_frame_model):
+    bundle, _, frame = wine_frame_model
+    doubled = pd.concat([frame, frame[["hue"]]], axis=1)
+    with pytest.raises(InputError, match=r"more than one column named 'hue'"):
+        bundle.score(doubled)
+
+
+@pytest.mark.parametrize("values", [
+    lambda column: column.astype(np.complex128) + 1j,  # numpy would drop the imaginary part with a warning
+    lambda column: np.full(len(column), np.datetime64("2026-12-01T00:00:00")),  # would become seconds since 1970
+    lambda column: column.astype("timedelta64[s]"),
+], ids=["complex", "datetime64", "timedelta64"])
+def test_values_that_are_not_real_numbers_are_an_error_naming_the_feature(wine_frame_model, values):
+    bundle, _, frame = wine_frame_model
+    with pytest.raises(InputError, match=r"feature 'hue': not numbers"):
+        bundle.score(frame.assign(hue=values(frame["hue"].to_numpy())))
+
+
+def test_a_single_value_instead_of_a_column_is_an_error_saying_how_to_give_it(wine_frame_model):
+    bundle, _, frame = wine_frame_model
+    one_row = {name: float(frame[name].iloc[0]) for name in frame.columns}
+    with pytest.raises(InputError, match=r"feature 'alcohol': expected a 1-D array of values, one per row, "
+                                         r"got a single value; wrap it in a list"):
+        bundle.score(one_row)

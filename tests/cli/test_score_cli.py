@@ -204,6 +204,20 @@ def test_inspect_text_lists_every_feature(iris_calibrated, capsys):
     assert all(name in out for name in FEATURES) and bundle.digest in out
 
 
+def test_inspect_refuses_max_records_without_openapi_instead_of_ignoring_it(iris_calibrated, capsys):
+    bundle, _, _ = iris_calibrated
+    assert main(["inspect", bundle.source, "--max-records", "50"]) == 2
+    [line] = capsys.readouterr().err.splitlines()
+    assert "--max-records 50" in line and "add --openapi" in line
+
+
+def test_inspect_openapi_sets_max_records_as_the_request_limit(iris_calibrated, capsys):
+    bundle, _, _ = iris_calibrated
+    assert main(["inspect", bundle.source, "--openapi", "--max-records", "50"]) == 0
+    document = json.loads(capsys.readouterr().out)
+    assert document["components"]["schemas"]["ScoreRequest"]["properties"]["records"]["maxItems"] == 50
+
+
 def test_verify_passes_a_sound_bundle_and_names_a_damaged_file(tmp_path, iris_calibrated, capsys):
     import shutil
 

@@ -200,3 +200,37 @@ def test_text_inputs_are_read_as_the_score_command_reads_them(versions):
     recent = [{name: str(value) for name, value in zip(FEATURES, row)} for row in X[:5].tolist()]
     comparison = compare_contracts(bundles["1.0.0"].manifest, bundles["4.0.0"].manifest, recent, from_text)
     assert comparison.recent_inputs == 5 and comparison.breaking == ()
+
+
+def _with_feature(manifest, **changes):
+    """``manifest`` with its first feature changed (a pydantic copy; the bundle on disk is untouched)."""
+    return manifest.model_copy(update={"features": [manifest.features[0].model_copy(update=changes),
+                                                    *manifest.features[1:]]})
+
+
+def test_an_empty_unit_and_no_unit_are_the_same_contract(versions):
+    bundles, _ = versions
+    active = bundles["1.0.0"].manifest
+    assert active.features[0].unit is None
+    assert compare_contracts(active, _with_feature(active, unit="")).changes == ()
+
+
+def test_a_range_shifted_down_is_narrowed_at_its_top_and_breaks_without_recent_inputs(versions):
+    bundles, _ = versions
+    active = bundles["1.0.0"].manifest
+    low, high = active.features[0].allowed
+    shifted = _with_feature(active, allowed=(low - 1.0, high - 0.5))  # wider below, narrower above
+    [change] = compare_contracts(active, shifted).changes
+    assert (change.kind, change.breaking) == ("range_narrowed", True)
+
+
+def test_recent_inputs_the_active_version_already_refuses_do_not_count_against_a_narrower_range(versions):
+    bundles, _ = versions
+    active = bundles["1.0.0"].manifest
+    low, high = active.features[0].allowed
+    narrower = _with_feature(active, allowed=(low, high - 0.5))
+    inside = {active.features[0].name: low}  # accepted by both
+    refused_anyway = {active.features[0].name: high + 10.0}  # outside both ranges: no caller loses anything
+    [change] = compare_contracts(active, narrower, [inside, refused_anyway]).changes
+    assert (change.kind, change.breaking, change.recent_refused) == (
+        "range_narrowed", False, {"count": 0, "of": 1, "share": 0.0})

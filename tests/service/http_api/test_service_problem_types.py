@@ -22,22 +22,26 @@ from service.problems import problem_for_error
 _SERVICE = Path(__file__).resolve().parents[3] / "service"
 
 
-def _literal_kinds() -> set[tuple[str, int]]:
-    """(kind, status) of every ServiceProblem built with literal arguments."""
-    kinds = set()
+def _argument(node: ast.Call, position: int, name: str):
+    value = node.args[position] if len(node.args) > position else next(
+        (keyword.value for keyword in node.keywords if keyword.arg == name), None)
+    return value.value if isinstance(value, ast.Constant) else None
+
+
+def _literal_problems() -> set[tuple[str, int, str | None]]:
+    """(kind, status, title) of every ServiceProblem built with a literal kind and status."""
+    found = set()
     for path in sorted(_SERVICE.glob("*.py")):
         for node in ast.walk(ast.parse(path.read_text(), str(path))):
             if isinstance(node, ast.Call) and getattr(node.func, "id", None) == "ServiceProblem":
-                kind = node.args[1] if len(node.args) > 1 else next(
-                    (keyword.value for keyword in node.keywords if keyword.arg == "kind"), None)
-                status = node.args[0] if node.args else None
-                if isinstance(kind, ast.Constant) and isinstance(kind.value, str) and isinstance(status, ast.Constant):
-                    kinds.add((kind.value, status.value))
-    return kinds
+                status, kind, title = _argument(node, 0, "status"), _argument(node, 1, "kind"), _argument(node, 2, "title")
+                if isinstance(kind, str) and isinstance(status, int):
+                    found.add((kind, status, title))
+    return found
 
 
-def _error_kinds() -> set[tuple[str, int]]:
-    kinds, pending = set(), [errors.RbfgateError]
+def _error_problems() -> set[tuple[str, int, str]]:
+    found, pending = set(), [errors.RbfgateError]
     while pending:
         cls = pending.pop()
         pending.extend(cls.__subclasses__())
@@ -45,11 +49,12 @@ def _error_kinds() -> set[tuple[str, int]]:
             error = cls.__new__(cls)
             Exception.__init__(error, "example")
             problem = problem_for_error(error)
-            kinds.add((problem.kind, problem.status))
-    return kinds
+            found.add((problem.kind, problem.status, problem.title))
+    return found
 
 
-_USED = {(kind, status) for kind, status in _literal_kinds() | _error_kinds() if kind != "about:blank"}  # section 4.2.1
+_PROBLEMS = {problem for problem in _literal_problems() | _error_problems() if problem[0] != "about:blank"}  # 4.2.1
+_USED = {(kind, status) for kind, status, _ in _PROBLEMS}
 _KINDS = sorted({kind for kind, _ in _USED})
 
 
@@ -94,6 +99,12 @@ def test_every_page_belongs_to_a_kind_the_code_uses():
 
 def test_each_page_names_the_status_the_code_sends_with_its_kind():
     assert {(kind, PROBLEM_TYPES[kind].status) for kind, _ in _USED} == _USED
+
+
+def test_every_problem_of_one_type_carries_the_title_of_its_page():
+    # RFC 9457 section 3.1.3: the title "SHOULD NOT change from occurrence to occurrence of the problem".
+    titles = {(kind, title) for kind, _, title in _PROBLEMS if title is not None}
+    assert titles == {(kind, PROBLEM_TYPES[kind].title) for kind, _ in titles}
 
 
 def test_a_page_states_the_status_its_problems_carry(shared_client):

@@ -14,6 +14,8 @@ from hypothesis import strategies as st
 
 from model_store.refusal import check_records, from_json
 
+from .cases import GOOD_RECORD
+
 
 def _schema(client, model="iris", version="1.0.0"):
     response = client.get(f"/models/{model}/versions/{version}/schema")
@@ -50,16 +52,24 @@ _VALUES = st.one_of(
     st.text(max_size=3),
     st.lists(st.integers(), max_size=2),
 )
-_NAMES = st.sampled_from(["sepal_length_cm", "sepal_width_cm", "petal_length_cm", "petal_width_cm", "colour"])
+_NAMES = st.sampled_from(["sepal_length_cm", "sepal_width_cm", "petal_length_cm", "petal_width_cm", "colour", "id"])
+# Record ids (the service's rule, model_store.refusal.ID_RULE): strings of 1 to 128 characters or
+# integers of at most 128 digits; each side of both limits.
+_IDS = st.sampled_from(["", "a", "x" * 128, "x" * 129, 10**128 - 1, 10**128, -(10**128 - 1), -(10**128), 0, True])
 
 
 @settings(max_examples=300, deadline=None)
-@given(record=st.dictionaries(_NAMES, _VALUES, min_size=3, max_size=5))
-def test_schema_accepts_exactly_the_records_the_refusal_policy_accepts(shared_client, service_models, record):
+@given(base=st.sampled_from([{}, GOOD_RECORD]), drawn=st.dictionaries(_NAMES, _VALUES, max_size=5),
+       record_id=st.none() | _IDS)
+def test_schema_accepts_exactly_the_records_the_refusal_policy_accepts(shared_client, service_models, base, drawn,
+                                                                       record_id):
+    record = {**base, **drawn}  # from a scoreable record, so that acceptance is as common as refusal
+    if record_id is not None:
+        record["id"] = record_id
     features = service_models.iris1.bundle.manifest.features
     schema = _schema(shared_client)
     valid = jsonschema.Draft202012Validator(schema).is_valid(record)
-    accepted = len(check_records(features, [record], from_json).accepted) == 1
+    accepted = len(check_records(features, [record], from_json, ids=True).accepted) == 1  # as the service checks
     assert valid == accepted, record
 
 

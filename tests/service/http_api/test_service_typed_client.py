@@ -25,6 +25,7 @@ from openapi_spec_validator.validation import OpenAPIV31SpecValidator
 
 from model_store import load_bundle
 
+from .generated_client import generated_client
 from .server import ServeProcess
 
 _MODEL, _VERSION = "pallet-checks", "1.0.0"
@@ -58,23 +59,8 @@ def document(server) -> dict:
 @pytest.fixture(scope="module")
 def generated(document, tmp_path_factory):
     """The package openapi-python-client generates from the per-model document, imported."""
-    workdir = tmp_path_factory.mktemp("generated")
-    (workdir / "document.json").write_text(json.dumps(document))
-    (workdir / "config.json").write_text(json.dumps({"package_name_override": _PACKAGE, "post_hooks": []}))
-    completed = subprocess.run(
-        [sys.executable, "-m", "openapi_python_client", "generate", "--path", str(workdir / "document.json"),
-         "--meta", "none", "--config", str(workdir / "config.json"), "--output-path", str(workdir / _PACKAGE)],
-        capture_output=True, text=True, timeout=300,
-    )
-    assert completed.returncode == 0, completed.stdout + completed.stderr
-    assert "Warning" not in completed.stdout, completed.stdout  # nothing of the document was left out
-    sys.path.insert(0, str(workdir))
-    try:
-        yield importlib.import_module(_PACKAGE)
-    finally:
-        sys.path.remove(str(workdir))
-        for name in [name for name in sys.modules if name == _PACKAGE or name.startswith(_PACKAGE + ".")]:
-            del sys.modules[name]
+    with generated_client(document, tmp_path_factory.mktemp("generated"), _PACKAGE) as package:
+        yield package
 
 
 def _score(generated, server, *records):
