@@ -17,7 +17,8 @@ from model_store.naming import MAX_NAME_LENGTH
 from model_store.refusal import MAX_ID_LENGTH, REASONS
 
 __all__ = [
-    "ActivateRequest", "Alive", "DOCUMENTED_MODELS", "History", "LiveAt", "ModelDetail", "ModelList", "NAME_PATTERN",
+    "ActivateRequest", "Alive", "BreakingChangesProblem", "DOCUMENTED_MODELS", "History", "LiveAt", "ModelDetail",
+    "ModelList", "NAME_PATTERN",
     "OutsideDomainChoice", "OutsideDomainRequest", "Preview", "PreviewRequest", "Problem", "Readiness",
     "RecordsRefusedProblem", "RollbackRequest", "ScoreRequest", "ScoreResponse", "Switched", "VersionDetail",
 ]
@@ -277,12 +278,32 @@ class PreviewRequest(_Doc):
     version: str = Field(min_length=1, max_length=MAX_NAME_LENGTH, pattern=NAME_PATTERN)
 
 
+_RANGE_BASIS = ("what narrowed allowed ranges were judged on: \"recent inputs: N\" (this worker's recently "
+                "scored records) or \"active version's training range\" (it has none, e.g. after a restart)")
+
+
 class Switched(_Doc):
     model: str
     entry: HistoryEntry
     served_by_this_worker: ServedVersion | None
     load_failure: LoadFailureInfo | None
     undid: Undone | None = Field(default=None, description="rollback only: the activation it undid")
+    range_basis: str | None = Field(
+        default=None, description=f"activation only, null when no version was active to compare with: {_RANGE_BASIS}")
+
+
+class BreakingChangesProblem(_Doc):
+    """409 when activating would break callers of the active version (``/problems/breaking-changes``)."""
+
+    model_config = ConfigDict(extra="allow")
+    type: Literal["/problems/breaking-changes"]
+    title: str
+    status: Literal[409]
+    detail: str
+    error: Literal["BreakingChangeError"]
+    breaking_changes: list[str] = Field(
+        min_length=1, description="each breaking change, one line each, as the contract comparison words it")
+    range_basis: str | None = Field(description=_RANGE_BASIS)
 
 
 class Preview(_Doc):
@@ -318,7 +339,7 @@ class Readiness(_Doc):
 
 
 DOCUMENTED_MODELS = [
-    Problem, RecordsRefusedProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, LiveAt,
+    Problem, RecordsRefusedProblem, BreakingChangesProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, LiveAt,
     ActivateRequest, RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness, OutsideDomainRequest,
     OutsideDomainChoice,
 ]
