@@ -14,7 +14,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from model_store.manifest import DomainSpec, FeatureSpec, FileEntry, KernelSpec, RefusalReport
 from model_store.naming import MAX_NAME_LENGTH
-from model_store.refusal import MAX_ID_LENGTH, REASONS
+from model_store.refusal import MAX_ID_INTEGER, MAX_ID_LENGTH, REASONS
 
 __all__ = [
     "ActivateRequest", "Alive", "BreakingChangesProblem", "DOCUMENTED_MODELS", "History", "LiveAt", "ModelDetail",
@@ -35,7 +35,8 @@ class _Doc(BaseModel):
 
 
 Label = str | int  # class labels keep their type: JSON strings or integers
-_ID = Field(default=None, description=f"the record's id when it sent one (at most {MAX_ID_LENGTH} characters)")
+_ID = Field(default=None, description=f"the record's id when it sent one (a string of at most {MAX_ID_LENGTH} "
+            f"characters without control characters, or an integer within ±{MAX_ID_INTEGER})")
 
 
 class Problem(BaseModel):
@@ -54,6 +55,7 @@ class RecordProblem(_Doc):
                        "score for outside_domain")
     reason: Literal[REASONS]  # type: ignore[valid-type]
     allowed: tuple[float, float] | None = Field(description="the allowed range [low, high], inclusive")
+    message: str | None = Field(default=None, description="invalid_id only: which rule the id breaks, with its limit")
 
 
 class NearestSupport(_Doc):
