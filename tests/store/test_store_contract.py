@@ -283,3 +283,33 @@ def test_recent_inputs_the_active_version_already_refuses_do_not_count_against_a
     [change] = compare_contracts(active, narrower, [inside, refused_anyway]).changes
     assert (change.kind, change.breaking, change.recent_refused) == (
         "range_narrowed", False, {"count": 0, "of": 1, "share": 0.0})
+
+
+def _csv(path, header, rows):
+    with open(path, "w", newline="") as handle:
+        csv.writer(handle).writerows([header, *rows])
+    return str(path)
+
+
+@pytest.mark.parametrize("command", [["activate", "iris", "5.0.0", "--reason", "x"], ["preview", "iris", "5.0.0"]])
+def test_inputs_holding_none_of_the_feature_columns_are_refused_naming_the_expected_ones(store, tmp_path, command):
+    inputs = _csv(tmp_path / "recent.csv", ["pallet_id", "weight_kg"], [["p1", "3.5"]])
+    refused = _cli(store, *command, "--inputs", inputs)
+    assert refused.returncode == 2
+    [line] = refused.stderr.splitlines()
+    assert "none of the feature columns of iris 1.0.0" in line and ", ".join(FEATURES) in line
+    assert store.active("iris").version == "1.0.0"
+
+
+def test_inputs_missing_some_feature_columns_are_refused_naming_the_missing_ones(store, tmp_path):
+    inputs = _csv(tmp_path / "recent.csv", FEATURES[:2], [["5.1", "3.5"]])
+    refused = _cli(store, "activate", "iris", "5.0.0", "--reason", "x", "--inputs", inputs)
+    assert refused.returncode == 2
+    [line] = refused.stderr.splitlines()
+    assert f"lacks the feature column(s) {FEATURES[2]}, {FEATURES[3]} of iris 1.0.0" in line
+
+
+def test_cli_activate_says_what_narrowed_ranges_were_judged_on(store):
+    activated = _cli(store, "activate", "iris", "4.0.0", "--reason", "retrained", "--actor", "alice")
+    assert activated.returncode == 0, activated.stderr
+    assert "narrowed ranges judged on: active version's training range" in activated.stdout
