@@ -38,6 +38,7 @@ from model_store.refusal import RECORD_ID
 __all__ = [
     "DEFAULT_MARGIN",
     "DEFAULT_REFUSE_RATE",
+    "FEATURE_QUANTILE_LEVELS",
     "GOLDEN_FROM_REFERENCE",
     "GOLDEN_SYNTHETIC",
     "ExportRequest",
@@ -48,6 +49,8 @@ __all__ = [
 DEFAULT_MARGIN = 0.05
 GOLDEN_FROM_REFERENCE = 32
 GOLDEN_SYNTHETIC = 8
+# Every 5 %, plus 1 % and 99 %: 23 numbers per feature keep the manifest small for wide models.
+FEATURE_QUANTILE_LEVELS = np.unique(np.concatenate([np.linspace(0.0, 1.0, 21), [0.01, 0.99]])).round(4)
 
 
 @dataclass
@@ -274,6 +277,7 @@ def _training(request: ExportRequest) -> dict[str, Any]:
             "sha256": request.reference_sha256,
             "rows": int(len(request.reference)),
             "role": request.reference_role,
+            "feature_quantiles": _feature_quantiles(request),
         },
         "libraries": {
             "python": platform.python_version(),
@@ -300,6 +304,16 @@ def _training(request: ExportRequest) -> dict[str, Any]:
             training["holdout_metrics"] = classification_metrics(request.parts, request.holdout, request.holdout_labels)
     training.update(request.training)
     return training
+
+
+def _feature_quantiles(request: ExportRequest) -> dict[str, Any]:
+    """Per feature, the reference rows' quantiles (raw units) at ``FEATURE_QUANTILE_LEVELS``: the
+    model card draws them as a strip beside the allowed range, without shipping any row."""
+    values = np.quantile(request.reference, FEATURE_QUANTILE_LEVELS, axis=0)  # (levels, f)
+    return {
+        "levels": FEATURE_QUANTILE_LEVELS.tolist(),
+        "values": {name: values[:, index].astype(float).tolist() for index, name in enumerate(request.features)},
+    }
 
 
 def _golden_inputs(reference: np.ndarray, fingerprint: str) -> np.ndarray:

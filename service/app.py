@@ -37,6 +37,7 @@ from service.registry import ModelRegistry
 from service.request_ids import RequestIdMiddleware
 from service.score_routes import add_score_routes
 from service.settings import Settings
+from service.view_routes import add_view_routes
 
 __all__ = ["create_app", "create_app_from_environ", "poll_deadline"]
 
@@ -92,7 +93,8 @@ def create_app(
         redirect_slashes=False,
         dependencies=[Depends(access_check(authenticator))],
     )
-    for add_routes in (add_score_routes, add_model_routes, add_operation_routes, add_health_routes, add_problem_routes):
+    for add_routes in (add_score_routes, add_model_routes, add_operation_routes, add_health_routes, add_problem_routes,
+                       add_view_routes):
         add_routes(app, services)
     add_openapi_route(app, settings.max_records)
     _check_every_route_has_a_rule(app)

@@ -12,7 +12,9 @@ Roles (``service.tokens.ROLES``):
              domain; reads metadata, schemas, bundles and history
     audit    reads metadata, schemas, bundles and history
 
-Without a tokens file, scoring and metadata are open; history, bundle
+The pages under ``/view/`` and their files are public (they hold no model
+data); the ``/view/data/...`` routes they fetch have the rule of the JSON
+route each draws. Without a tokens file, scoring and metadata are open; history, bundle
 downloads and version changes are refused with 403 and an explanation (the
 bundle holds support vectors, which are training rows).
 
@@ -57,6 +59,8 @@ class AccessRule:
 
 _PUBLIC = AccessRule(frozenset(), "health and metrics", public=True)
 _PROBLEM_PAGES = AccessRule(frozenset(), "reading what a problem type means", public=True)
+# Pages and their files hold no model data; the data they fetch has the rules below.
+_VIEW_PAGES = AccessRule(frozenset(), "opening a page (its data needs the data routes' roles)", public=True)
 _SCORE = AccessRule(frozenset({"score"}), "scoring", open_without_tokens=True)
 _METADATA = AccessRule(frozenset({"score", "operate", "audit"}), "reading model metadata", open_without_tokens=True)
 _BUNDLE = AccessRule(frozenset({"operate", "audit"}), "downloading a bundle (it holds training rows)")
@@ -84,6 +88,20 @@ ACCESS_RULES: Mapping[tuple[str, str], AccessRule] = {
     ("GET", "/metrics"): _PUBLIC,
     ("GET", "/openapi.json"): _METADATA,
     ("GET", "/problems/{kind}"): _PROBLEM_PAGES,
+    # The pages (service.view_routes): each data route has the rule of the JSON route it draws.
+    ("GET", "/"): _VIEW_PAGES,
+    ("GET", "/view/"): _VIEW_PAGES,
+    ("GET", "/view/models/{model}"): _VIEW_PAGES,
+    ("GET", "/view/models/{model}/versions/{version}"): _VIEW_PAGES,
+    ("GET", "/view/models/{model}/try"): _VIEW_PAGES,
+    ("GET", "/view/models/{model}/preview"): _VIEW_PAGES,
+    ("GET", "/view/assets/{name:path}"): _VIEW_PAGES,
+    ("GET", "/view/data/session"): _VIEW_PAGES,  # answers who the caller is; refuses nobody
+    ("GET", "/view/data/models"): _METADATA,
+    ("GET", "/view/data/models/{model}/versions/{version}/card"): _METADATA,
+    ("GET", "/view/data/models/{model}/timeline"): _HISTORY,
+    ("POST", "/view/data/models/{model}/try"): _SCORE,
+    ("POST", "/view/data/models/{model}/preview"): _OPERATE,
 }
 
 

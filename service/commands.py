@@ -125,7 +125,8 @@ def _serve(args: argparse.Namespace, environ: MutableMapping[str, str] = os.envi
     environ.update(settings.to_environ())
     print(
         f"rbfgate serve: store {root}, http://{settings.host}:{settings.port}, {settings.workers} worker(s), "
-        f"tokens {'from ' + str(settings.tokens_file) if settings.tokens_file else 'off'}",
+        f"tokens {'from ' + str(settings.tokens_file) if settings.tokens_file else 'off'}; "
+        f"pages at http://{_browsable(settings.host)}:{settings.port}/view/",
         file=sys.stderr,
         flush=True,
     )
@@ -156,6 +157,15 @@ def _serve(args: argparse.Namespace, environ: MutableMapping[str, str] = os.envi
         if metrics_dir is not None:
             shutil.rmtree(metrics_dir, ignore_errors=True)
     return 0
+
+
+def _browsable(host: str) -> str:
+    """The address a browser on this machine opens: a wildcard listen address is not one."""
+    if host in ("0.0.0.0", ""):  # nosec B104 - compares the listen address, binds nothing
+        return "127.0.0.1"
+    if host == "::":
+        return "[::1]"
+    return f"[{host}]" if ":" in host else host
 
 
 def _check_port_free(host: str, port: int) -> None:

@@ -22,13 +22,14 @@ import numpy as np
 from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 from prometheus_client import multiprocess
 
-__all__ = ["DISTANCE_BUCKETS", "ServiceMetrics"]
+__all__ = ["DISTANCE_BUCKETS", "TRAFFIC_KEYS", "ServiceMetrics"]
 
 _LATENCY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
 # Distances live in the scaled space, where one unit is about one training
 # standard deviation for a standard scaler; doubling steps cover near and far.
 DISTANCE_BUCKETS = (0.125, 0.25, 0.5, 1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.0)
 _PERCENTILE_BUCKETS = (10.0, 25.0, 50.0, 75.0, 90.0, 95.0, 99.0, 100.0)
+TRAFFIC_KEYS = ("requests", "scored", "refused", "typical", "unusual", "outside")
 _METHODS = frozenset({"GET", "POST", "PUT", "PATCH", "DELETE", "HEAD", "OPTIONS"})
 
 
@@ -140,6 +141,31 @@ class ServiceMetrics:
 
     def load_recovered(self, model: str, version: str) -> None:
         self.load_failing.labels(model, version).set(0)
+
+    def traffic(self) -> dict[str, dict[str, int]]:
+        """Per model, summed over versions and (in multiprocess mode) workers: scoring requests,
+        records scored and refused, and domain verdicts, ``{model: {key: count}}`` for ``TRAFFIC_KEYS``."""
+        totals: dict[str, dict[str, int]] = {}
+        for metric in self._collected():
+            for sample in metric.samples:
+                if sample.name == "rbfgate_score_requests_total":
+                    key = "requests"
+                elif sample.name == "rbfgate_records_total":
+                    key = sample.labels["status"]
+                elif sample.name == "rbfgate_domain_verdicts_total":
+                    key = sample.labels["verdict"]
+                else:
+                    continue
+                counts = totals.setdefault(sample.labels["model"], dict.fromkeys(TRAFFIC_KEYS, 0))
+                counts[key] = counts.get(key, 0) + int(sample.value)
+        return totals
+
+    def _collected(self):
+        if self.multiprocess_dir is None:
+            return self._registry.collect()
+        registry = CollectorRegistry()
+        multiprocess.MultiProcessCollector(registry, path=self.multiprocess_dir)
+        return registry.collect()
 
     def render(self) -> tuple[bytes, str]:
         """The exposition text and its content type."""

@@ -34,7 +34,7 @@ from model_store.store.timeline import parse_moment
 from service.context import Services
 from service.schema import record_schema
 
-__all__ = ["add_model_routes"]
+__all__ = ["add_model_routes", "history_document"]
 
 _CHUNK = 1 << 16
 _TAR = "application/x-tar"
@@ -141,10 +141,16 @@ def add_model_routes(app: FastAPI, services: Services) -> None:
 
         The same document as ``rbfgate history NAME --verify --json`` (or ``--at TIME --json``).
         """
-        _versions(services, model)
         if at is not None:
+            _versions(services, model)
             return store.live_at(model, parse_moment(at)).to_dict()
-        return store.history_document(model)
+        return history_document(services, model)
+
+
+def history_document(services: Services, model: str) -> dict[str, Any]:
+    """The history route's answer (also drawn by the timeline page): entries and their verification."""
+    _versions(services, model)
+    return services.store.history_document(model)
 
 
 def _model_summary(services: Services, name: str) -> dict[str, Any]:

@@ -30,7 +30,7 @@ from service.body import parse_json, read_body
 from service.context import Services
 from service.problems import ServiceProblem, validation_problem
 
-__all__ = ["add_operation_routes"]
+__all__ = ["add_operation_routes", "preview_body", "preview_document"]
 
 _MAX_REASON = 1000
 
@@ -116,15 +116,22 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
     @app.post("/models/{model}/preview")
     async def preview_swap(model: str, request: Request) -> dict[str, Any]:
         """Compare a candidate with the active version on golden vectors and recently scored records."""
-        body = _validated(_PreviewBody, await read_body(request, limit))
+        version = preview_body(await read_body(request, limit))
+        return await run_in_threadpool(preview_document, services, model, version)
 
-        def run() -> dict[str, Any]:
-            check_name(model, what="model name")
-            records = services.recent.records(model)
-            report = preview(services.store, model, body.version, records or None)
-            return {"model": model, "candidate": body.version, "recent_records": len(records), "report": report.to_dict()}
 
-        return await run_in_threadpool(run)
+def preview_body(body: bytes) -> str:
+    """The candidate version named by a preview request body ``{"version": "..."}`` (422 otherwise)."""
+    return _validated(_PreviewBody, body).version
+
+
+def preview_document(services: Services, model: str, version: str) -> dict[str, Any]:
+    """The preview route's answer (also drawn by the preview page): ``version`` against the active
+    version on the golden vectors and this worker's recently scored records."""
+    check_name(model, what="model name")
+    records = services.recent.records(model)
+    report = preview(services.store, model, version, records or None)
+    return {"model": model, "candidate": version, "recent_records": len(records), "report": report.to_dict()}
 
 
 def _validated(model: type[BaseModel], body: bytes):

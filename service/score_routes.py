@@ -28,7 +28,7 @@ from service.problems import ServiceProblem
 from service.registry import LoadedModel
 from service.scoring import ScoredBatch, read_records, score_records
 
-__all__ = ["add_score_routes"]
+__all__ = ["active_model", "add_score_routes"]
 
 _EMPTY = np.empty(0)
 # A loaded model and a body this small are scored on the event loop: measured on 2 cores
@@ -78,6 +78,11 @@ def _score(services: Services, request: Request, body: bytes, resolve) -> Respon
         )
     content = json.dumps({**head, "results": batch.results}, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
     return Response(content, media_type="application/json", headers=headers)
+
+
+def active_model(services: Services, name: str) -> LoadedModel:
+    """The version this worker serves for ``name`` (404, or 503 while it cannot be loaded)."""
+    return _active(services, name)
 
 
 def _active(services: Services, name: str) -> LoadedModel:

@@ -93,6 +93,8 @@ def _next_steps(store_root: Path) -> str:
         [
             "",
             f"serve it:   rbfgate serve --store {store_root}",
+            "then open the pages (models, timeline, model card, try a record, preview a switch):",
+            "  http://127.0.0.1:8000/view/",
             "score one pallet:",
             f"  curl -s -X POST http://127.0.0.1:8000/score/{DEMO_MODEL} -H 'Content-Type: application/json' -d '{record}'",
             "a refused one (core temperature out of range, peak_shock_g missing):",

@@ -9,9 +9,10 @@ table), the largest change in decision value and probability, rows only one
 of the two would refuse, features whose allowed range changed, domain verdicts
 that would change (an active-by-candidate verdict table; "none" for a version
 without a domain model; rows refused as ``outside_domain`` count there, not among
-the range refusals), and the contract comparison (``model_store.store.contract``:
+the range refusals), the contract comparison (``model_store.store.contract``:
 which changes would break callers, and so make ``activate`` refuse without
-accept-breaking). Nothing in the store changes.
+accept-breaking), and the distribution of per-row changes (a histogram by row
+source). Nothing in the store changes.
 """
 
 from __future__ import annotations
@@ -31,9 +32,10 @@ from model_store.store.preview_text import render
 if TYPE_CHECKING:
     from model_store.store.store import Store
 
-__all__ = ["MAX_EXAMPLES", "PreviewReport", "preview"]
+__all__ = ["CHANGE_BINS", "MAX_EXAMPLES", "PreviewReport", "preview"]
 
 MAX_EXAMPLES = 20  # refused rows listed per direction; the counts are always complete
+CHANGE_BINS = 20  # bins of the change distribution (probability: 0.05 wide)
 
 
 @dataclass
@@ -57,6 +59,7 @@ class PreviewReport:
     examples: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
     range_changes: list[dict[str, Any]] = field(default_factory=list)
     contract: ContractComparison = field(default_factory=lambda: ContractComparison((), 0))
+    change_distribution: dict[str, Any] | None = None
     domain_changes: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
@@ -77,6 +80,7 @@ class PreviewReport:
             },
             "allowed_range_changes": self.range_changes,
             "contract": self.contract.to_dict(),
+            "change_distribution": self.change_distribution,
             "domain_verdict_changes": self.domain_changes,
         }
 
@@ -151,6 +155,7 @@ def preview(
             report.largest_probability_change = _largest(
                 scores_active.probabilities, scores_candidate.probabilities, both, origins, active.classes
             )
+        report.change_distribution = _change_distribution(scores_active, scores_candidate, both, origins)
     _refusals(report, checked_active, checked_candidate, origins)
     report.domain_changes = _domain_changes(scores_active, scores_candidate)
     return report
@@ -220,6 +225,26 @@ def _largest(before: np.ndarray, after: np.ndarray, both, origins, classes) -> d
         "row": index,
         "class": None if column is None else classes[int(column)],
     }
+
+
+def _change_distribution(scores_active, scores_candidate, both, origins) -> dict[str, Any]:
+    """Histogram, by row source, of each row's largest absolute change: in probability (any class)
+    when both versions are calibrated, else in decision value. Bounded in size whatever the rows."""
+    calibrated = scores_active.probabilities is not None and scores_candidate.probabilities is not None
+    before, after = (
+        (scores_active.probabilities, scores_candidate.probabilities) if calibrated
+        else (scores_active.decision, scores_candidate.decision)
+    )
+    change = np.abs(np.asarray(after, dtype=np.float64) - np.asarray(before, dtype=np.float64))
+    per_row = change.max(axis=1) if change.ndim == 2 else change
+    top = 1.0 if calibrated else max(float(per_row.max()), 1e-12)
+    edges = np.linspace(0.0, top, CHANGE_BINS + 1)
+    bins = np.clip(np.searchsorted(edges, per_row, side="right") - 1, 0, CHANGE_BINS - 1)
+    counts: dict[str, list[int]] = {}
+    for row, index in zip(bins.tolist(), both):
+        counts.setdefault(origins[index][0], [0] * CHANGE_BINS)[row] += 1
+    return {"measure": "probability" if calibrated else "decision", "edges": edges.tolist(), "counts": counts,
+            "rows": len(both)}
 
 
 def _refusals(report: PreviewReport, checked_active: CheckedBatch, checked_candidate: CheckedBatch, origins) -> None:

@@ -52,6 +52,14 @@ _SERVING_SCRIPT = textwrap.dedent(
         named = bundle.score({name: rows[:, index] for index, name in enumerate(bundle.feature_names)})
         assert named.labels.tolist() == scores.labels.tolist()
 
+    # The model card and the pages are built on the serving path too (rbfgate card, /view/).
+    import service.app
+    from model_store.view.pages import offline_card_html
+    from model_store.view.sources import file_card
+
+    for path in sys.argv[1:]:
+        assert "vegaLite" in offline_card_html(file_card(path))  # the plotting scripts are inlined
+
     # scipy too: like scikit-learn and joblib it is in the 'train' extra only; pandas is never needed,
     # named columns are recognised without it (model_store/columns.py).
     forbidden = sorted(name for name in sys.modules

@@ -42,6 +42,7 @@ def test_demo_trains_scores_publishes_and_activates(tmp_path, capsys):
     assert store.verify_history("pallet-checks") == 2
     printed = capsys.readouterr().out
     assert "rbfgate serve --store" in printed and "curl" in printed
+    assert "http://127.0.0.1:8000/view/" in printed  # where serve's pages are (its default address)
 
 
 def test_demo_rerun_replaces_its_own_folder(tmp_path):

@@ -194,7 +194,7 @@ def test_mutated_requests_never_get_a_5xx_and_errors_are_problem_details(fuzzed_
 def test_requests_that_are_not_http_get_uvicorns_400_and_the_server_goes_on(fuzzed_server):
     server, _, _ = fuzzed_server
     garbage = [b"\x16\x03\x01\x02\x00\x01\x00\x01\xfc\x03\x03" + bytes(range(64)), b"GET\r\n\r\n",
-               b"GET / HTTP/9.9\r\nHost: x\r\n\r\n", b"GET /models HTTP/1.1\r\nHost: x\r\nBad Header\r\n\r\n",
+               b"GET /nowhere HTTP/9.9\r\nHost: x\r\n\r\n", b"GET /models HTTP/1.1\r\nHost: x\r\nBad Header\r\n\r\n",
                b"POST /score/iris HTTP/1.1\r\nHost: x\r\nTransfer-Encoding: chunked\r\n\r\nzz\r\n{}\r\n0\r\n\r\n",
                b"GET /models HTTP/1.1\r\nHost: x\r\nX: \x00\r\n\r\n", b"\r\n\r\n\r\n"]
     for data in garbage:

@@ -102,6 +102,21 @@ ROLE_MATRIX = {
     ("GET", "/metrics"): ("public", True, "/metrics", None),
     ("GET", "/openapi.json"): ({"score", "operate", "audit"}, True, "/openapi.json", None),
     ("GET", "/problems/{kind}"): ("public", True, "/problems/records-refused", None),
+    # The pages hold no data; their data routes have the rules of the JSON routes they draw.
+    ("GET", "/"): ("public", True, "/", None),
+    ("GET", "/view/"): ("public", True, "/view/", None),
+    ("GET", "/view/models/{model}"): ("public", True, "/view/models/iris", None),
+    ("GET", "/view/models/{model}/versions/{version}"): ("public", True, "/view/models/iris/versions/1.0.0", None),
+    ("GET", "/view/models/{model}/try"): ("public", True, "/view/models/iris/try", None),
+    ("GET", "/view/models/{model}/preview"): ("public", True, "/view/models/iris/preview", None),
+    ("GET", "/view/assets/{name:path}"): ("public", True, "/view/assets/vendor/vega.min.js", None),
+    ("GET", "/view/data/session"): ("public", True, "/view/data/session", None),
+    ("GET", "/view/data/models"): ({"score", "operate", "audit"}, True, "/view/data/models", None),
+    ("GET", "/view/data/models/{model}/versions/{version}/card"): (
+        {"score", "operate", "audit"}, True, "/view/data/models/iris/versions/1.0.0/card", None),
+    ("GET", "/view/data/models/{model}/timeline"): ({"operate", "audit"}, False, "/view/data/models/iris/timeline", None),
+    ("POST", "/view/data/models/{model}/try"): ({"score"}, True, "/view/data/models/iris/try", {"records": [GOOD_RECORD]}),
+    ("POST", "/view/data/models/{model}/preview"): ({"operate"}, False, "/view/data/models/iris/preview", {"version": "2.0.0"}),
 }
 
 
@@ -124,7 +139,8 @@ def assert_problem(response, status: int) -> dict:
 
 def _call(client, route, headers=None):
     _, _, path, body = ROLE_MATRIX[route]
-    return client.request(route[0], path, json=body, headers=headers or {})
+    # follow_redirects: GET / answers 307 to /view/ (httpx does not follow by default, TestClient does)
+    return client.request(route[0], path, json=body, headers=headers or {}, follow_redirects=True)
 
 
 def check_role_matrix_with_tokens(client, issued: dict[str, str]) -> None:
