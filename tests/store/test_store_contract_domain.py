@@ -21,11 +21,10 @@ from sklearn.svm import SVC
 
 from model_store.errors import BreakingChangeError
 from model_store.refusal import check_records
-from model_store.store import Store
 from model_store.store.contract import compare_contracts
 from model_store.store.preview import preview
 
-from store_support import FEATURES
+from store_support import FEATURES, store_with
 
 _CLASSES = np.array(["setosa", "versicolor", "virginica"])
 
@@ -56,11 +55,7 @@ def versions(tmp_path_factory):
 @pytest.fixture
 def store(tmp_path, versions):
     bundles, _ = versions
-    store = Store(tmp_path / "store", create=True)
-    for bundle in bundles.values():
-        store.publish(bundle.source, actor="publisher")
-    store.activate("iris", "1.0.0", reason="first release", actor="alice")
-    return store
+    return store_with(tmp_path / "store", list(bundles.values()), "1.0.0")
 
 
 def _records(rows) -> list[dict[str, float]]:
