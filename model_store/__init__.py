@@ -24,6 +24,7 @@ from model_store.errors import (
     RbfgateError,
     SignatureError,
     StoreError,
+    TableError,
     UnsafeArchiveError,
     VersionConflictError,
 )
@@ -52,6 +53,7 @@ __all__ = [
     "Scores",
     "SignatureError",
     "StoreError",
+    "TableError",
     "UnsafeArchiveError",
     "VersionConflictError",
     "load_bundle",

@@ -83,10 +83,14 @@ def pack_members(members: dict[str, bytes], handle) -> None:
             tar.addfile(info, io.BytesIO(data))
 
 
-def read_archive(path: Path) -> dict[str, bytes]:
-    """Return ``{member name: bytes}`` for a safe bundle archive, else raise ``UnsafeArchiveError``."""
+def read_archive(path: Path, data: bytes | None = None) -> dict[str, bytes]:
+    """Return ``{member name: bytes}`` for a safe bundle archive, else raise ``UnsafeArchiveError``.
+
+    ``data``, when given, is the archive's bytes (held in memory); ``path`` then only names it in messages.
+    """
     try:
-        with tarfile.open(path, mode="r:") as tar:
+        with (tarfile.open(fileobj=io.BytesIO(data), mode="r:") if data is not None
+              else tarfile.open(path, mode="r:")) as tar:
             members = _checked_members(path, tar)
             contents = {member.name: _read_member(tar, member) for member in members}
     except tarfile.TarError as exc:

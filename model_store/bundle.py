@@ -35,7 +35,7 @@ from model_store.errors import BundleFormatError, GoldenMismatchError, InputErro
 from model_store.manifest import MANIFEST_FILE, Manifest, parse_manifest, parse_manifest_bytes
 from model_store.scoring import Scorer, Scores
 
-__all__ = ["GOLDEN_TOLERANCE", "Bundle", "load_bundle", "write_bundle"]
+__all__ = ["GOLDEN_TOLERANCE", "Bundle", "load_bundle", "load_bundle_bytes", "write_bundle"]
 
 # |ours - reference| <= GOLDEN_TOLERANCE * max(1, |reference|): relative for large
 # values, absolute near zero where a decision is a difference of O(1) kernel sums.
@@ -126,8 +126,17 @@ def load_bundle(path: str | os.PathLike) -> Bundle:
     path = Path(path)
     if not path.exists():
         raise NotFoundError(f"{path}: no such bundle; pass a bundle directory or its .tar file")
+    return _load(path, read_archive(path) if is_archive(path) else None)
+
+
+def load_bundle_bytes(data: bytes, source: str) -> Bundle:
+    """A bundle from its single-file form held in memory (what a Dask worker receives), checked
+    exactly as ``load_bundle`` checks a file; ``source`` names it in messages."""
+    return _load(Path(source), read_archive(Path(source), data=data))
+
+
+def _load(path: Path, contents: dict[str, bytes] | None) -> Bundle:
     source = str(path / MANIFEST_FILE)
-    contents = read_archive(path) if is_archive(path) else None
     manifest_bytes = contents[MANIFEST_FILE] if contents is not None else _read(path / MANIFEST_FILE, path)
     document, manifest = parse_manifest_bytes(manifest_bytes, source=source)
     expected_files = sorted(_ARRAYS + (_DOMAIN_ARRAYS if manifest.domain is not None else ()))

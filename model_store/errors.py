@@ -6,7 +6,8 @@ place in ``service/problems.py``.
 
     RbfgateError                      base; never raised directly
     ├── InputError              (2)   the caller gave something unusable
-    │   ├── CsvError            (2)   a CSV file, naming file, row and column
+    │   ├── TableError          (2)   an input table (CSV file, Parquet part), naming file, row and column
+    │   │   └── CsvError        (2)   a CSV file
     │   ├── ModelFileError      (2)   a model file rbfgate cannot export
     │   ├── InvalidNameError    (2)   a model name or version unsafe for a path
     │   ├── UnsafeArchiveError  (2)   a bundle archive with a dangerous entry
@@ -43,6 +44,7 @@ __all__ = [
     "RbfgateError",
     "SignatureError",
     "StoreError",
+    "TableError",
     "UnsafeArchiveError",
     "VersionConflictError",
 ]
@@ -58,8 +60,8 @@ class InputError(RbfgateError):
     """The caller supplied input that cannot be used as given."""
 
 
-class CsvError(InputError):
-    """A CSV file is malformed; the message names file, row and column."""
+class TableError(InputError):
+    """An input table (a CSV file, a Parquet part) is unusable; the message names file, row and column."""
 
     def __init__(self, path: str, message: str, *, row: int | None = None, column: str | None = None):
         where = str(path)
@@ -71,6 +73,20 @@ class CsvError(InputError):
         self.path = str(path)
         self.row = row
         self.column = column
+        self._message = message
+
+    def __reduce__(self):
+        # Pickled when a Dask worker reports the error back to the client; the default
+        # (class, args) form would call __init__ with the formatted text alone.
+        return (_rebuild_table_error, (type(self), self.path, self._message, self.row, self.column))
+
+
+class CsvError(TableError):
+    """A CSV file is malformed; the message names file, row and column."""
+
+
+def _rebuild_table_error(kind: type, path: str, message: str, row: int | None, column: str | None) -> TableError:
+    return kind(path, message, row=row, column=column)
 
 
 class ModelFileError(InputError):

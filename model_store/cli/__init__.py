@@ -22,14 +22,14 @@ import traceback
 from collections.abc import Mapping
 from importlib.metadata import entry_points
 
-from model_store.cli import bundle_commands, card_command, demo_command, store_commands
+from model_store.cli import bundle_commands, card_command, demo_command, score_command, store_commands
 from model_store.errors import RbfgateError
 
 __all__ = ["DEBUG_ENVIRON", "build_parser", "main"]
 
 DEBUG_ENVIRON = "RBFGATE_DEBUG"  # "1": an unexpected error also prints its traceback
 
-_LOCAL_MODULES = (demo_command, bundle_commands, card_command, store_commands)
+_LOCAL_MODULES = (demo_command, bundle_commands, score_command, card_command, store_commands)
 
 
 def build_parser() -> argparse.ArgumentParser:

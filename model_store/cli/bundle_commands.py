@@ -1,7 +1,7 @@
-"""Bundle commands: train, export, score, inspect, verify, pack.
+"""Bundle commands: train, export, inspect, verify, pack (score lives in ``score_command``).
 
 scikit-learn and joblib are imported inside the export and train handlers
-only, so scoring and inspecting never load them.
+only, so inspecting never loads them.
 """
 
 from __future__ import annotations
@@ -29,7 +29,6 @@ def register(subparsers) -> None:
     """Add the bundle commands to the ``rbfgate`` parser."""
     _add_export(subparsers)
     _add_train(subparsers)
-    _add_score(subparsers)
     inspect = subparsers.add_parser("inspect", help="show a bundle's identity, features, kernel width and metrics")
     inspect.add_argument("bundle", type=Path, help="bundle directory or .tar file")
     shown = inspect.add_mutually_exclusive_group()
@@ -83,17 +82,6 @@ def _add_train(subparsers) -> None:
     parser.set_defaults(handler=_train)
 
 
-def _add_score(subparsers) -> None:
-    parser = subparsers.add_parser("score", help="score a CSV file; refuse rows the model cannot answer for")
-    parser.add_argument("bundle", type=Path, help="bundle directory or .tar file")
-    parser.add_argument("input", type=Path, metavar="INPUT.csv")
-    parser.add_argument("--out", type=Path, required=True, metavar="OUT.csv")
-    parser.add_argument("--flag-outside", action="store_true",
-                        help="answer rows whose domain verdict is outside (flagged in domain_verdict) instead of "
-                        "refusing them as outside_domain")
-    parser.set_defaults(handler=_score)
-
-
 def _identity_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--name", required=True, help="model name (letters, digits, . _ -)")
     parser.add_argument("--version", required=True, help="model version (letters, digits, . _ -)")
@@ -137,15 +125,6 @@ def _train(args) -> int:
     if metrics:
         print(f"holdout: accuracy {metrics['accuracy']:.3f}, balanced accuracy {metrics['balanced_accuracy']:.3f}, "
               f"macro F1 {metrics['macro_f1']:.3f} on {metrics['rows']} rows")
-    return 0
-
-
-def _score(args) -> int:
-    from model_store.batch_scoring import score_csv
-
-    bundle = load_bundle(args.bundle)
-    summary = score_csv(bundle, args.input, args.out, outside_action="flag" if args.flag_outside else "refuse")
-    print(f"{summary.scored} scored, {summary.refused} refused", file=sys.stderr)
     return 0
 
 

@@ -32,7 +32,7 @@ def register(subparsers) -> None:
 
 
 def _demo(args) -> int:
-    from model_store.batch_scoring import score_csv
+    from model_store.batch_scoring import score_file
     from model_store.cli.bundle_commands import read_feature_info
     from model_store.demo import TARGET, write_demo_files
     from model_store.store import Store
@@ -54,7 +54,7 @@ def _demo(args) -> int:
     print(f"trained and exported {bundle.source}: holdout balanced accuracy {metrics['balanced_accuracy']:.3f}, "
           f"digest {bundle.digest[:16]}...")
     scored = out / "incoming_scored.csv"
-    summary = score_csv(bundle, files["incoming"], scored, progress=False)
+    summary = score_file(bundle, files["incoming"], scored, keep=["pallet_id"], progress=False)
     print(f"scored {files['incoming']} -> {scored}: {summary.scored} scored, {summary.refused} refused")
     verdict = _domain_verdict_of_last_row(scored)
     print(f"  pallet P-0016 has every reading in range but its surface is colder than its core (probes swapped?): "

@@ -31,7 +31,7 @@ from model_store.store.state import stack_before
 from model_store.store.timeline import parse_moment
 from model_store.tables import CsvFile
 
-__all__ = ["default_actor", "read_preview_inputs", "register"]
+__all__ = ["count_argument", "default_actor", "read_preview_inputs", "register"]
 
 
 def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
@@ -86,7 +86,7 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
                         "per feature of the active version (other columns, such as an id, are ignored)")
     parser = add("prune", _prune, "remove old versions, never the active one or the rollback target", actor=True)
     parser.add_argument("name", metavar="NAME")
-    parser.add_argument("--keep", metavar="N", type=_count, required=True, help="how many newest versions to keep")
+    parser.add_argument("--keep", metavar="N", type=count_argument, required=True, help="how many newest versions to keep")
     parser = add("keygen", _keygen, "create an Ed25519 key pair PREFIX.key (secret) and PREFIX.pub", store=False)
     parser.add_argument("--out", metavar="PREFIX", required=True, help="path prefix of the two key files")
     parser = add("sign", _sign, "verify a bundle and sign its digest (signature.json beside the manifest)", store=False)
@@ -182,7 +182,8 @@ def _inputs(store: Store, name: str, path: str | None) -> tuple[list[dict[str, s
     return read_preview_inputs(Path(path), features, model)
 
 
-def _count(text: str) -> int:
+def count_argument(text: str) -> int:
+    """argparse type: a whole number, 0 or more."""
     try:
         value = int(text)
     except ValueError:

@@ -31,6 +31,7 @@ def test_demo_trains_scores_publishes_and_activates(tmp_path, capsys):
     with open(out / "incoming_scored.csv", newline="") as handle:
         rows = list(csv.DictReader(handle))
     assert [row["status"] for row in rows].count("refused") == 4  # the four planted bad pallets
+    assert list(rows[0])[0] == "pallet_id" and rows[0]["pallet_id"]  # the ids travel with the results
     assert rows[-2]["problems"].startswith("core_temp_c=19.0 outside")
     # Every reading of the last one is in range, but its surface is 5 degC colder than its core.
     assert rows[-1]["domain_verdict"] == "outside" and "outside the model's domain" in rows[-1]["problems"]

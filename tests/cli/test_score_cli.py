@@ -15,7 +15,7 @@ import sys
 import numpy as np
 import pytest
 
-import model_store.batch_scoring
+import model_store.csv_source
 from model_store.cli import main
 
 FEATURES = ["sepal_length_cm", "sepal_width_cm", "petal_length_cm", "petal_width_cm"]
@@ -90,7 +90,7 @@ def test_score_results_do_not_depend_on_the_chunk_size(tmp_path, iris_calibrated
     bundle, _, X = iris_calibrated
     source = _write(tmp_path / "in.csv", FEATURES, X.tolist())
     assert main(["score", bundle.source, str(source), "--out", str(tmp_path / "whole.csv")]) == 0
-    monkeypatch.setattr(model_store.batch_scoring, "CHUNK_ROWS", 7)
+    monkeypatch.setattr(model_store.csv_source, "BLOCK_BYTES", 128)  # blocks of about 7 rows
     assert main(["score", bundle.source, str(source), "--out", str(tmp_path / "chunked.csv")]) == 0
     whole, chunked = _read(tmp_path / "whole.csv"), _read(tmp_path / "chunked.csv")
     exact = ["row", "status", "label", "nearest_distance", "nearest_label", "nearest_percentile", "problems"]
@@ -112,7 +112,7 @@ def test_score_refuses_a_file_without_a_feature_column_and_writes_nothing(tmp_pa
 
 def test_score_leaves_an_existing_output_untouched_when_it_fails(tmp_path, iris_calibrated, monkeypatch):
     bundle, _, X = iris_calibrated
-    monkeypatch.setattr(model_store.batch_scoring, "CHUNK_ROWS", 7)  # rows are written before the bad byte
+    monkeypatch.setattr(model_store.csv_source, "BLOCK_BYTES", 128)  # rows are written before the bad byte
     out = tmp_path / "out.csv"
     out.write_text("previous results\n")
     source = tmp_path / "in.csv"
