@@ -6,23 +6,33 @@ bytes. Reading never extracts anything to disk by itself: it returns the
 member bytes after refusing absolute paths, ``..``, links, devices,
 directories, duplicate names, oversized members and any file the manifest
 does not list.
+
+Reading costs at most the archive's own size in memory, decided from the
+headers before any member is read: sparse members (GNU sparse, in any of its
+PAX forms) are refused, because their header may promise gigabytes of holes
+that a 40 KB file does not hold, and every member's data must lie inside the
+file.
 """
 
 from __future__ import annotations
 
 import io
-import json
 import os
 import tarfile
 from pathlib import Path, PurePosixPath
 
 from model_store.errors import BundleFormatError, UnsafeArchiveError
-from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE
+from model_store.manifest import MANIFEST_FILE, MAX_MANIFEST_BYTES, MAX_MANIFEST_DEPTH, SIGNATURE_FILE
+from model_store.strict_json import loads_strict
 
 __all__ = ["MAX_MEMBER_BYTES", "is_archive", "pack_directory", "pack_members", "read_archive"]
 
 MAX_MEMBER_BYTES = 2 * 1024**3  # per entry and in total: the archive is read into memory
 _MAX_MEMBERS = 64
+# PAX keywords of the GNU sparse formats 0.0, 0.1 and 1.0 (GNU tar manual, "Storing Sparse Files").
+_SPARSE_KEYS = frozenset({"GNU.sparse.size", "GNU.sparse.map", "GNU.sparse.numblocks", "GNU.sparse.offset",
+                          "GNU.sparse.numbytes", "GNU.sparse.realsize", "GNU.sparse.major", "GNU.sparse.minor",
+                          "GNU.sparse.name"})
 
 
 def is_archive(path: Path) -> bool:
@@ -34,7 +44,7 @@ def pack_directory(bundle_dir: Path, out: Path | io.BufferedIOBase) -> None:
     """Write the bundle in ``bundle_dir`` as a deterministic tar to a path or binary stream."""
     bundle_dir = Path(bundle_dir)
     try:
-        manifest = json.loads((bundle_dir / MANIFEST_FILE).read_text(encoding="utf-8"))
+        manifest = loads_strict((bundle_dir / MANIFEST_FILE).read_text(encoding="utf-8"), max_depth=MAX_MANIFEST_DEPTH)
         names = [MANIFEST_FILE, *sorted(manifest.get("files", {}))]
     except (OSError, ValueError, AttributeError) as exc:
         raise BundleFormatError(f"{bundle_dir}: no readable {MANIFEST_FILE} to pack: {exc}") from exc
@@ -89,17 +99,22 @@ def read_archive(path: Path, data: bytes | None = None) -> dict[str, bytes]:
     ``data``, when given, is the archive's bytes (held in memory); ``path`` then only names it in messages.
     """
     try:
-        with (tarfile.open(fileobj=io.BytesIO(data), mode="r:") if data is not None
-              else tarfile.open(path, mode="r:")) as tar:
-            members = _checked_members(path, tar)
+        handle = io.BytesIO(data) if data is not None else open(path, "rb")
+        size = len(data) if data is not None else os.fstat(handle.fileno()).st_size
+        with handle, tarfile.open(fileobj=handle, mode="r:") as tar:
+            members = _checked_members(path, tar, size)
             contents = {member.name: _read_member(tar, member) for member in members}
-    except tarfile.TarError as exc:
-        raise BundleFormatError(f"{path}: not a bundle archive (uncompressed tar expected): {exc}") from exc
+    except (tarfile.TarError, ValueError, OverflowError) as exc:
+        # tarfile parses pax and GNU sparse headers itself; a forged one fails there with ValueError.
+        raise BundleFormatError(f"{path}: not a bundle archive (uncompressed tar expected): {str(exc)[:200]}") from exc
+    except OSError as exc:
+        raise BundleFormatError(f"{path}: cannot read the archive: {exc.strerror or exc}") from exc
     if MANIFEST_FILE not in contents:
         raise BundleFormatError(f"{path}: archive has no {MANIFEST_FILE}; it is not a bundle")
     try:
-        listed = set(json.loads(contents[MANIFEST_FILE]).get("files", {}))
-    except (ValueError, AttributeError) as exc:
+        document = loads_strict(contents[MANIFEST_FILE].decode("utf-8"), max_depth=MAX_MANIFEST_DEPTH)
+        listed = set(document.get("files", {}))
+    except (ValueError, AttributeError, TypeError) as exc:  # StrictJsonError and UnicodeDecodeError are ValueErrors
         raise BundleFormatError(f"{path}: {MANIFEST_FILE} is not a JSON object: {exc}") from exc
     allowed = listed | {MANIFEST_FILE, SIGNATURE_FILE}
     unexpected = sorted(set(contents) - allowed)
@@ -111,7 +126,7 @@ def read_archive(path: Path, data: bytes | None = None) -> dict[str, bytes]:
     return contents
 
 
-def _checked_members(path: Path, tar: tarfile.TarFile) -> list[tarfile.TarInfo]:
+def _checked_members(path: Path, tar: tarfile.TarFile, archive_bytes: int) -> list[tarfile.TarInfo]:
     members = []
     seen: set[str] = set()
     total = 0
@@ -134,8 +149,21 @@ def _checked_members(path: Path, tar: tarfile.TarFile) -> list[tarfile.TarInfo]:
             raise UnsafeArchiveError(f"{path}: entry {name!r} is inside a folder; bundle files sit at the top")
         if name in seen:
             raise UnsafeArchiveError(f"{path}: entry {name!r} appears twice; refusing an ambiguous archive")
+        if member.sparse is not None or member.type == tarfile.GNUTYPE_SPARSE or _SPARSE_KEYS & set(member.pax_headers):
+            raise UnsafeArchiveError(
+                f"{path}: entry {name!r} is a sparse file; bundle archives hold plain files only (pack with 'rbfgate pack')"
+            )
         if member.size > MAX_MEMBER_BYTES:
             raise UnsafeArchiveError(f"{path}: entry {name!r} is {member.size} bytes, over the {MAX_MEMBER_BYTES} limit")
+        if member.offset_data + member.size > archive_bytes:
+            raise UnsafeArchiveError(
+                f"{path}: entry {name!r} claims {member.size} bytes, but the archive ends {archive_bytes - member.offset_data} "
+                "bytes after its header; the archive is truncated or forged"
+            )
+        if name == MANIFEST_FILE and member.size > MAX_MANIFEST_BYTES:
+            raise UnsafeArchiveError(
+                f"{path}: {MANIFEST_FILE} is {member.size} bytes, over the {MAX_MANIFEST_BYTES}-byte manifest limit"
+            )
         total += member.size
         if total > MAX_MEMBER_BYTES:
             raise UnsafeArchiveError(f"{path}: entries add up to more than {MAX_MEMBER_BYTES} bytes; refusing to read")

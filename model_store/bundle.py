@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import io
 import json
+import math
 import os
 import shutil
 import tempfile
@@ -32,7 +33,14 @@ from model_store.columns import feature_matrix
 from model_store.domain import DomainModel
 from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import BundleFormatError, GoldenMismatchError, InputError, IntegrityError, NotFoundError
-from model_store.manifest import MANIFEST_FILE, Manifest, parse_manifest, parse_manifest_bytes
+from model_store.manifest import (
+    MANIFEST_FILE,
+    MAX_MANIFEST_BYTES,
+    Manifest,
+    parse_manifest,
+    parse_manifest_bytes,
+    read_bounded,
+)
 from model_store.scoring import Scorer, Scores
 
 __all__ = ["GOLDEN_TOLERANCE", "Bundle", "load_bundle", "load_bundle_bytes", "write_bundle"]
@@ -53,8 +61,10 @@ class Bundle:
         self.document = document
         self.manifest = manifest
         self.source = source
-        self.digest = sha256_bytes(canonical_json(document))
+        canonical = canonical_json(document)
+        self.digest = sha256_bytes(canonical)
         self._scorer = _build_scorer(manifest, arrays, source)
+        self._resident_bytes = self._scorer.resident_bytes + 4 * len(canonical)
 
     @property
     def name(self) -> str:
@@ -82,6 +92,12 @@ class Bundle:
     @property
     def scorer(self) -> Scorer:
         return self._scorer
+
+    @property
+    def resident_bytes(self) -> int:
+        """Memory held by this loaded bundle, in bytes: its scorer's arrays (which dominate) plus
+        the manifest's canonical size (its parsed form costs a few times that in Python objects)."""
+        return self._resident_bytes
 
     def score(self, X) -> Scores:
         """Score ``X``: n rows of f finite values in raw units.
@@ -137,7 +153,10 @@ def load_bundle_bytes(data: bytes, source: str) -> Bundle:
 
 def _load(path: Path, contents: dict[str, bytes] | None) -> Bundle:
     source = str(path / MANIFEST_FILE)
-    manifest_bytes = contents[MANIFEST_FILE] if contents is not None else _read(path / MANIFEST_FILE, path)
+    if contents is not None:
+        manifest_bytes = contents[MANIFEST_FILE]
+    else:
+        manifest_bytes = _read(path / MANIFEST_FILE, path, MAX_MANIFEST_BYTES, "a manifest may hold at most")
     document, manifest = parse_manifest_bytes(manifest_bytes, source=source)
     expected_files = sorted(_ARRAYS + (_DOMAIN_ARRAYS if manifest.domain is not None else ()))
     if sorted(manifest.files) != expected_files:
@@ -145,7 +164,11 @@ def _load(path: Path, contents: dict[str, bytes] | None) -> Bundle:
     if contents is not None:
         files = {name: contents.get(name) for name in manifest.files}
     else:
-        files = {name: _read(path / name, path) for name in manifest.files}
+        # The manifest says how large each array is; a larger file is refused before it is read.
+        files = {
+            name: _read(path / name, path, entry.bytes, "the manifest says")
+            for name, entry in manifest.files.items()
+        }
     arrays = {}
     for name, entry in manifest.files.items():
         data = files[name]
@@ -195,9 +218,9 @@ def write_bundle(out_dir: Path, document: dict[str, Any], arrays: dict[str, np.n
     return out_dir
 
 
-def _read(file: Path, bundle: Path) -> bytes | None:
+def _read(file: Path, bundle: Path, limit: int, what: str) -> bytes | None:
     try:
-        return file.read_bytes()
+        return read_bounded(file, limit, what=what)
     except FileNotFoundError:
         if file.name == MANIFEST_FILE:
             raise BundleFormatError(f"{bundle}: no {MANIFEST_FILE}; this is not a bundle directory") from None
@@ -221,16 +244,22 @@ def _parse_array(data: bytes, name: str, entry, path: Path) -> np.ndarray:
         if read_header is None:
             raise ValueError("unsupported .npy format version")
         shape, fortran_order, dtype = read_header(stream, max_header_size=10_000)
-    except (ValueError, EOFError, OSError) as exc:
-        raise BundleFormatError(f"{path}/{name}: not a plain numeric .npy array: {exc}") from exc
+    # numpy evaluates the header text as a Python literal: a deeply nested one ends in RecursionError
+    # or MemoryError inside the parser; either way it is a damaged header, not our failure.
+    except (ValueError, EOFError, OSError, SyntaxError, TypeError, RecursionError, MemoryError) as exc:
+        raise BundleFormatError(f"{path}/{name}: not a plain numeric .npy array: {str(exc)[:200]}") from exc
     if dtype != np.dtype("<f8") or fortran_order or list(shape) != entry.shape:
         raise BundleFormatError(
             f"{path}/{name}: expected little-endian float64 of shape {entry.shape} in C order, "
             f"got {dtype} of shape {list(shape)}{' in Fortran order' if fortran_order else ''}"
         )
     offset = stream.tell()
-    if len(data) - offset != 8 * int(np.prod(shape, dtype=np.int64)):
-        raise BundleFormatError(f"{path}/{name}: holds {len(data) - offset} data bytes, its header promises {shape}")
+    # Python integers: a product of dimensions cannot wrap around as an int64 product would.
+    promised = 8 * math.prod(shape)
+    if len(data) - offset != promised:
+        raise BundleFormatError(
+            f"{path}/{name}: holds {len(data) - offset} data bytes, its header promises {promised} (shape {shape})"
+        )
     array = np.frombuffer(data, dtype="<f8", offset=offset).reshape(shape)
     if not np.isfinite(array).all():
         raise BundleFormatError(f"{path}/{name}: holds NaN or infinite values")

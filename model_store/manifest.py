@@ -10,17 +10,23 @@ from __future__ import annotations
 
 import json
 import math
+import os
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, StrictInt, StrictStr, ValidationError, model_validator
 
 from model_store.errors import BundleFormatError
 from model_store.naming import check_name
+from model_store.strict_json import StrictJsonError, loads_strict
 
 __all__ = [
     "FORMAT",
     "FORMATS",
+    "MAX_ARRAY_BYTES",
+    "MAX_GOLDEN_ROWS",
+    "MAX_MANIFEST_BYTES",
+    "MAX_MANIFEST_DEPTH",
     "Calibration",
     "ClassifierSpec",
     "DomainSpec",
@@ -35,6 +41,7 @@ __all__ = [
     "ScalerSpec",
     "parse_manifest",
     "parse_manifest_bytes",
+    "read_bounded",
     "read_manifest",
 ]
 
@@ -44,6 +51,15 @@ FORMAT = "rbfgate-bundle/2"
 FORMATS = ("rbfgate-bundle/1", "rbfgate-bundle/2")
 MANIFEST_FILE = "manifest.json"
 SIGNATURE_FILE = "signature.json"
+
+# What one bundle read may cost, decided before anything is allocated. The exporter writes
+# manifests of a few hundred KiB (isotonic maps hold at most one threshold per reference row),
+# nesting 5 levels deep, 40 golden rows, and arrays of support vectors x features x 8 bytes
+# (100,000 x 50 is 40 MB); the limits leave room for that and refuse what only an attack needs.
+MAX_MANIFEST_BYTES = 64 * 1024 * 1024
+MAX_MANIFEST_DEPTH = 64
+MAX_GOLDEN_ROWS = 10_000
+MAX_ARRAY_BYTES = 2 * 1024**3
 
 Label = StrictInt | StrictStr
 # RFC 3339 date-time in UTC, as the exporter writes it (seconds, optional fraction, Z).
@@ -228,16 +244,18 @@ class RefusalReport(_Strict):
 
 
 class FileEntry(_Strict):
+    """One array: its checksum, its size in bytes (``.npy`` header included), dtype and 1-D or 2-D shape."""
+
     sha256: str = Field(pattern=r"^[0-9a-f]{64}$")
-    bytes: int = Field(ge=0)
+    bytes: int = Field(ge=0, le=MAX_ARRAY_BYTES)
     dtype: str
-    shape: list[int]
+    shape: list[Annotated[int, Field(ge=0, le=MAX_ARRAY_BYTES // 8)]] = Field(min_length=1, max_length=2)
 
 
 class GoldenVectors(_Strict):
     """Probe rows (raw units) and what scikit-learn answered for them at export."""
 
-    inputs: list[list[float]]
+    inputs: list[list[float]] = Field(max_length=MAX_GOLDEN_ROWS)
     labels: list[Label]
     decisions: list[float] | list[list[float]]
     pairwise_decisions: list[list[float]] | None = None
@@ -356,10 +374,23 @@ def parse_manifest(document: Any, *, source: str = MANIFEST_FILE) -> Manifest:
 
 
 def parse_manifest_bytes(data: bytes, *, source: str = MANIFEST_FILE) -> tuple[dict[str, Any], Manifest]:
-    """Parse manifest bytes once: the raw document (for the digest) and the validated model."""
+    """Parse manifest bytes once: the raw document (for the digest) and the validated model.
+
+    Strict JSON (``model_store.strict_json``): a duplicate member name at any depth, NaN,
+    an overflowing number, an unpaired surrogate or nesting past ``MAX_MANIFEST_DEPTH`` is refused,
+    so two readers can never see two different manifests under one digest.
+    """
+    if len(data) > MAX_MANIFEST_BYTES:
+        raise BundleFormatError(
+            f"{source}: {len(data)} bytes, over the {MAX_MANIFEST_BYTES}-byte manifest limit; this is not a bundle manifest"
+        )
     try:
-        document = json.loads(data.decode("utf-8"), parse_constant=_refuse_constant, parse_float=_finite_float)
-    except (UnicodeDecodeError, ValueError) as exc:
+        document = loads_strict(data.decode("utf-8"), max_depth=MAX_MANIFEST_DEPTH)
+    except UnicodeDecodeError as exc:
+        raise BundleFormatError(f"{source}: not UTF-8 (byte {exc.start}); a manifest is UTF-8 JSON") from exc
+    except StrictJsonError as exc:
+        raise BundleFormatError(f"{source}: {exc}; re-export the bundle") from exc
+    except ValueError as exc:  # an integer literal past Python's digit limit
         raise BundleFormatError(f"{source}: not valid JSON: {exc}") from exc
     if not isinstance(document, dict):
         raise BundleFormatError(f"{source}: expected a JSON object at the top level")
@@ -369,7 +400,7 @@ def parse_manifest_bytes(data: bytes, *, source: str = MANIFEST_FILE) -> tuple[d
 def read_manifest(path: Path) -> tuple[dict[str, Any], Manifest]:
     """Read and validate ``path``; return the raw document (for the digest) and the model."""
     try:
-        data = Path(path).read_bytes()
+        data = read_bounded(Path(path), MAX_MANIFEST_BYTES, what="a manifest may hold at most")
     except FileNotFoundError as exc:
         raise BundleFormatError(f"{path}: no manifest; a bundle directory holds {MANIFEST_FILE}") from exc
     except OSError as exc:
@@ -377,13 +408,18 @@ def read_manifest(path: Path) -> tuple[dict[str, Any], Manifest]:
     return parse_manifest_bytes(data, source=str(path))
 
 
-def _refuse_constant(name: str) -> float:
-    raise ValueError(f"{name} is not allowed in a manifest")
+def read_bounded(path: Path, limit: int, *, what: str) -> bytes:
+    """The bytes of ``path``, refused before reading when the open file is larger than ``limit``.
 
-
-def _finite_float(text: str) -> float:
-    # json turns an overflowing literal such as 1e999 into inf, which parse_constant never sees.
-    value = float(text)
-    if not math.isfinite(value):
-        raise ValueError(f"{text} is not a finite number")
-    return value
+    ``what`` completes the message "<path>: <size> bytes, <what> <limit>", e.g. "the manifest says".
+    The size comes from ``fstat`` of the open handle, so the file that is measured is the one read.
+    Raises ``BundleFormatError`` for a file that is too large, ``OSError`` as the caller handles it.
+    """
+    with open(path, "rb") as handle:
+        size = os.fstat(handle.fileno()).st_size
+        data = handle.read(limit + 1) if size <= limit else b""
+    if size > limit or len(data) > limit:  # the second: the file grew while it was read
+        raise BundleFormatError(
+            f"{path}: {max(size, len(data))} bytes, {what} {limit}; the bundle is damaged or forged, re-export it"
+        )
+    return data

@@ -150,6 +150,13 @@ class Scorer:
     def support_vectors(self) -> np.ndarray:
         return self.kernel.support_vectors
 
+    @property
+    def resident_bytes(self) -> int:
+        """Bytes of the arrays this scorer holds, its kernel expansions and domain model included
+        (about 2 x support vectors x features x 8 bytes): what keeping it loaded costs, used to
+        bound caches of loaded versions."""
+        return _array_bytes(self)
+
     def score(self, raw: np.ndarray) -> Scores:
         """Score ``raw`` (n, f) float64, finite, in manifest feature order and raw units."""
         if raw.shape[0] == 1:
@@ -273,3 +280,14 @@ def _ovr_decision(pairwise: np.ndarray, pairs, n_classes: int) -> np.ndarray:
         votes[wins_i, i] += 1
         votes[~wins_i, j] += 1
     return votes + confidence / (3 * (np.abs(confidence) + 1))
+
+
+def _array_bytes(holder: object, depth: int = 0) -> int:
+    """nbytes of the arrays among ``holder``'s attributes and, two levels down, its parts' attributes."""
+    total = 0
+    for value in vars(holder).values():
+        if isinstance(value, np.ndarray):
+            total += value.nbytes
+        elif depth < 2 and hasattr(value, "__dict__") and not isinstance(value, type):
+            total += _array_bytes(value, depth + 1)
+    return total

@@ -21,6 +21,7 @@ from starlette.concurrency import run_in_threadpool
 
 from model_store.store import Store
 from service.access_log import AccessLogMiddleware, JsonLines
+from service.admission import ScoringGate
 from service.auth import ACCESS_RULES, Authenticator, access_check
 from service.context import Services
 from service.health_routes import add_health_routes
@@ -58,7 +59,9 @@ def create_app(
     metrics = ServiceMetrics(environ.get(_MULTIPROCESS_ENVIRON_KEY) or None)
     store = store if store is not None else Store(settings.store_root)
     authenticator = Authenticator(settings.tokens_file)
-    registry = ModelRegistry(store, metrics, on_event=write_log, poll_deadline=poll_deadline(settings.poll_seconds))
+    registry = ModelRegistry(store, metrics, on_event=write_log, poll_deadline=poll_deadline(settings.poll_seconds),
+                             pinned_cache_bytes=settings.pinned_cache_bytes)
+    gate = ScoringGate(settings.scoring_threads, settings.scoring_queue)
     services = Services(
         settings=settings,
         store=store,
@@ -67,6 +70,7 @@ def create_app(
         metrics=metrics,
         recent=RecentRecords(settings.sample_size),
         write_log=write_log,
+        gate=gate,
     )
     # Two threads: a store read that hangs (a stuck network filesystem) must never keep a revoked token working.
     pollers = [Poller(settings.poll_seconds, [registry.refresh_all], name="rbfgate-store-poll"),
@@ -82,6 +86,7 @@ def create_app(
         finally:
             for poller in pollers:
                 poller.stop()
+            gate.close()
             metrics.worker_exited()
 
     app = FastAPI(

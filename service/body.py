@@ -7,18 +7,18 @@ is read only until it passes the limit. Either way the answer is 413.
 The JSON parser accepts RFC 8259 JSON only (UTF-8, section 8.1): the
 ``NaN``/``Infinity`` literals Python would otherwise accept, numbers that do
 not fit a 64-bit float, duplicate member names (section 4 leaves their
-meaning open, so we refuse the ambiguity) and nesting deeper than
-``MAX_DEPTH`` are all refused with 400.
+meaning open, so we refuse the ambiguity), unpaired surrogate escapes such as
+``"\\ud800"`` (RFC 7493 section 2.1; they cannot be echoed as UTF-8) and nesting
+deeper than ``MAX_DEPTH`` are all refused with 400 (``model_store.strict_json``).
 """
 
 from __future__ import annotations
 
-import json
-import math
 from typing import Any
 
 from starlette.requests import ClientDisconnect, Request
 
+from model_store.strict_json import StrictJsonError, loads_strict
 from service.problems import ServiceProblem
 
 __all__ = ["MAX_DEPTH", "parse_json", "read_body"]
@@ -27,15 +27,6 @@ __all__ = ["MAX_DEPTH", "parse_json", "read_body"]
 # valid request needs; nested feature values are refused per record. Anything
 # far deeper is an attack on the parser, not a request.
 MAX_DEPTH = 32
-
-# 10**309 already overflows a float64 (max about 1.8e308, IEEE 754 binary64).
-_MAX_INTEGER_DIGITS = 309
-_INFINITIES = frozenset({math.inf, -math.inf})
-_OVERFLOW = "a number in the body does not fit a 64-bit float (largest about 1.8e308); send a finite number"
-
-
-class _Malformed(ValueError):
-    """Raised inside the parser hooks; becomes a 400."""
 
 
 async def read_body(request: Request, limit: int) -> bytes:
@@ -69,7 +60,7 @@ async def read_body(request: Request, limit: int) -> bytes:
 
 
 def parse_json(data: bytes) -> Any:
-    """Parse ``data`` as strict UTF-8 JSON; raise a 400 problem naming what is wrong."""
+    """Parse ``data`` as strict UTF-8 JSON (``model_store.strict_json``); raise a 400 problem naming what is wrong."""
     if not data.strip():
         raise _malformed("the request body is empty; send a JSON object")
     try:
@@ -77,69 +68,9 @@ def parse_json(data: bytes) -> Any:
     except UnicodeDecodeError as exc:
         raise _malformed(f"the body is not UTF-8 (byte {exc.start}); JSON must be sent as UTF-8") from None
     try:
-        document = json.loads(
-            text,
-            parse_constant=_refuse_constant,
-            parse_int=_checked_int,
-            object_pairs_hook=_unique_members,
-        )
-    except json.JSONDecodeError as exc:
-        raise _malformed(f"not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}") from None
-    except _Malformed as exc:
+        return loads_strict(text, max_depth=MAX_DEPTH)
+    except StrictJsonError as exc:
         raise _malformed(str(exc)) from None
-    except RecursionError:
-        raise _malformed(f"the JSON is nested too deeply; at most {MAX_DEPTH} levels are accepted") from None
-    _check_structure(document)
-    return document
-
-
-def _refuse_constant(name: str) -> float:
-    raise _Malformed(f"{name} is not JSON (RFC 8259 has no NaN or Infinity); send a finite number")
-
-
-def _checked_int(text: str) -> int:
-    digits = text.lstrip("-")
-    if len(digits) > _MAX_INTEGER_DIGITS:
-        raise _Malformed(f"the number {text[:20]}... ({len(digits)} digits) does not fit a 64-bit float")
-    number = int(text)
-    try:
-        float(number)
-    except OverflowError:
-        raise _Malformed(f"the number {text[:40]} does not fit a 64-bit float") from None
-    return number
-
-
-def _unique_members(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
-    document = dict(pairs)
-    if len(document) != len(pairs):
-        seen: set[str] = set()
-        for key, _ in pairs:
-            if key in seen:
-                raise _Malformed(f"the member {key[:64]!r} appears twice in one object; send each name once")
-            seen.add(key)
-    return document
-
-
-def _check_structure(document: Any) -> None:
-    """Refuse nesting deeper than MAX_DEPTH and floats that overflowed to infinity.
-
-    Python's parser turns ``1e400`` into ``inf`` without complaint; one iterative walk
-    over the containers (no recursion, so a deep document cannot exhaust the stack)
-    finds both problems faster than a per-number parser hook would.
-    """
-    if isinstance(document, float) and document in _INFINITIES:
-        raise _malformed(_OVERFLOW)
-    stack = [(document, 1)] if isinstance(document, (dict, list)) else []
-    while stack:
-        value, depth = stack.pop()
-        if depth > MAX_DEPTH:
-            raise _malformed(f"the JSON is nested too deeply; at most {MAX_DEPTH} levels are accepted")
-        for child in value.values() if isinstance(value, dict) else value:
-            if isinstance(child, float):
-                if child in _INFINITIES:
-                    raise _malformed(_OVERFLOW)
-            elif isinstance(child, (dict, list)):
-                stack.append((child, depth + 1))
 
 
 def _malformed(detail: str) -> ServiceProblem:

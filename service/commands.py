@@ -13,6 +13,7 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import os
+import resource
 import shutil
 import socket
 import sys
@@ -24,10 +25,14 @@ from model_store.errors import InputError
 from service.settings import (
     DEFAULT_HOST,
     DEFAULT_MAX_BODY_BYTES,
+    DEFAULT_MAX_CONNECTIONS,
     DEFAULT_MAX_RECORDS,
+    DEFAULT_PINNED_CACHE_BYTES,
     DEFAULT_POLL_SECONDS,
     DEFAULT_PORT,
     DEFAULT_SAMPLE_SIZE,
+    DEFAULT_SCORING_QUEUE,
+    DEFAULT_SCORING_THREADS,
     Settings,
 )
 from service.tokens import ROLES, add_token, read_tokens, revoke_token
@@ -66,6 +71,17 @@ def register(subparsers) -> None:
                        help=f"recent records kept per model for the swap preview (default {DEFAULT_SAMPLE_SIZE})")
     serve.add_argument("--log-inputs", action="store_true", default=None,
                        help="write feature values into the request log")
+    serve.add_argument("--scoring-threads", type=int, metavar="N",
+                       help=f"threads per worker that score large requests (default {DEFAULT_SCORING_THREADS})")
+    serve.add_argument("--scoring-queue", type=int, metavar="N",
+                       help="large requests per worker that may wait for a scoring thread; more are answered 503 "
+                       f"with Retry-After (default {DEFAULT_SCORING_QUEUE})")
+    serve.add_argument("--pinned-cache-bytes", type=int, metavar="BYTES",
+                       help="bytes of pinned (non-active) versions each worker keeps loaded "
+                       f"(default {DEFAULT_PINNED_CACHE_BYTES})")
+    serve.add_argument("--max-connections", type=int, metavar="N",
+                       help="open connections per worker; past it the connection waiting longest for its request is "
+                       f"closed; lowered to fit the descriptor limit (default {DEFAULT_MAX_CONNECTIONS})")
     serve.add_argument("--read-timeout", type=float, default=DEFAULT_READ_TIMEOUT, metavar="SECONDS",
                        help="seconds a request may take to arrive completely, from the connection opening or the "
                        f"previous response; slower connections are closed (default {DEFAULT_READ_TIMEOUT:g})")
@@ -106,6 +122,10 @@ def serve_settings(args: argparse.Namespace, environ: Mapping[str, str]) -> Sett
         "poll_seconds": args.poll_interval,
         "sample_size": args.preview_sample,
         "log_inputs": args.log_inputs,
+        "scoring_threads": args.scoring_threads,
+        "scoring_queue": args.scoring_queue,
+        "pinned_cache_bytes": args.pinned_cache_bytes,
+        "max_connections": args.max_connections,
     }
     return dataclasses.replace(from_environment, **{key: value for key, value in given.items() if value is not None})
 
@@ -118,6 +138,9 @@ def _serve(args: argparse.Namespace, environ: MutableMapping[str, str] = os.envi
     if settings.tokens_file is not None:
         read_tokens(settings.tokens_file)  # unreadable or malformed: refuse to start
     _check_port_free(settings.host, settings.port)
+    from service.http_limits import connection_cap
+
+    connections = connection_cap(settings.max_connections, resource.getrlimit(resource.RLIMIT_NOFILE)[0])
     metrics_dir = tempfile.mkdtemp(prefix="rbfgate-metrics-") if settings.workers > 1 else None
     environ.pop(_MULTIPROCESS_ENVIRON, None)
     if metrics_dir is not None:
@@ -125,7 +148,9 @@ def _serve(args: argparse.Namespace, environ: MutableMapping[str, str] = os.envi
     environ.update(settings.to_environ())
     print(
         f"rbfgate serve: store {root}, http://{settings.host}:{settings.port}, {settings.workers} worker(s), "
-        f"tokens {'from ' + str(settings.tokens_file) if settings.tokens_file else 'off'}; "
+        f"tokens {'from ' + str(settings.tokens_file) if settings.tokens_file else 'off'}, "
+        f"at most {connections} connections and {settings.scoring_threads} + {settings.scoring_queue} "
+        "large scoring requests per worker; "
         f"pages at http://{_browsable(settings.host)}:{settings.port}/view/",
         file=sys.stderr,
         flush=True,
@@ -146,9 +171,10 @@ def _serve(args: argparse.Namespace, environ: MutableMapping[str, str] = os.envi
             log_level="info",
             # Limits (README, "faults and abuse"): a whole request within --read-timeout, idle
             # keep-alive connections closed after 5 s, request line and headers at most 16 KiB,
-            # at most 30 s for in-flight requests to finish on shutdown. No concurrency cap:
-            # uvicorn's counts open connections, so slow clients could use it to lock others out.
-            http=protocol_factory(args.read_timeout),
+            # at most `connections` open connections (the slowest shed first), at most 30 s for
+            # in-flight requests to finish on shutdown. Not uvicorn's limit_concurrency: past it
+            # uvicorn answers every new request 503, so slow clients could lock others out.
+            http=protocol_factory(args.read_timeout, connections),
             timeout_keep_alive=KEEP_ALIVE_SECONDS,
             h11_max_incomplete_event_size=MAX_HEADER_BYTES,
             timeout_graceful_shutdown=_GRACEFUL_SHUTDOWN_SECONDS,

@@ -6,6 +6,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
+from service.admission import ScoringGate
 from service.auth import Authenticator
 from service.metrics import ServiceMetrics
 from service.recent import RecentRecords
@@ -26,6 +27,7 @@ class Services:
     metrics: ServiceMetrics
     recent: RecentRecords
     write_log: Callable[[dict[str, Any]], None]
+    gate: ScoringGate
 
 
 def version_headers(model: LoadedModel) -> dict[str, str]:

@@ -24,13 +24,15 @@ __all__ = ["add_health_routes"]
 def add_health_routes(app: FastAPI, services: Services) -> None:
     """Add these routes to ``app`` (directly, so every route is a plain APIRoute with its path template)."""
 
+    # /healthz and /readyz are coroutines: they run on the event loop and never wait for a thread,
+    # so scoring (on its own threads, service.admission) or a slow metadata read cannot delay them.
     @app.get("/healthz")
-    def alive() -> dict[str, Any]:
+    async def alive() -> dict[str, Any]:
         """The process is up and answering."""
         return {"status": "alive"}
 
     @app.get("/readyz")
-    def ready() -> dict[str, Any]:
+    async def ready() -> dict[str, Any]:
         """Whether every active model is loaded and self-tested in this worker."""
         is_ready, report = services.registry.readiness()
         report["tokens"] = services.authenticator.status()

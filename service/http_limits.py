@@ -22,6 +22,16 @@ already reading), uvicorn answers 400 and closes while the app is still at
 work; the app's own answer then hits a closed connection and is logged as an
 internal error. ``GuardedH11Protocol`` tells the app its client is gone instead.
 
+Connections are capped per worker at ``max_connections``, which ``rbfgate serve`` keeps below
+the process's descriptor limit. uvicorn's own ``limit_concurrency`` does not do this: past its
+limit it still accepts every connection and answers each new *request* 503, so slow clients that
+hold the connections would turn every real request away. Here a connection accepted past the cap
+makes room instead: the connection that has waited longest for its request to arrive (the slowest
+sender, or the longest-idle keep-alive) is closed, so a client that sends its request promptly
+always gets in while slow ones are shed. Connections whose request the app is answering are never
+shed; if every connection is busy, the new one is closed at once (nothing was read, so retrying
+is safe).
+
 The h11 implementation is used whatever else is installed, so these limits
 hold on every installation.
 """
@@ -39,10 +49,12 @@ from uvicorn.protocols.http.h11_impl import H11Protocol
 from service.problems import ServiceProblem, problem_response
 
 __all__ = [
+    "DESCRIPTOR_RESERVE",
     "GuardedH11Protocol",
     "HeaderSizeLimit",
     "KEEP_ALIVE_SECONDS",
     "MAX_HEADER_BYTES",
+    "connection_cap",
     "protocol_factory",
 ]
 
@@ -52,6 +64,11 @@ KEEP_ALIVE_SECONDS = 5
 # practice for request line plus headers (nginx's default large buffers are 4 x 8 KiB).
 MAX_HEADER_BYTES = 16 * 1024
 
+# Descriptors a worker needs besides its connections: the listening socket, stdio, the store's
+# files while reading a version, prometheus-client's multiprocess files, Python's own (common
+# practice: a margin of a few dozen; a worker measured here holds about 30 with no connections).
+DESCRIPTOR_RESERVE = 64
+
 # The peer has not delivered a whole request yet: nothing (IDLE) or not all of its body.
 _WAITING_FOR_REQUEST = (h11.IDLE, h11.SEND_BODY)
 
@@ -59,14 +76,35 @@ _WAITING_FOR_REQUEST = (h11.IDLE, h11.SEND_BODY)
 class GuardedH11Protocol(H11Protocol):
     """uvicorn's h11 protocol with a per-request read deadline of ``read_timeout`` seconds."""
 
-    def __init__(self, *args, read_timeout: float, **kwargs) -> None:
+    def __init__(self, *args, read_timeout: float, max_connections: int | None = None, **kwargs) -> None:
         super().__init__(*args, **kwargs)
         self.read_timeout = read_timeout
+        self.max_connections = max_connections
         self._read_deadline: asyncio.TimerHandle | None = None
+        self._waiting_since = 0.0  # loop time when this connection began waiting for a request
 
     def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
         super().connection_made(transport)
         self._arm_read_deadline()
+        if self.max_connections is not None and len(self.connections) > self.max_connections:
+            self._make_room()
+
+    def waiting_for_request(self) -> bool:
+        """True while the peer has not delivered a whole request and the app is not answering one."""
+        if self.transport.is_closing() or self.conn.their_state not in _WAITING_FOR_REQUEST:
+            return False
+        return self.cycle is None or self.cycle.response_complete or not self.cycle.response_started
+
+    def _make_room(self) -> None:
+        """Close the connection that has waited longest for its request; this one if none is waiting."""
+        waiting = [
+            other for other in self.connections
+            if other is not self and isinstance(other, GuardedH11Protocol) and other.waiting_for_request()
+        ]
+        victim = min(waiting, key=lambda other: other._waiting_since, default=self)
+        if victim is self:
+            self.logger.info("%d connections are all busy; closing a new one", len(self.connections) - 1)
+        victim.transport.close()  # connection_lost removes it from the set and wakes a waiting app
 
     def on_response_complete(self) -> None:
         super().on_response_complete()
@@ -89,6 +127,7 @@ class GuardedH11Protocol(H11Protocol):
 
     def _arm_read_deadline(self) -> None:
         self._cancel_read_deadline()
+        self._waiting_since = self.loop.time()
         self._read_deadline = self.loop.call_later(self.read_timeout, self._on_read_deadline)
 
     def _cancel_read_deadline(self) -> None:
@@ -105,9 +144,16 @@ class GuardedH11Protocol(H11Protocol):
         self.transport.close()  # connection_lost tells a waiting app that the client is gone
 
 
-def protocol_factory(read_timeout: float) -> Callable[..., GuardedH11Protocol]:
-    """What ``uvicorn.run(http=...)`` takes: the protocol with this deadline (picklable for workers)."""
-    return functools.partial(GuardedH11Protocol, read_timeout=read_timeout)
+def protocol_factory(read_timeout: float, max_connections: int | None = None) -> Callable[..., GuardedH11Protocol]:
+    """What ``uvicorn.run(http=...)`` takes: the protocol with these limits (picklable for workers)."""
+    return functools.partial(GuardedH11Protocol, read_timeout=read_timeout, max_connections=max_connections)
+
+
+def connection_cap(requested: int, descriptor_limit: int) -> int:
+    """``requested``, lowered so that the connections leave ``DESCRIPTOR_RESERVE`` descriptors of
+    ``descriptor_limit`` (RLIMIT_NOFILE, per process) for the listening socket, the store, the logs
+    and the metrics files; at least 8."""
+    return max(8, min(requested, descriptor_limit - DESCRIPTOR_RESERVE))
 
 
 class HeaderSizeLimit:

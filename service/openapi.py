@@ -60,7 +60,7 @@ _PROBLEM_STATUSES = {
     409: "the bundle or the history failed a check",
     413: "the body or the number of records is over the limit",
     422: "the body does not have the expected shape, or every record was refused",
-    503: "the store is busy or unreadable, or the model cannot be served yet",
+    503: "the store is busy or unreadable, the model cannot be served yet, or the scoring threads and queue are full",
 }
 _BODY_STATUSES = (400, 408, 413, 422)
 

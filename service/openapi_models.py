@@ -85,8 +85,23 @@ class ScoredResult(_Doc):
 class RefusedResult(_Doc):
     id: str | int | None = _ID
     status: Literal["refused"]
-    problems: list[RecordProblem] = Field(min_length=1)
+    problem_count: int = Field(ge=1)
+    problems: list[RecordProblem] | None = Field(
+        min_length=1,
+        description="every problem of the record, or null when the answer summarises it (see refusals)",
+    )
     domain: DomainAnswer | None = Field(None, description="present when the record was refused as outside_domain")
+
+
+class RefusalGroup(_Doc):
+    """One distinct problem of an answer and the records that have it."""
+
+    feature: str | None = Field(description="null: a record-level reason (outside_domain), or unknown features past the first 32 distinct names")
+    reason: Literal[REASONS]  # type: ignore[valid-type]
+    allowed: tuple[float, float] | None
+    count: int = Field(ge=1, description="problems in this group")
+    records: list[tuple[int, int]] = Field(
+        min_length=1, description="runs [first, last] of consecutive record indices (inclusive), in request order")
 
 
 class FlatRecordProblem(RecordProblem):
@@ -95,7 +110,8 @@ class FlatRecordProblem(RecordProblem):
 
 
 class RecordsRefusedProblem(_Doc):
-    """422 when every record was refused: problem details with every result and a flat problem list."""
+    """422 when every record was refused: problem details with every result, the refusal summary and a
+    flat list of the problems given in full (service.refusal_answer bounds its size)."""
 
     model_config = ConfigDict(extra="allow")
     type: Literal["/problems/records-refused"]
@@ -105,8 +121,10 @@ class RecordsRefusedProblem(_Doc):
     model: str
     version: str
     bundle_sha256: str
+    refusals: list[RefusalGroup] = Field(min_length=1, description="each distinct problem once, with its records")
+    summarised: bool = Field(description="true when some result has problems null (past the detail budget)")
     results: list[RefusedResult]
-    problems: list[FlatRecordProblem]
+    problems: list[FlatRecordProblem] = Field(description="the problems given in full, each with its record index")
 
 
 class ScoreRequest(_Doc):
@@ -117,6 +135,10 @@ class ScoreResponse(_Doc):
     model: str
     version: str
     bundle_sha256: str
+    refusals: list[RefusalGroup] | None = Field(
+        None, description="present when a record was refused: each distinct problem once, with its records")
+    summarised: bool | None = Field(
+        None, description="present with refusals: true when some refused result has problems null")
     results: list[ScoredResult | RefusedResult]
 
 

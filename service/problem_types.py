@@ -36,8 +36,10 @@ PROBLEM_TYPES: Mapping[str, ProblemType] = {
         422, "Every record was refused",
         "None of the records in the request could be scored: each has a missing, malformed or out-of-range "
         "feature, a member the model does not know, or an invalid id (its message names the rule: at most 128 "
-        "characters, no control characters, integers within plus or minus 2^53 - 1). The body lists every "
-        "record's problems (results) and a flat list with the record index (problems).",
+        "characters, no control characters, integers within plus or minus 2^53 - 1). The body summarises every "
+        "problem once with the records that have it (refusals), lists the problems of the first records in full "
+        "(results, and a flat list with the record index: problems) and says whether some were left to the "
+        "summary (summarised).",
         "Fix the features each problem names. GET /models/{model}/versions/{version}/schema gives each "
         "feature's allowed range; GET /models/{model}/openapi.json gives the whole contract.",
     ),
@@ -47,10 +49,17 @@ PROBLEM_TYPES: Mapping[str, ProblemType] = {
         "list, or a value the operation cannot use. The problems member points at each part with a JSON pointer.",
         "Send the body the route documents in /openapi.json; scoring takes {\"records\": [{feature: number}]}.",
     ),
+    "overloaded": ProblemType(
+        503, "The service is busy",
+        "Every scoring thread of the worker that answered is busy and its queue of waiting requests is full, "
+        "so the request was turned away at once instead of waiting without bound.",
+        "Retry after the Retry-After header's seconds, spread retries out, or send fewer records per request.",
+    ),
     "malformed-json": ProblemType(
         400, "The request body is not acceptable JSON",
         "The body is not strict JSON (RFC 8259): a syntax error, NaN or Infinity, a number beyond a 64-bit "
-        "float, a member name twice in one object, nesting deeper than 32 levels, not UTF-8, or an empty body.",
+        "float, a member name twice in one object, an unpaired surrogate escape such as \\ud800, nesting "
+        "deeper than 32 levels, not UTF-8, or an empty body.",
         "Send UTF-8 JSON with finite numbers and unique member names; the detail names the first problem.",
     ),
     "malformed-request": ProblemType(

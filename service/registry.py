@@ -41,6 +41,7 @@ from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION
 from model_store.errors import HistoryError, InvalidNameError, NotFoundError, RbfgateError, StoreError
 from model_store.naming import check_name
 from service.metrics import ServiceMetrics
+from service.settings import DEFAULT_PINNED_CACHE_BYTES
 
 __all__ = ["LoadFailure", "LoadedModel", "ModelRegistry"]
 
@@ -49,7 +50,6 @@ _log = logging.getLogger("rbfgate.service")
 # A version that failed is tried again after this long, in case the failure
 # was transient (a file briefly unreadable); a bad bundle stays bad.
 _RETRY_FAILED_SECONDS = 30.0
-_PINNED_CAPACITY = 8
 
 
 @dataclass(frozen=True)
@@ -92,9 +92,11 @@ class ModelRegistry:
         on_event: Callable[[dict], None] | None = None,
         clock: Callable[[], float] = time.monotonic,
         poll_deadline: float = 10.0,
+        pinned_cache_bytes: int = DEFAULT_PINNED_CACHE_BYTES,
     ) -> None:
         self._store = store
         self.poll_deadline = poll_deadline
+        self._pinned_cache_bytes = pinned_cache_bytes
         self._metrics = metrics
         self._on_event = on_event or (lambda event: None)
         self._clock = clock
@@ -356,7 +358,9 @@ class ModelRegistry:
     # ---- pinned versions
 
     def pinned(self, name: str, version: str) -> LoadedModel:
-        """A published version, loaded and verified on first use and kept in a small LRU cache."""
+        """A published version, loaded and verified on first use and kept in an LRU cache bounded by
+        bytes (``Bundle.resident_bytes``), not by count: a version larger than the whole budget is
+        served from a fresh load each time and never cached."""
         check_name(name, what="model name")
         check_name(version, what="model version")
         self._store.bundle_dir(name, version)  # NotFoundError once pruned, even if cached
@@ -371,10 +375,16 @@ class ModelRegistry:
                 return cached
             bundle = self._store.load_verified(name, version)
             loaded = LoadedModel(name, version, bundle.digest, bundle, _now())
-            self._pinned[key] = loaded
-            while len(self._pinned) > _PINNED_CAPACITY:
-                self._pinned.popitem(last=False)
+            if bundle.resident_bytes <= self._pinned_cache_bytes:
+                self._pinned[key] = loaded
+                while sum(item.bundle.resident_bytes for item in self._pinned.values()) > self._pinned_cache_bytes:
+                    self._pinned.popitem(last=False)
             return loaded
+
+    def pinned_cache(self) -> tuple[int, int]:
+        """(versions, bytes) in the pinned-version cache of this worker."""
+        with self._pinned_lock:
+            return len(self._pinned), sum(item.bundle.resident_bytes for item in self._pinned.values())
 
 
 class _DigestMoved(Exception):

@@ -5,7 +5,10 @@ or 503 while the active version cannot be loaded), JSON syntax (400), body
 shape (422; 413 for too many records), then the refusal policy per record.
 Some records scored -> 200 with per-record statuses; none scored -> 422 with
 the same results inside the problem details. Both name the version and digest
-in the body and in the ``Rbfgate-Version`` / ``Rbfgate-Bundle-Sha256`` headers.
+in the body and in the ``Rbfgate-Version`` / ``Rbfgate-Bundle-Sha256`` headers,
+and both bound the refusal part of the answer (``service.refusal_answer``).
+Large requests are scored on the admission-controlled scoring threads
+(``service.admission``; 503 with Retry-After when they are all taken).
 """
 
 from __future__ import annotations
@@ -16,7 +19,6 @@ from typing import Any
 
 import numpy as np
 from fastapi import FastAPI, Request
-from starlette.concurrency import run_in_threadpool
 from starlette.responses import Response
 
 from model_store.errors import NotFoundError
@@ -24,22 +26,27 @@ from model_store.naming import check_name
 from service.access_log import request_note
 from service.body import parse_json, read_body
 from service.context import Services, version_headers
-from service.problems import ServiceProblem
+from service.problems import ServiceProblem, problem_response
 from service.registry import LoadedModel
 from service.scoring import ScoredBatch, read_records, score_records
 
 __all__ = ["active_model", "add_score_routes"]
 
 _EMPTY = np.empty(0)
-# A loaded model and a body this small are scored on the event loop: measured on 2 cores
-# (tests/benchmarks), handing a single-record request to the thread pool cost more than
-# scoring it (GIL hand-offs between the loop and the pool thread: p50 6 ms instead of 1 ms).
+# What is scored on the event loop rather than a scoring thread (service.admission), decided by
+# work, not by body bytes: 1,000 empty records are a 3 KB body but 1,000 x f refusals. Measured on
+# 2 cores (tests/benchmarks): handing a single-record request to a thread cost more than scoring it
+# (GIL hand-offs between the loop and the thread: p50 6 ms instead of 1 ms), while 1,000 empty
+# records held the loop for 134 ms. A body this small is parsed on the loop (under 1 ms); it is
+# then scored there when its records x features (plus unknown members) stay within the work bound.
 _INLINE_BODY_BYTES = 16 * 1024
+_INLINE_WORK = 256
 
 
 def add_score_routes(app: FastAPI, services: Services) -> None:
     """Add these routes to ``app`` (directly, so every route is a plain APIRoute with its path template)."""
     limit = services.settings.max_body_bytes
+    gate = services.gate
 
     @app.post("/score/{model}")
     async def score_with_active_version(model: str, request: Request) -> Response:
@@ -47,35 +54,60 @@ def add_score_routes(app: FastAPI, services: Services) -> None:
         body = await read_body(request, limit)
         loaded = services.registry.serving(model)
         if loaded is not None and len(body) <= _INLINE_BODY_BYTES:
-            return _score(services, request, body, lambda: loaded)
-        return await run_in_threadpool(_score, services, request, body, lambda: _active(services, model))
+            records = read_records(parse_json(body), services.settings.max_records)
+            if _work(records, len(loaded.bundle.feature_names)) <= _INLINE_WORK:
+                return _score(services, request, records, loaded)
+            return await gate.run(lambda: _score(services, request, records, loaded))
+
+        def work() -> Response:
+            loaded = _active(services, model)  # 404 or 503 before the body's 400, 422 or 413
+            return _score(services, request, _parsed(services, body), loaded)
+
+        return await gate.run(work)
 
     @app.post("/score/{model}/versions/{version}")
     async def score_with_pinned_version(model: str, version: str, request: Request) -> Response:
         """Score records with one published version, active or not."""
         body = await read_body(request, limit)
-        return await run_in_threadpool(_score, services, request, body, lambda: services.registry.pinned(model, version))
+
+        def work() -> Response:
+            # Checks in the documented order: the version (404, 409), then the body (400, 422, 413).
+            loaded = services.registry.pinned(model, version)
+            return _score(services, request, _parsed(services, body), loaded)
+
+        return await gate.run(work)
 
 
-def _score(services: Services, request: Request, body: bytes, resolve) -> Response:
-    model = resolve()  # read the table once: this request finishes on this version
+def _work(records: list[dict[str, Any]], n_features: int) -> int:
+    """Cells the refusal policy visits: each feature of each record, and each member it holds."""
+    return len(records) * n_features + sum(map(len, records))
+
+
+def _parsed(services: Services, body: bytes) -> list[dict[str, Any]]:
+    return read_records(parse_json(body), services.settings.max_records)
+
+
+def _score(services: Services, request: Request, records: list[dict[str, Any]], model: LoadedModel) -> Response:
+    """Score ``records`` with ``model`` (read once: this request finishes on this version)."""
     note = request_note(request)
     note.update(model=model.name, version=model.version)
-    records = read_records(parse_json(body), services.settings.max_records)
     batch = score_records(model, records, services.registry.outside_action(model.name))
     _account(services, model, batch, note, records)
     headers = version_headers(model)
     head = {"model": model.name, "version": model.version, "bundle_sha256": model.digest}
+    if batch.refused:
+        head.update(batch.refusals.members())
     if batch.scored == 0:
-        raise ServiceProblem(
+        # Rendered here, on the scoring thread, rather than by the exception handler on the event loop.
+        return problem_response(ServiceProblem(
             422,
             "records-refused",
             "Every record was refused",
             f"all {len(records)} record(s) were refused by {model.name} {model.version}; "
             "each result lists the features to fix (see the schema route for the allowed ranges)",
-            extra={**head, "results": batch.results, "problems": _flat_problems(batch)},
+            extra={**head, "results": batch.results, "problems": batch.refusals.detailed},
             headers=headers,
-        )
+        ))
     content = json.dumps({**head, "results": batch.results}, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
     return Response(content, media_type="application/json", headers=headers)
 
@@ -139,14 +171,3 @@ def _account(services: Services, model: LoadedModel, batch: ScoredBatch, note: d
     note.update(records=len(records), scored=batch.scored, refused=batch.refused, refusals=dict(sorted(reasons.items())))
     if services.settings.log_inputs:
         note["inputs"] = records
-
-
-def _flat_problems(batch: ScoredBatch) -> list[dict[str, Any]]:
-    ids = batch.checked.ids
-    flat = []
-    for index, problems in sorted(batch.checked.problems.items()):
-        head: dict[str, Any] = {"record": index}
-        if ids is not None and ids[index] is not None:
-            head["id"] = ids[index]  # the caller's id, beside the index, so either finds the record
-        flat.extend({**head, **problem.to_dict()} for problem in problems)
-    return flat

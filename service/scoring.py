@@ -3,8 +3,11 @@
     body      {"records": [{feature: number, ..., "id"?: str | int}, ...]}     1 to max_records records
     results   one per record, in request order, each led by the record's "id" when it sent one:
               {"status": "scored", "label", "decision", "probability", "nearest_support", "domain"}
-              {"status": "refused", "problems": [{"feature", "value", "reason", "allowed"}]}
-              {"status": "refused", "problems": [{"feature": null, ..., "reason": "outside_domain"}], "domain"}
+              {"status": "refused", "problem_count", "problems": [{"feature", "value", "reason", "allowed"}] or null}
+              {"status": "refused", "problem_count", "problems": [{"feature": null, ..., "reason": "outside_domain"}],
+               "domain"}
+    refusals  with any refused record: each distinct problem once with its record runs
+              (``service.refusal_answer``, which bounds the answer's size)
 
 ``domain`` is ``{"verdict": "typical" | "unusual" | "outside", "score": number}``, or null for a
 bundle without a domain model (format rbfgate-bundle/1). A record whose verdict is ``outside``
@@ -32,6 +35,7 @@ from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION, apply_outside_poli
 from model_store.refusal import CheckedBatch, check_records, from_json
 from model_store.scoring import Scores
 from service.problems import ServiceProblem
+from service.refusal_answer import RefusalAnswer, summarise_refusals
 from service.registry import LoadedModel
 
 __all__ = ["ScoredBatch", "read_records", "score_records"]
@@ -44,6 +48,7 @@ class ScoredBatch:
     results: list[dict[str, Any]]
     checked: CheckedBatch
     scores: Scores | None  # of every row that passed the range rules, outside_domain refusals included
+    refusals: RefusalAnswer
 
     @property
     def scored(self) -> int:
@@ -107,6 +112,7 @@ def score_records(
     position = {int(index): row for row, index in enumerate(checked.accepted.tolist())}
     classes = [str(label) for label in bundle.classes]
     scored = _scored_results(scores, classes) if scores is not None else []
+    refusals = summarise_refusals(checked.problems, checked.ids)
     results = []
     ids = checked.ids or [None] * len(records)
     for index, record_id in enumerate(ids):
@@ -114,11 +120,11 @@ def score_records(
         if row is not None and not outside[row]:
             result = scored[row]
         else:
-            result = {"status": "refused", "problems": [problem.to_dict() for problem in checked.problems[index]]}
+            result = dict(refusals.results[index])
             if row is not None:
                 result["domain"] = scored[row]["domain"]
         results.append(result if record_id is None else {"id": record_id, **result})
-    return ScoredBatch(results, checked, scores)
+    return ScoredBatch(results, checked, scores, refusals)
 
 
 def _scored_results(scores: Scores, classes: list[str]) -> list[dict[str, Any]]:

@@ -18,6 +18,10 @@ through its environment alone (``ENVIRON_KEYS`` lists every variable):
     RBFGATE_SERVE_POLL_SECONDS     seconds between polls of the store
     RBFGATE_SERVE_SAMPLE_SIZE      recent records kept per model for the preview
     RBFGATE_SERVE_LOG_INPUTS       "1" to log feature values
+    RBFGATE_SERVE_SCORING_THREADS  threads per worker that score large requests
+    RBFGATE_SERVE_SCORING_QUEUE    large requests per worker that may wait for a scoring thread
+    RBFGATE_SERVE_PINNED_CACHE_BYTES  bytes of pinned (non-active) versions kept loaded per worker
+    RBFGATE_SERVE_MAX_CONNECTIONS  open connections per worker (lowered to fit the descriptor limit)
 """
 
 from __future__ import annotations
@@ -33,10 +37,14 @@ from model_store.errors import InputError
 __all__ = [
     "DEFAULT_HOST",
     "DEFAULT_MAX_BODY_BYTES",
+    "DEFAULT_MAX_CONNECTIONS",
     "DEFAULT_MAX_RECORDS",
+    "DEFAULT_PINNED_CACHE_BYTES",
     "DEFAULT_POLL_SECONDS",
     "DEFAULT_PORT",
     "DEFAULT_SAMPLE_SIZE",
+    "DEFAULT_SCORING_QUEUE",
+    "DEFAULT_SCORING_THREADS",
     "ENVIRON_KEYS",
     "Settings",
 ]
@@ -47,6 +55,11 @@ DEFAULT_MAX_RECORDS = 1000
 DEFAULT_MAX_BODY_BYTES = 1024 * 1024
 DEFAULT_POLL_SECONDS = 1.0
 DEFAULT_SAMPLE_SIZE = 256
+# Measured costs behind these defaults are in the README (sizing and promises sections).
+DEFAULT_SCORING_THREADS = 1
+DEFAULT_SCORING_QUEUE = 16
+DEFAULT_PINNED_CACHE_BYTES = 128 * 1024 * 1024
+DEFAULT_MAX_CONNECTIONS = 1000
 
 # Settings field -> the environment variable that carries it (deployment
 # manifests are checked against this table, so a rename cannot leave them stale).
@@ -61,6 +74,10 @@ ENVIRON_KEYS: Mapping[str, str] = MappingProxyType({
     "poll_seconds": "RBFGATE_SERVE_POLL_SECONDS",
     "sample_size": "RBFGATE_SERVE_SAMPLE_SIZE",
     "log_inputs": "RBFGATE_SERVE_LOG_INPUTS",
+    "scoring_threads": "RBFGATE_SERVE_SCORING_THREADS",
+    "scoring_queue": "RBFGATE_SERVE_SCORING_QUEUE",
+    "pinned_cache_bytes": "RBFGATE_SERVE_PINNED_CACHE_BYTES",
+    "max_connections": "RBFGATE_SERVE_MAX_CONNECTIONS",
 })
 
 
@@ -75,6 +92,11 @@ class Settings:
     poll_seconds:    seconds between two reads of the store's active pointers
     sample_size:     recently scored records kept per model for the swap preview
     log_inputs:      write feature values into the request log (off by default)
+    scoring_threads: threads that score requests too large for the event loop (service.admission)
+    scoring_queue:   such requests that may wait for a thread; more get 503 with Retry-After
+    pinned_cache_bytes: budget of the pinned-version cache, in bytes of loaded arrays
+    max_connections: open connections per worker; the oldest incomplete one is shed past it
+                     (service.http_limits); `rbfgate serve` lowers it to fit the descriptor limit
     """
 
     store_root: Path
@@ -87,6 +109,10 @@ class Settings:
     poll_seconds: float = DEFAULT_POLL_SECONDS
     sample_size: int = DEFAULT_SAMPLE_SIZE
     log_inputs: bool = False
+    scoring_threads: int = DEFAULT_SCORING_THREADS
+    scoring_queue: int = DEFAULT_SCORING_QUEUE
+    pinned_cache_bytes: int = DEFAULT_PINNED_CACHE_BYTES
+    max_connections: int = DEFAULT_MAX_CONNECTIONS
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "store_root", Path(self.store_root))
@@ -96,6 +122,10 @@ class Settings:
         _at_least("--max-records", "max_records", self.max_records, 1)
         _at_least("--max-body-bytes", "max_body_bytes", self.max_body_bytes, 64)
         _at_least("--preview-sample", "sample_size", self.sample_size, 0)
+        _at_least("--scoring-threads", "scoring_threads", self.scoring_threads, 1)
+        _at_least("--scoring-queue", "scoring_queue", self.scoring_queue, 0)
+        _at_least("--pinned-cache-bytes", "pinned_cache_bytes", self.pinned_cache_bytes, 0)
+        _at_least("--max-connections", "max_connections", self.max_connections, 8)
         if not isinstance(self.host, str) or not self.host:
             raise InputError(f"{_option('--host', 'host')} must be an address to listen on; got {self.host!r}")
         _at_least("--port", "port", self.port, 0)
@@ -123,6 +153,10 @@ class Settings:
             "RBFGATE_SERVE_POLL_SECONDS": repr(float(self.poll_seconds)),
             "RBFGATE_SERVE_SAMPLE_SIZE": str(self.sample_size),
             "RBFGATE_SERVE_LOG_INPUTS": "1" if self.log_inputs else "0",
+            "RBFGATE_SERVE_SCORING_THREADS": str(self.scoring_threads),
+            "RBFGATE_SERVE_SCORING_QUEUE": str(self.scoring_queue),
+            "RBFGATE_SERVE_PINNED_CACHE_BYTES": str(self.pinned_cache_bytes),
+            "RBFGATE_SERVE_MAX_CONNECTIONS": str(self.max_connections),
             "RBFGATE_TOKENS": "" if self.tokens_file is None else str(self.tokens_file),
         }
 
@@ -144,6 +178,10 @@ class Settings:
             poll_seconds=_number(environ, "RBFGATE_SERVE_POLL_SECONDS", DEFAULT_POLL_SECONDS),
             sample_size=_integer(environ, "RBFGATE_SERVE_SAMPLE_SIZE", DEFAULT_SAMPLE_SIZE),
             log_inputs=environ.get("RBFGATE_SERVE_LOG_INPUTS", "0") == "1",
+            scoring_threads=_integer(environ, "RBFGATE_SERVE_SCORING_THREADS", DEFAULT_SCORING_THREADS),
+            scoring_queue=_integer(environ, "RBFGATE_SERVE_SCORING_QUEUE", DEFAULT_SCORING_QUEUE),
+            pinned_cache_bytes=_integer(environ, "RBFGATE_SERVE_PINNED_CACHE_BYTES", DEFAULT_PINNED_CACHE_BYTES),
+            max_connections=_integer(environ, "RBFGATE_SERVE_MAX_CONNECTIONS", DEFAULT_MAX_CONNECTIONS),
         )
 
 

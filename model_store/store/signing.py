@@ -19,7 +19,6 @@ settings, never the public key a signature file carries.
 
 from __future__ import annotations
 
-import json
 import re
 from dataclasses import dataclass
 from pathlib import Path
@@ -31,6 +30,7 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey,
 
 from model_store.digest import sha256_bytes
 from model_store.errors import InputError, SignatureError
+from model_store.strict_json import loads_strict
 
 __all__ = [
     "SIGNATURE_FORMAT",
@@ -50,6 +50,9 @@ __all__ = [
 SIGNATURE_FORMAT = "rbfgate-signature/1"
 _MESSAGE_TAG = b"rbfgate-bundle-signature/1\n"
 _HEX64 = re.compile(r"[0-9a-f]{64}")
+# signature.json is a flat object of a few hundred bytes; strict JSON (model_store.strict_json)
+# refuses duplicate members, deep nesting and lone surrogates in it as in a manifest.
+_MAX_SIGNATURE_BYTES = 64 * 1024
 
 
 @dataclass(frozen=True)
@@ -198,8 +201,13 @@ def check_bundle_signature(
 
 
 def _parse_signature(data: bytes, source: str) -> dict[str, Any]:
+    if len(data) > _MAX_SIGNATURE_BYTES:
+        raise SignatureError(
+            f"{source}: signature.json is {len(data)} bytes, more than a signature ever needs "
+            f"({_MAX_SIGNATURE_BYTES}); sign the bundle again"
+        )
     try:
-        document = json.loads(data.decode("utf-8"))
+        document = loads_strict(data.decode("utf-8"), max_depth=4)
         if not isinstance(document, dict) or document.get("format") != SIGNATURE_FORMAT:
             raise ValueError(f'expected "format": "{SIGNATURE_FORMAT}"')
         if document.get("algorithm") != "Ed25519":

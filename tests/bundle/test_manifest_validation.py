@@ -269,17 +269,17 @@ def test_exported_created_time_is_rfc3339_utc(iris_raw):
 
 
 def test_a_forged_npy_header_cannot_make_numpy_allocate_what_the_file_does_not_hold(iris_raw, tmp_path):
-    """A 100-byte .npy whose header claims 10**11 values is refused before any allocation."""
+    """A 100-byte .npy whose header claims 10**8 values (800 MB) is refused before any allocation."""
     bundle, _, _ = iris_raw
     header = np.lib.format.header_data_from_array_1_0(np.zeros(1))
-    header["shape"] = (10**11,)
+    header["shape"] = (10**8,)
     buffer = io.BytesIO()
     np.lib.format.write_array_header_1_0(buffer, header)
     copy = _replace_array(bundle, tmp_path, "reference_quantiles.npy", np.zeros(101))
     data = buffer.getvalue() + b"\0" * 8
     (copy / "reference_quantiles.npy").write_bytes(data)
     document = json.loads((copy / "manifest.json").read_text())
-    document["files"]["reference_quantiles.npy"].update(sha256=sha256_bytes(data), bytes=len(data), shape=[10**11])
+    document["files"]["reference_quantiles.npy"].update(sha256=sha256_bytes(data), bytes=len(data), shape=[10**8])
     (copy / "manifest.json").write_text(json.dumps(document))
     with pytest.raises(BundleFormatError, match="reference_quantiles.npy: holds 8 data bytes"):
         load_bundle(copy)

@@ -16,14 +16,13 @@ from importlib.metadata import version as installed_version
 
 import pytest
 import yaml
-from scaleout.deploy_files import COMPOSE_FILE, KUBERNETES, app_routes, dockerfile_stages, manifests, one
+from scaleout.deploy_files import COMPOSE_FILE, KUBERNETES, OVERLAY, app_routes, dockerfile_stages, manifests, one
 
 from model_store.store.layout import SETTINGS_FILE
 from service.settings import ENVIRON_KEYS, Settings
-from service.tokens import read_tokens
 
 REQUIRED_KINDS = {"Deployment", "Service", "HorizontalPodAutoscaler", "PodDisruptionBudget",
-                  "PersistentVolumeClaim", "Secret", "ConfigMap", "Job"}
+                  "PersistentVolumeClaim", "ConfigMap", "Job", "NetworkPolicy"}  # the Secret comes from an overlay
 
 
 def serving_stage_environment() -> dict[str, str]:
@@ -75,7 +74,7 @@ def test_the_manifests_hold_every_kind_an_operator_needs():
 
 def test_the_deployment_runs_at_least_two_replicas_and_rolls_without_losing_capacity():
     spec = one("Deployment")["spec"]
-    assert spec["replicas"] >= 2
+    assert one("HorizontalPodAutoscaler")["spec"]["minReplicas"] >= 2  # the autoscaler owns the scale
     assert spec["strategy"]["type"] == "RollingUpdate" and spec["strategy"]["rollingUpdate"]["maxUnavailable"] == 0
 
 
@@ -129,18 +128,16 @@ def test_the_store_is_the_shared_claim_mounted_where_the_settings_say():
     assert store == serving_stage_environment()["RBFGATE_STORE"]
 
 
-def test_the_tokens_file_comes_from_the_secret_where_the_settings_say(tmp_path):
+def test_the_tokens_file_comes_from_the_secret_where_the_settings_say():
     tokens = settings_data()["RBFGATE_TOKENS"]
-    secret = one("Secret")
     mount = mount_of("Deployment", "secret")
     [volume] = [volume for volume in pod("Deployment")["volumes"] if volume["name"] == mount["name"]]
-    assert volume["secret"]["secretName"] == secret["metadata"]["name"]
+    [generated] = yaml.safe_load((OVERLAY / "kustomization.yaml").read_text())["secretGenerator"]
+    assert volume["secret"]["secretName"] == generated["name"]  # made by the overlay, never by the base
+    assert generated["files"] == [posixpath.basename(tokens)]
     assert posixpath.dirname(tokens) == mount["mountPath"] and mount["readOnly"] is True
     assert "subPath" not in mount  # a subPath mount would never see an updated Secret
     assert tokens == serving_stage_environment()["RBFGATE_TOKENS"]
-    placeholder = tmp_path / "tokens.json"
-    placeholder.write_text(secret["stringData"][posixpath.basename(tokens)])
-    assert read_tokens(placeholder) == []  # a valid file with no tokens: nothing is open by accident
 
 
 @pytest.mark.parametrize("kind", ["Deployment", "Job"])
@@ -241,7 +238,8 @@ def test_compose_shares_one_named_volume_for_the_store():
     document = compose()
     store = serving_stage_environment()["RBFGATE_STORE"]
     mounts = {name: service["volumes"] for name, service in document["services"].items()}
-    assert mounts["publish"] == mounts["serve"] == [f"store:{store}"] and "store" in document["volumes"]
+    assert mounts["publish"] == [f"store:{store}"] and f"store:{store}" in mounts["serve"]
+    assert "store" in document["volumes"]
 
 
 def test_compose_sets_only_variables_the_service_reads_and_exposes_its_port():
@@ -249,11 +247,9 @@ def test_compose_sets_only_variables_the_service_reads_and_exposes_its_port():
     assert set(serve["environment"]) <= set(ENVIRON_KEYS.values())
     [published] = serve["ports"]
     assert re.fullmatch(r"127\.0\.0\.1:\d+:(\d+)", published).group(1) == serving_stage_environment()["RBFGATE_SERVE_PORT"]
-    [secret] = serve["secrets"]
-    assert secret["target"] == serving_stage_environment()["RBFGATE_TOKENS"]
 
 
-@pytest.mark.parametrize("name", ["publish", "serve"])
+@pytest.mark.parametrize("name", ["publish", "serve", "tokens-init", "tokens"])
 def test_compose_runs_each_container_read_only_with_a_scratch_tmpfs(name):
     service = compose()["services"][name]
     assert service["read_only"] is True and service["tmpfs"] == [serving_stage_environment()["TMPDIR"]]

@@ -41,6 +41,10 @@ def container_environment(store: Store, tmp_path: Path) -> dict[str, str]:
         "RBFGATE_SERVE_POLL_SECONDS": "0.5",
         "RBFGATE_SERVE_SAMPLE_SIZE": "7",
         "RBFGATE_SERVE_LOG_INPUTS": "1",
+        "RBFGATE_SERVE_SCORING_THREADS": "3",
+        "RBFGATE_SERVE_SCORING_QUEUE": "5",
+        "RBFGATE_SERVE_PINNED_CACHE_BYTES": "1000000",
+        "RBFGATE_SERVE_MAX_CONNECTIONS": "300",
     }
 
 
@@ -64,6 +68,7 @@ def test_serve_takes_every_setting_from_the_environment(store, tmp_path):
     assert settings == Settings(
         store_root=store.root, tokens_file=tmp_path / "tokens.json", host="0.0.0.0", port=8080, workers=3,
         max_records=50, max_body_bytes=4096, poll_seconds=0.5, sample_size=7, log_inputs=True,
+        scoring_threads=3, scoring_queue=5, pinned_cache_bytes=1_000_000, max_connections=300,
     )
 
 
@@ -83,7 +88,8 @@ def test_without_options_or_variables_serve_uses_the_documented_defaults(store):
 @pytest.mark.parametrize(
     "name, value",
     [("RBFGATE_SERVE_WORKERS", "0"), ("RBFGATE_SERVE_WORKERS", "four"), ("RBFGATE_SERVE_PORT", "70000"),
-     ("RBFGATE_SERVE_PORT", "http")],
+     ("RBFGATE_SERVE_PORT", "http"), ("RBFGATE_SERVE_SCORING_THREADS", "0"), ("RBFGATE_SERVE_SCORING_QUEUE", "-1"),
+     ("RBFGATE_SERVE_PINNED_CACHE_BYTES", "lots"), ("RBFGATE_SERVE_MAX_CONNECTIONS", "2")],
 )
 def test_a_bad_variable_stops_serve_with_one_line_naming_it(store, monkeypatch, capsys, name, value):
     monkeypatch.setenv("RBFGATE_STORE", str(store.root))

@@ -104,9 +104,14 @@ _VALID = [
 ]
 _SNIPPETS = [b"NaN", b"Infinity", b"-Infinity", b"1e999", b"9" * 400, b"[" * 200, b"{" * 100, b'"\\u0000"',
              b"\xff\xfe", b"\xef\xbb\xbf", b"null", b"true", b'"records"', b":", b",", b"}", b"]", b'"a":1,"a":2',
-             b"\x00", b"\\", b'"', b"-0", b"1.7976931348623157e309", b"0x10", b"'single'"]
+             b"\x00", b"\\", b'"', b"-0", b"1.7976931348623157e309", b"0x10", b"'single'",
+             # Invalid Unicode (RFC 3629 section 3; RFC 7493 section 2.1): escaped lone surrogates as values and
+             # member names, a surrogate encoded as UTF-8 bytes, an over-long encoding, a paired escape.
+             b'"\\ud800"', b'"\\udfff"', b'{"\\ud800":1}', b'"\\ud800":1,', b"\xed\xa0\x80", b"\xc0\xaf",
+             b'"\\ud83d\\ude00"', b"\xf4\x90\x80\x80"]
 _PATH_PIECES = ["..", "%2e%2e", "%2F", "%00", "%", "%zz", "~", "iris", "1.0.0", "versions", "models", "score",
-                "schema", "bundle", ";", "?x=1", "#frag", "%C3%A9", "\u00e9", "a" * 300, "//", "*", "{model}"]
+                "schema", "bundle", ";", "?x=1", "#frag", "%C3%A9", "\u00e9", "a" * 300, "//", "*", "{model}",
+                "%ED%A0%80", "%C0%AF", "%F4%90%80%80", "\U0001d11e", "?q=%ED%A0%80"]
 _CONTENT_TYPES = ["application/json", "text/plain", "application/json; charset=latin-1", "", "multipart/form-data",
                   "application/problem+json", "application/x-www-form-urlencoded", "*/*"]
 
@@ -114,7 +119,7 @@ _CONTENT_TYPES = ["application/json", "text/plain", "application/json; charset=l
 def _mutate_body(rng: random.Random, body: bytes) -> bytes:
     data = bytearray(body)
     for _ in range(rng.randint(1, 4)):
-        choice = rng.randrange(6)
+        choice = rng.randrange(7)
         position = rng.randint(0, len(data))
         if choice == 0 and data:
             data[min(position, len(data) - 1)] ^= 1 << rng.randrange(8)
@@ -126,9 +131,37 @@ def _mutate_body(rng: random.Random, body: bytes) -> bytes:
             data = data[:position]
         elif choice == 4:
             data[position:position] = bytes(rng.randrange(256) for _ in range(rng.randint(1, 8)))
-        else:
+        elif choice == 5:
             data = data + data[: rng.randint(0, len(data))]
+        else:
+            data = bytearray(_with_a_lone_surrogate(rng, bytes(data)))
     return bytes(data)
+
+
+def _with_a_lone_surrogate(rng: random.Random, body: bytes) -> bytes:
+    """The body with one member name or string value (a feature, a record id, a version, a reason)
+    replaced by text holding a lone surrogate, still valid JSON syntax (json.dumps escapes it)."""
+    try:
+        document = json.loads(body)
+    except ValueError:
+        return body
+    containers = [document]
+    places = []
+    while containers:
+        value = containers.pop()
+        items = value.items() if isinstance(value, dict) else enumerate(value) if isinstance(value, list) else ()
+        for key, child in items:
+            places.append((value, key))
+            containers.append(child)
+    if not places:
+        return body
+    container, key = rng.choice(places)
+    lone = rng.choice(["\ud800", "\udbff", "\udc00", "\udfff"])
+    if isinstance(container, dict) and rng.random() < 0.5:
+        container[f"{key}{lone}" if rng.random() < 0.5 else lone] = container.pop(key)
+    else:
+        container[key] = rng.choice([lone, f"5.1{lone}", [lone], {lone: 1}])
+    return json.dumps(document).encode("ascii")
 
 
 def _mutate_path(rng: random.Random, path: str) -> str:

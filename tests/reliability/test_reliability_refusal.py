@@ -78,7 +78,7 @@ def test_a_feature_pushed_out_of_range_is_refused_by_the_service(served):
         assert response.status_code == 200, response.text
         first, second = response.json()["results"]
         assert first["status"] == "scored"
-        assert second == {"status": "refused", "problems": [
+        assert second == {"status": "refused", "problem_count": 1, "problems": [
             {"feature": feature.name, "value": value, "reason": "out_of_range", "allowed": list(feature.allowed)}
         ]}
 

@@ -15,6 +15,7 @@ __all__ = [
     "DEPLOY",
     "DOCKERFILE",
     "KUBERNETES",
+    "OVERLAY",
     "REPOSITORY",
     "Stage",
     "app_routes",
@@ -27,6 +28,7 @@ REPOSITORY = Path(__file__).resolve().parents[3]
 DEPLOY = REPOSITORY / "deploy"
 DOCKERFILE = DEPLOY / "Dockerfile"
 KUBERNETES = DEPLOY / "kubernetes"
+OVERLAY = DEPLOY / "overlays" / "example"
 COMPOSE_FILE = DEPLOY / "compose.yaml"
 
 

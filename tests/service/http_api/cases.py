@@ -4,8 +4,8 @@ Each ``check_*`` function takes any client with the httpx request API (FastAPI's
 TestClient or ``httpx.Client``), so the same specification runs in both settings.
 
 Sources: RFC 9457 (problem details), RFC 6750 (Bearer tokens), RFC 8259 (JSON: no
-NaN/Infinity, UTF-8, ``true`` is not a number), IEEE 754 binary64 (largest finite value
-about 1.8e308), RFC 6901 (JSON pointers), the issue's role list for the matrix.
+NaN/Infinity, UTF-8, ``true`` is not a number), RFC 7493 (I-JSON: no unpaired surrogates),
+IEEE 754 binary64 (largest finite value about 1.8e308), RFC 6901 (JSON pointers), the issue's role list for the matrix.
 """
 
 from __future__ import annotations
@@ -35,6 +35,11 @@ MALFORMED_BODIES = [
     ('{"records": [{"sepal_length_cm": 1e400}]}', "64-bit float"),  # > 1.8e308, IEEE 754 binary64 max
     ('{"records": [{"sepal_length_cm": ' + "9" * 400 + "}]}", "64-bit float"),
     ('{"records": [{"sepal_length_cm": 5.1, "sepal_length_cm": 6.0}]}', "appears twice"),
+    # RFC 7493 section 2.1: no unpaired surrogates, as a value, as a member name, or anywhere else.
+    ('{"records": [{"sepal_length_cm": "\\ud800"}]}', "unpaired UTF-16 surrogate"),
+    ('{"records": [{"\\ud800": 5.1}]}', "unpaired UTF-16 surrogate"),
+    ('{"records": [{"sepal_length_cm": ["x\\udfff"]}]}', "unpaired UTF-16 surrogate"),
+    ('{"\\udbff": []}', "unpaired UTF-16 surrogate"),
     ("", "empty"),
     ("   ", "empty"),
 ]

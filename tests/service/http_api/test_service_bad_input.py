@@ -137,21 +137,25 @@ def test_a_bug_in_the_app_is_logged_counted_and_answered_with_a_bare_500(shared_
     assert 'rbfgate_http_requests_total{method="POST",route="/score/{model}",status="500"} 1.0' in metrics
 
 
+# Text from every Unicode category, surrogates (Cs) included: json.dumps escapes a lone one as
+# "\\ud800", which is valid JSON syntax but not Unicode text (RFC 7493 section 2.1).
+_any_text = st.text(st.characters(codec=None, categories=None), max_size=8)
 _json_values = st.recursive(
-    st.none() | st.booleans() | st.floats(allow_nan=False, allow_infinity=False) | st.integers() | st.text(max_size=8),
-    lambda children: st.lists(children, max_size=4) | st.dictionaries(st.text(max_size=8), children, max_size=4),
+    st.none() | st.booleans() | st.floats(allow_nan=False, allow_infinity=False) | st.integers() | _any_text,
+    lambda children: st.lists(children, max_size=4) | st.dictionaries(_any_text, children, max_size=4),
     max_leaves=20,
 )
 _records = st.lists(
-    st.dictionaries(st.sampled_from([*GOOD_RECORD, "other"]), _json_values | st.floats(0, 8), max_size=5), max_size=5
+    st.dictionaries(st.sampled_from([*GOOD_RECORD, "other"]) | _any_text, _json_values | st.floats(0, 8), max_size=5),
+    max_size=5,
 )
 
 
-@settings(max_examples=120, deadline=None)
+@settings(max_examples=150, deadline=None)
 @given(document=st.one_of(_json_values, st.fixed_dictionaries({"records": _records})))
 def test_no_json_document_gets_a_5xx(shared_client, document):
     client = shared_client
-    response = client.post("/score/iris", json=document)
+    response = _post(client, json.dumps(document))  # ASCII with \\u escapes, so any str can be sent
     assert response.status_code in (200, 400, 413, 422)
     if response.status_code != 200:
         assert_problem(response, response.status_code)
@@ -164,3 +168,18 @@ def test_no_byte_string_gets_a_5xx(shared_client, body):
     assert response.status_code in (200, 400, 413, 422)
     if response.status_code != 200:
         assert_problem(response, response.status_code)
+
+
+@pytest.mark.parametrize(("path", "document"), [
+    ("/models/iris/activate", {"version": "\ud800", "reason": "lone surrogate as the version"}),
+    ("/models/iris/activate", {"version": "2.0.0", "reason": "reason \udfff"}),
+    ("/models/iris/rollback", {"reason": "\ud800"}),
+    ("/models/iris/preview", {"version": "\udbff"}),
+    ("/models/iris/preview", {"\ud800": "2.0.0"}),
+])
+def test_a_lone_surrogate_in_an_operation_body_is_400(make_client, store, tokens, path, document):
+    tokens_file, issued = tokens
+    client = make_client(store.root, tokens_file=tokens_file)
+    response = client.post(path, content=json.dumps(document), headers={"Authorization": f"Bearer {issued['operate']}"})
+    assert "unpaired UTF-16 surrogate" in assert_problem(response, 400)["detail"]
+    assert store.active("iris").version == "1.0.0"
