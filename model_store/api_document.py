@@ -32,7 +32,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from model_store.manifest import Manifest
-from model_store.refusal import MAX_ID_LENGTH, REASONS, RECORD_ID
+from model_store.refusal import ID_CONTROL_RANGES, MAX_ID_INTEGER, MAX_ID_LENGTH, REASONS, RECORD_ID
 
 __all__ = [
     "DEFAULT_MAX_RECORDS",
@@ -304,13 +304,20 @@ def _components(manifest: Manifest, digest: str, max_records: int) -> dict[str, 
 
 
 def record_id_schema() -> dict[str, Any]:
-    """JSON Schema 2020-12 of a record's ``id``, exactly as ``model_store.refusal`` accepts it."""
-    largest = 10**MAX_ID_LENGTH - 1  # the largest integer of MAX_ID_LENGTH digits
+    """JSON Schema 2020-12 of a record's ``id``, exactly as ``model_store.refusal`` accepts it.
+
+    The control characters are refused with ``not`` + ``pattern`` (valid when no character of the
+    class occurs anywhere; JSON Schema 2020-12 validation section 6.3.3 and core 10.2.1.4) rather
+    than an anchored ``^...$``, whose ``$`` some regex engines also match before a final newline.
+    """
+    controls = "".join(f"\\u{low:04x}-\\u{high:04x}" for low, high in ID_CONTROL_RANGES)
     return {
         "description": f"your id for the record, echoed on its result; a string of 1 to {MAX_ID_LENGTH} "
-                       f"characters or an integer of at most {MAX_ID_LENGTH} digits; not a feature",
-        "anyOf": [{"type": "string", "minLength": 1, "maxLength": MAX_ID_LENGTH},
-                  {"type": "integer", "minimum": -largest, "maximum": largest}],
+                       "characters without control characters (Unicode category Cc), or an integer from "
+                       f"-{MAX_ID_INTEGER} to {MAX_ID_INTEGER} (2^53 - 1, the integers every JSON parser keeps "
+                       "exact, RFC 8259 section 6); not a feature",
+        "anyOf": [{"type": "string", "minLength": 1, "maxLength": MAX_ID_LENGTH, "not": {"pattern": f"[{controls}]"}},
+                  {"type": "integer", "minimum": -MAX_ID_INTEGER, "maximum": MAX_ID_INTEGER}],
     }
 
 
@@ -351,6 +358,7 @@ def _problem_members() -> dict[str, Any]:
         "allowed": {"anyOf": [{"type": "array", "items": {"type": "number"}, "minItems": 2, "maxItems": 2},
                               {"type": "null"}],
                     "description": "the allowed range [low, high], inclusive"},
+        "message": {"type": "string", "description": "invalid_id only: which rule the id breaks, with its limit"},
     }
 
 

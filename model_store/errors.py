@@ -132,13 +132,16 @@ class VersionConflictError(CheckFailedError):
 
 
 class BreakingChangeError(CheckFailedError):
-    """Activating a version would break callers of the active one; ``changes`` lists why (one line each)."""
+    """Activating a version would break callers of the active one; ``changes`` lists why (one line each),
+    ``range_basis`` what narrowed ranges were judged on (``model_store.store.contract.range_basis``)."""
 
     changes: tuple[str, ...] = ()
+    range_basis: str | None = None
 
-    def __init__(self, message: str, changes: tuple[str, ...] = ()) -> None:
+    def __init__(self, message: str, changes: tuple[str, ...] = (), range_basis: str | None = None) -> None:
         super().__init__(message)
         self.changes = tuple(changes)
+        self.range_basis = range_basis
 
 
 class HistoryError(CheckFailedError):

@@ -25,6 +25,7 @@ import numpy as np
 import sklearn
 
 from model_store.bundle import GOLDEN_TOLERANCE, Bundle, load_bundle, write_bundle
+from model_store.client_names import client_name_warnings
 from model_store.domain_fit import DEFAULT_REFUSE_RATE, FittedDomain, fit_domain
 from model_store.errors import GoldenMismatchError, InputError
 from model_store.estimator_parts import ModelParts, plain_arrays_accepted
@@ -283,7 +284,8 @@ def _training(request: ExportRequest) -> dict[str, Any]:
             "numpy": np.__version__,
             "scikit-learn": sklearn.__version__,
         },
-        "notes": list(request.parts.notes),
+        # Names a generated typed client cannot keep apart: warned about by the CLI, kept with the bundle.
+        "notes": [*request.parts.notes, *client_name_warnings(request.features, request.parts.classes)],
     }
     if request.reference_labels is not None:
         labels, counts = np.unique(np.asarray(request.reference_labels, dtype=object).astype(str), return_counts=True)

@@ -10,11 +10,15 @@ value, a machine-readable reason and the allowed range. ``outside_domain`` is th
 record-level reason (no feature): it is decided after scoring, from the domain verdict
 (``model_store.domain_policy``).
 
-A JSON record may also carry its caller's id as ``"id"`` (``RECORD_ID``): a string or an
-integer of at most ``MAX_ID_LENGTH`` characters, which is not a feature and is never scored;
-``check_records(..., ids=True)`` keeps it for the results and refuses the record
-(``invalid_id``) when it is anything else. Exporting refuses a feature of that name, so the
-member cannot mean two things; in an older bundle that has such a feature it stays a feature.
+A JSON record may also carry its caller's id as ``"id"`` (``RECORD_ID``): a string of 1 to
+``MAX_ID_LENGTH`` characters none of which is a control character (Unicode general category Cc:
+U+0000-U+001F and U+007F-U+009F, The Unicode Standard, section 4.5), or an integer within
+±``MAX_ID_INTEGER`` = ±(2^53 - 1): RFC 8259 section 6 warns that integers beyond that range are not
+exact in every JSON parser (IEEE 754 doubles), so a caller's id could come back changed. It is not a
+feature and is never scored; ``check_records(..., ids=True)`` keeps it for the results and refuses
+the record (``invalid_id``, with a ``message`` naming the rule broken and its limit) when it is
+anything else. Exporting refuses a feature of that name, so the member cannot mean two things; in
+an older bundle that has such a feature it stays a feature.
 
 Values come in two flavours: JSON values (``from_json``), where only real
 numbers count, and CSV text (``from_text``), where the text must parse as a
@@ -34,7 +38,9 @@ import numpy as np
 from model_store.manifest import FeatureSpec
 
 __all__ = [
+    "ID_CONTROL_RANGES",
     "ID_RULE",
+    "MAX_ID_INTEGER",
     "MAX_ID_LENGTH",
     "REASONS",
     "RECORD_ID",
@@ -44,6 +50,7 @@ __all__ = [
     "check_records",
     "from_json",
     "from_text",
+    "id_problem",
 ]
 
 REASONS = (
@@ -52,9 +59,12 @@ REASONS = (
 )
 RECORD_ID = "id"
 MAX_ID_LENGTH = 128
+MAX_ID_INTEGER = 2**53 - 1  # RFC 8259 section 6: [-(2**53)+1, (2**53)-1] is exact in every parser
+# Unicode general category Cc, exactly these two ranges (C0 controls with DEL, C1 controls).
+ID_CONTROL_RANGES = ((0x00, 0x1F), (0x7F, 0x9F))
 ID_RULE = (
-    f"a record id must be a string of 1 to {MAX_ID_LENGTH} characters or an integer of at most "
-    f"{MAX_ID_LENGTH} digits; it is echoed on the result, never scored"
+    f"a record id must be a string of 1 to {MAX_ID_LENGTH} characters without control characters, or an "
+    f"integer from -{MAX_ID_INTEGER} to {MAX_ID_INTEGER} (2^53 - 1); it is echoed on the result, never scored"
 )
 
 # A converter returns the float, or the reason the value cannot be scored.
@@ -69,14 +79,18 @@ class Problem:
     value: Any
     reason: str
     allowed: tuple[float, float] | None
+    message: str | None = None  # invalid_id only: which rule the id breaks, with its limit
 
     def to_dict(self) -> dict[str, Any]:
-        return {
+        problem = {
             "feature": self.feature,
             "value": _json_safe(self.value),
             "reason": self.reason,
             "allowed": list(self.allowed) if self.allowed is not None else None,
         }
+        if self.message is not None:
+            problem["message"] = self.message
+        return problem
 
     def describe(self) -> str:
         """One human-readable phrase, as used in the CLI's ``problems`` column."""
@@ -89,7 +103,7 @@ class Problem:
         if self.reason == "unknown_feature":
             return f"{self.feature}: not a feature of this model"
         if self.reason == "invalid_id":
-            return f"{self.feature}: {ID_RULE}"
+            return f"{self.feature}: {self.message or ID_RULE}"
         shown = "" if self.reason in ("missing", "null") else f"={self.value!r}"
         return f"{self.feature}{shown}: {self.reason.replace('_', ' ')}"
 
@@ -173,8 +187,9 @@ def check_records(
         if record_ids is not None:
             record_id = record.get(RECORD_ID)
             if record_id is not None or RECORD_ID in record:
-                if not _valid_id(record_id):
-                    found.insert(0, Problem(RECORD_ID, _printable_id(record_id), "invalid_id", None))
+                broken = id_problem(record_id)
+                if broken is not None:
+                    found.insert(0, Problem(RECORD_ID, _printable_id(record_id), "invalid_id", None, broken))
                     record_id = None
             record_ids.append(record_id)
         if not allow_extra:
@@ -197,18 +212,39 @@ def _printable_id(value: Any) -> Any:
     return value
 
 
-def _valid_id(value: Any) -> bool:
+def id_problem(value: Any) -> str | None:
+    """Why ``value`` is not a valid record id (one phrase naming the limit), or None when it is one."""
     if isinstance(value, str):
-        if not 1 <= len(value) <= MAX_ID_LENGTH:
-            return False
-        try:
-            value.encode("utf-8")  # a lone surrogate (JSON "\\ud800") could not be echoed as UTF-8
-        except UnicodeEncodeError:
-            return False
-        return True
+        if not value:
+            return f"the id is empty; a string id has 1 to {MAX_ID_LENGTH} characters"
+        if len(value) > MAX_ID_LENGTH:
+            return f"the id has {len(value)} characters; a string id has at most {MAX_ID_LENGTH}"
+        for position, character in enumerate(value, start=1):
+            code = ord(character)
+            if any(low <= code <= high for low, high in ID_CONTROL_RANGES):
+                return (f"the id holds the control character U+{code:04X} at character {position}; an id must not "
+                        "hold control characters (Unicode category Cc: U+0000-U+001F, U+007F-U+009F)")
+            if 0xD800 <= code <= 0xDFFF:  # a lone surrogate (JSON "\ud800") could not be echoed as UTF-8
+                return f"the id holds the lone surrogate U+{code:04X} at character {position}, which UTF-8 cannot carry"
+        return None
     if isinstance(value, int) and not isinstance(value, bool):
-        return len(str(abs(value))) <= MAX_ID_LENGTH
-    return False
+        if abs(value) > MAX_ID_INTEGER:
+            return (f"the integer id is outside -{MAX_ID_INTEGER} to {MAX_ID_INTEGER} (2^53 - 1), beyond which JSON "
+                    "parsers need not keep integers exact (RFC 8259 section 6); send it as a string")
+        return None
+    return f"the id is {_kind(value)}; {ID_RULE}"
+
+
+def _kind(value: Any) -> str:
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, float):
+        return "a number written with a fraction or an exponent"
+    if isinstance(value, (dict, list)):
+        return "an object" if isinstance(value, dict) else "a list"
+    return f"a {type(value).__name__}"
 
 
 def _check_one(record, names, bounds, convert) -> tuple[list[float], list[Problem]]:

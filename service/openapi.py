@@ -26,6 +26,7 @@ from service.openapi_models import (
     NAME_PATTERN,
     ActivateRequest,
     Alive,
+    BreakingChangesProblem,
     History,
     ModelDetail,
     ModelList,
@@ -190,7 +191,13 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
         if status == 422 and path.startswith("/score/"):
             # Every record refused (results and problems) or a wrong shape (plain problem details).
             schema = {"anyOf": [{"$ref": _REF.format(model=RecordsRefusedProblem.__name__)}, problem]}
-        responses[str(status)] = {"description": _PROBLEM_STATUSES[status], "headers": request_id,
+        if status == 409 and path.endswith("/activate"):
+            # Breaking changes refused (breaking_changes, range_basis), or another check failed.
+            schema = {"anyOf": [{"$ref": _REF.format(model=BreakingChangesProblem.__name__)}, problem]}
+        description = _PROBLEM_STATUSES[status]
+        if status == 409 and path.endswith("/activate"):
+            description += ", or activating would break callers (BreakingChangesProblem)"
+        responses[str(status)] = {"description": description, "headers": request_id,
                                   "content": {PROBLEM_MEDIA_TYPE: {"schema": schema}}}
     operation["responses"] = responses
     # RFC 6750 bearer tokens when the service runs with a tokens file; health routes are always open.

@@ -14,10 +14,11 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from model_store.manifest import DomainSpec, FeatureSpec, FileEntry, KernelSpec, RefusalReport
 from model_store.naming import MAX_NAME_LENGTH
-from model_store.refusal import MAX_ID_LENGTH, REASONS
+from model_store.refusal import MAX_ID_INTEGER, MAX_ID_LENGTH, REASONS
 
 __all__ = [
-    "ActivateRequest", "Alive", "DOCUMENTED_MODELS", "History", "LiveAt", "ModelDetail", "ModelList", "NAME_PATTERN",
+    "ActivateRequest", "Alive", "BreakingChangesProblem", "DOCUMENTED_MODELS", "History", "LiveAt", "ModelDetail",
+    "ModelList", "NAME_PATTERN",
     "OutsideDomainChoice", "OutsideDomainRequest", "Preview", "PreviewRequest", "Problem", "Readiness",
     "RecordsRefusedProblem", "RollbackRequest", "ScoreRequest", "ScoreResponse", "Switched", "VersionDetail",
 ]
@@ -34,7 +35,8 @@ class _Doc(BaseModel):
 
 
 Label = str | int  # class labels keep their type: JSON strings or integers
-_ID = Field(default=None, description=f"the record's id when it sent one (at most {MAX_ID_LENGTH} characters)")
+_ID = Field(default=None, description=f"the record's id when it sent one (a string of at most {MAX_ID_LENGTH} "
+            f"characters without control characters, or an integer within ±{MAX_ID_INTEGER})")
 
 
 class Problem(BaseModel):
@@ -53,6 +55,7 @@ class RecordProblem(_Doc):
                        "score for outside_domain")
     reason: Literal[REASONS]  # type: ignore[valid-type]
     allowed: tuple[float, float] | None = Field(description="the allowed range [low, high], inclusive")
+    message: str | None = Field(default=None, description="invalid_id only: which rule the id breaks, with its limit")
 
 
 class NearestSupport(_Doc):
@@ -299,12 +302,32 @@ class PreviewRequest(_Doc):
     version: str = Field(min_length=1, max_length=MAX_NAME_LENGTH, pattern=NAME_PATTERN)
 
 
+_RANGE_BASIS = ("what narrowed allowed ranges were judged on: \"recent inputs: N\" (this worker's recently "
+                "scored records) or \"active version's training range\" (it has none, e.g. after a restart)")
+
+
 class Switched(_Doc):
     model: str
     entry: HistoryEntry
     served_by_this_worker: ServedVersion | None
     load_failure: LoadFailureInfo | None
     undid: Undone | None = Field(default=None, description="rollback only: the activation it undid")
+    range_basis: str | None = Field(
+        default=None, description=f"activation only, null when no version was active to compare with: {_RANGE_BASIS}")
+
+
+class BreakingChangesProblem(_Doc):
+    """409 when activating would break callers of the active version (``/problems/breaking-changes``)."""
+
+    model_config = ConfigDict(extra="allow")
+    type: Literal["/problems/breaking-changes"]
+    title: str
+    status: Literal[409]
+    detail: str
+    error: Literal["BreakingChangeError"]
+    breaking_changes: list[str] = Field(
+        min_length=1, description="each breaking change, one line each, as the contract comparison words it")
+    range_basis: str | None = Field(description=_RANGE_BASIS)
 
 
 class Preview(_Doc):
@@ -340,7 +363,7 @@ class Readiness(_Doc):
 
 
 DOCUMENTED_MODELS = [
-    Problem, RecordsRefusedProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, LiveAt,
+    Problem, RecordsRefusedProblem, BreakingChangesProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, LiveAt,
     ActivateRequest, RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness, OutsideDomainRequest,
     OutsideDomainChoice,
 ]

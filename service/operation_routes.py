@@ -10,8 +10,9 @@ history as the CLI, with the token's name as the actor and ``via: http``) and an
 this worker has switched, so the caller's next request here is served by the
 new version. Other workers and replicas follow within one poll interval.
 Activation compares the contracts of the active version and the candidate on
-this worker's recently scored records and refuses (409, ``breaking-changes``)
-a candidate that would break callers unless ``accept_breaking`` is true.
+this worker's recently scored records (without any, narrowed ranges are judged on the active
+version's training range; ``range_basis`` in the answer says which) and refuses (409,
+``breaking-changes``) a candidate that would break callers unless ``accept_breaking`` is true.
 """
 
 from __future__ import annotations
@@ -70,10 +71,13 @@ def add_operation_routes(app: FastAPI, services: Services) -> None:
         def run() -> dict[str, Any]:
             check_name(model, what="model name")
             verified: list = []
+            compared: list = []
             entry = services.store.activate(model, body.version, reason=body.reason, actor=actor, via="http",
                                             accept_breaking=body.accept_breaking, recent=services.recent.records(model),
-                                            on_verified=verified.append)
-            return _switched(services, model, entry, verified)
+                                            on_verified=verified.append, on_compared=compared.append)
+            # This worker's sample is empty after a restart: say what narrowed ranges were judged on.
+            return {**_switched(services, model, entry, verified),
+                    "range_basis": compared[0].range_basis if compared else None}
 
         return await run_in_threadpool(run)
 

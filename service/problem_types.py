@@ -35,10 +35,11 @@ PROBLEM_TYPES: Mapping[str, ProblemType] = {
     "records-refused": ProblemType(
         422, "Every record was refused",
         "None of the records in the request could be scored: each has a missing, malformed or out-of-range "
-        "feature, a member the model does not know, or an invalid id. The body summarises every problem once "
-        "with the records that have it (refusals), lists the problems of the first records in full (results, "
-        "and a flat list with the record index: problems) and says whether some were left to the summary "
-        "(summarised).",
+        "feature, a member the model does not know, or an invalid id (its message names the rule: at most 128 "
+        "characters, no control characters, integers within plus or minus 2^53 - 1). The body summarises every "
+        "problem once with the records that have it (refusals), lists the problems of the first records in full "
+        "(results, and a flat list with the record index: problems) and says whether some were left to the "
+        "summary (summarised).",
         "Fix the features each problem names. GET /models/{model}/versions/{version}/schema gives each "
         "feature's allowed range; GET /models/{model}/openapi.json gives the whole contract.",
     ),
@@ -124,8 +125,12 @@ PROBLEM_TYPES: Mapping[str, ProblemType] = {
     "breaking-changes": ProblemType(
         409, "The candidate would break callers",
         "Activating the version would break callers of the active one: a feature added or removed, a unit "
-        "changed, a class added or removed, probabilities removed, or an allowed range narrowed so that "
-        "recent inputs would be refused. breaking_changes lists each one. Nothing was changed.",
+        "changed from one unit to another, a class added or removed, probabilities or the domain model "
+        "removed, an allowed range narrowed so that recent inputs would be refused (without recent inputs: so "
+        "that part of the active version's training range would be refused), or a domain model that would "
+        "refuse as outside_domain records the active version scores. breaking_changes lists each one; "
+        "range_basis says what narrowed ranges were judged on (\"recent inputs: N\", this worker's recently "
+        "scored records, or \"active version's training range\"). Nothing was changed.",
         "Tell the callers, then activate again with \"accept_breaking\": true (CLI: --accept-breaking); the "
         "history records what was accepted. POST /models/{model}/preview shows the whole comparison.",
     ),

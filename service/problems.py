@@ -105,6 +105,7 @@ def problem_for_error(exc: RbfgateError) -> ServiceProblem:
             extra: dict[str, Any] = {"error": type(exc).__name__}
             if isinstance(exc, BreakingChangeError):
                 extra["breaking_changes"] = list(exc.changes)
+                extra["range_basis"] = exc.range_basis
             return ServiceProblem(status, kind, title, str(exc), extra=extra, headers=headers)
     # An RbfgateError outside the table is a bug in this table, not the caller's fault.
     _log.error("no HTTP mapping for %s: %s", type(exc).__name__, exc)

@@ -13,6 +13,7 @@ from pathlib import Path
 
 from model_store.api_document import DEFAULT_MAX_RECORDS, api_document
 from model_store.bundle import load_bundle
+from model_store.client_names import client_name_warnings
 from model_store.errors import InputError
 from model_store.inspection import describe, refusal_report_lines, refusal_warning, render_description
 
@@ -171,8 +172,10 @@ def _pack(args) -> int:
 
 
 def _report_written(bundle) -> None:
-    for note in bundle.manifest.training.get("notes", []):
-        print(f"note: {note}", file=sys.stderr)
+    manifest = bundle.manifest
+    warnings = set(client_name_warnings(manifest.feature_names, manifest.classifier.classes))
+    for note in manifest.training.get("notes", []):
+        print(f"{'warning' if note in warnings else 'note'}: {note}", file=sys.stderr)
     print(f"wrote {bundle.source}: {bundle.name} {bundle.version}, digest {bundle.digest}")
     print("checked against scikit-learn on the golden vectors: labels equal, decisions, probabilities and domain "
           "scores within 1e-9")

@@ -16,11 +16,11 @@ import json
 import os
 import pwd
 import sys
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from datetime import datetime, timezone
 from pathlib import Path
 
-from model_store.errors import CsvError, NotFoundError
+from model_store.errors import CsvError, NotFoundError, RbfgateError
 from model_store.refusal import from_text
 from model_store.store import Store, resolve_store_root
 from model_store.store.history import format_time
@@ -58,8 +58,9 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
     parser.add_argument("--reason", metavar="TEXT", required=True, help="why (kept in the history)")
     parser.add_argument("--accept-breaking", action="store_true",
                         help="activate even if the candidate would break callers (the history records what changed)")
-    parser.add_argument("--inputs", metavar="CSV", help="recent inputs: a narrowed range breaks callers only if some "
-                        "of them fall outside it (without inputs, every narrowed range counts as breaking)")
+    parser.add_argument("--inputs", metavar="CSV", help="recent inputs, one column per feature of the active version: "
+                        "a narrowed range breaks callers if some of them fall outside it (without inputs, if it "
+                        "excludes part of the active version's training range)")
     parser = add("rollback", _rollback, "return to the version that was active before the current one", actor=True)
     parser.add_argument("name", metavar="NAME")
     parser.add_argument("--reason", metavar="TEXT", required=True, help="why (kept in the history)")
@@ -81,7 +82,8 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
     parser = add("preview", _preview, "compare a candidate version with the active one; changes nothing")
     parser.add_argument("name", metavar="NAME")
     parser.add_argument("version", metavar="VERSION")
-    parser.add_argument("--inputs", metavar="CSV", help="recent inputs to compare on, one record per row")
+    parser.add_argument("--inputs", metavar="CSV", help="recent inputs to compare on, one record per row and one column "
+                        "per feature of the active version (other columns, such as an id, are ignored)")
     parser = add("prune", _prune, "remove old versions, never the active one or the rollback target", actor=True)
     parser.add_argument("name", metavar="NAME")
     parser.add_argument("--keep", metavar="N", type=count_argument, required=True, help="how many newest versions to keep")
@@ -130,16 +132,54 @@ def default_actor(environ: Mapping[str, str]) -> str:
         return f"uid-{os.getuid()}"
 
 
-def read_preview_inputs(path: Path) -> tuple[list[dict[str, str]], list[int]]:
-    """CSV rows as text records (read as ``rbfgate score`` reads them) and their data-row numbers."""
+def read_preview_inputs(
+    path: Path, features: Sequence[str] | None = None, model: str = "the model"
+) -> tuple[list[dict[str, str]], list[int]]:
+    """CSV rows as text records (read as ``rbfgate score`` reads them) and their data-row numbers.
+
+    With ``features`` (the active version's, named ``model`` in messages), a header that lacks any of
+    them is refused: recent inputs without a feature's column cannot say whether callers stay inside
+    its range, and a file of other columns would otherwise pass as "no recent inputs".
+    """
     records, numbers = [], []
     with CsvFile(path) as rows:
+        if features is not None:
+            _check_columns(path, rows.header, features, model)
         for row in rows:
             if len(row.fields) > len(rows.header):
                 raise CsvError(str(path), f"has {len(row.fields)} fields, the header has {len(rows.header)}", row=row.number)
             records.append(dict(zip(rows.header, row.fields)))
             numbers.append(row.number)
     return records, numbers
+
+
+def _check_columns(path: Path, header: Sequence[str], features: Sequence[str], model: str) -> None:
+    missing = [name for name in features if name not in header]
+    if not missing:
+        return
+    has = ", ".join(header) or "(no columns)"
+    if len(missing) == len(features):
+        raise CsvError(str(path), f"holds none of the feature columns of {model} (expected {', '.join(features)}; "
+                                  f"the header has {has}); give recent inputs with one column per feature, named so")
+    raise CsvError(str(path), f"lacks the feature column(s) {', '.join(missing)} of {model} (the header has {has}); "
+                              "give recent inputs with every feature's column")
+
+
+def _inputs(store: Store, name: str, path: str | None) -> tuple[list[dict[str, str]], list[int]]:
+    """The ``--inputs`` records, checked against the active version's features (nothing to check
+    against when no version is active or its manifest cannot be read: the command itself says so)."""
+    if path is None:
+        return [], []
+    features, model = None, "the model"
+    active = store.active(name)
+    if active is not None:
+        try:
+            _, manifest, _ = store.manifest(name, active.version)
+        except RbfgateError:
+            manifest = None
+        if manifest is not None:
+            features, model = manifest.feature_names, f"{name} {active.version} (the active version)"
+    return read_preview_inputs(Path(path), features, model)
 
 
 def count_argument(text: str) -> int:
@@ -189,12 +229,17 @@ def _versions(args, environ) -> int:
 
 
 def _activate(args, environ) -> int:
-    records, _ = read_preview_inputs(Path(args.inputs)) if args.inputs else ([], [])
-    entry = _store(args, environ).activate(
+    store = _store(args, environ)
+    records, _ = _inputs(store, args.name, args.inputs)
+    compared: list = []
+    entry = store.activate(
         args.name, args.version, reason=args.reason, actor=_actor(args, environ), via="cli",
-        accept_breaking=args.accept_breaking, recent=records, convert=from_text,
+        accept_breaking=args.accept_breaking, recent=records, convert=from_text, on_compared=compared.append,
     )
     print(f"activated {args.name} {entry['version']} (digest {entry['digest']}); history entry seq {entry['seq']}")
+    if compared:
+        print(f"contract compared with the previous active version; narrowed ranges judged on: "
+              f"{compared[0].range_basis}")
     for change in entry.get("accepted_breaking", []):
         print(f"accepted breaking change: {change}")
     return 0
@@ -266,7 +311,7 @@ def _entry_line(entry: dict) -> str:
 
 def _preview(args, environ) -> int:
     store = _store(args, environ)
-    records, numbers = read_preview_inputs(Path(args.inputs)) if args.inputs else ([], [])
+    records, numbers = _inputs(store, args.name, args.inputs)
     report = preview(store, args.name, args.version, records, record_rows=numbers, convert=from_text, allow_extra=True)
     print(report.render_text())
     return 0

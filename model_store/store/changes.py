@@ -31,7 +31,7 @@ from model_store.errors import (
 )
 from model_store.manifest import SIGNATURE_FILE
 from model_store.refusal import Converter, from_json
-from model_store.store.contract import compare_contracts
+from model_store.store.contract import ContractComparison, compare_contracts
 from model_store.naming import check_name
 from model_store.store.durable import atomic_write, fsync_directory
 from model_store.store.files import store_entry_kind
@@ -120,12 +120,15 @@ def activate(
     recent: Sequence[Mapping[str, Any]] = (),
     convert: Converter = from_json,
     on_verified: Callable[[Bundle], None] | None = None,
+    on_compared: Callable[[ContractComparison], None] | None = None,
 ) -> dict[str, Any]:
     """Re-verify the stored bundle and make it the active version; refuse (and record it) if it fails.
 
     A candidate whose contract would break callers of the active version
-    (``model_store.store.contract``; ``recent`` input records judge narrowed ranges) is refused
-    with ``BreakingChangeError`` unless ``accept_breaking``; then the entry lists what was accepted.
+    (``model_store.store.contract``; ``recent`` input records judge narrowed ranges and the domain
+    model) is refused with ``BreakingChangeError`` unless ``accept_breaking``; then the entry lists
+    what was accepted. ``on_compared(comparison)`` is called with the contract comparison when one was
+    made (a version was active and is not the candidate), so a caller can say what it was judged on.
     ``on_verified(bundle)`` is called with the bundle verified for the change once it is committed, so a
     caller that serves it (the service) need not load and verify it a second time.
     """
@@ -138,12 +141,18 @@ def activate(
         digest = _stored_digest(store, state, version)
 
         def check_contract(candidate: Bundle) -> list[str] | None:
-            breaking = _breaking_changes(store, state, candidate, recent, convert)
+            comparison = _comparison(store, state, candidate, recent, convert)
+            if comparison is None:
+                return None
+            if on_compared is not None:
+                on_compared(comparison)
+            breaking = [change.detail for change in comparison.breaking]
             if breaking and not accept_breaking:
                 listed = "; ".join(breaking)
                 _refuse(store, state, "refused-activate", version, digest, reason, BreakingChangeError(
-                    f"{name} {version} would break callers of the active version: {listed}; tell them, then "
-                    "activate with --accept-breaking (HTTP: \"accept_breaking\": true)", tuple(breaking),
+                    f"{name} {version} would break callers of the active version (narrowed ranges judged on: "
+                    f"{comparison.range_basis}): {listed}; tell them, then activate with --accept-breaking "
+                    "(HTTP: \"accept_breaking\": true)", tuple(breaking), comparison.range_basis,
                 ), actor=actor, via=via)
             return breaking or None
 
@@ -280,21 +289,30 @@ def _switch(
     return entry
 
 
-def _breaking_changes(store: "Store", state: ModelState, candidate: Bundle, recent, convert) -> list[str]:
-    """The breaking changes from the active version to ``candidate``, one line each.
+def _comparison(store: "Store", state: ModelState, candidate: Bundle, recent, convert) -> ContractComparison | None:
+    """The contract comparison from the active version to ``candidate``, or None when there is none.
 
     Nothing to compare when no version is active or the candidate is the active one. An active
     version whose manifest cannot be read is not compared either: activating a good version is
     how an operator replaces a damaged one, and the damage is reported by the service already.
+    The active bundle itself is loaded only to score recent inputs with its domain model; when it
+    no longer verifies, the domain model is judged without them.
     """
     active_version = state.active_version()
     if active_version is None or active_version == candidate.version:
-        return []
+        return None
     try:
         _, active, _ = store.manifest(state.name, active_version)
     except (CheckFailedError, InputError):
-        return []
-    return [change.detail for change in compare_contracts(active, candidate.manifest, recent, convert).breaking]
+        return None
+    bundles = None
+    if recent and (active.domain is not None or candidate.manifest.domain is not None):
+        try:
+            bundles = (store.load_verified(state.name, active_version), candidate)
+        except (CheckFailedError, InputError):
+            bundles = None
+    return compare_contracts(active, candidate.manifest, recent, convert, bundles=bundles,
+                             outside_action=store.outside_action(state.name))
 
 
 def _refuse_unverified(store: "Store", source: Path, exc: CheckFailedError, actor: str, via: str) -> NoReturn:

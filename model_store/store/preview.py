@@ -144,7 +144,8 @@ def preview(
         refused_by_active_only=0,
         refused_by_both=0,
         range_changes=_range_changes(active, candidate),
-        contract=compare_contracts(active.manifest, candidate.manifest, records or [], convert),
+        contract=compare_contracts(active.manifest, candidate.manifest, records or [], convert,
+                                   bundles=(active, candidate), outside_action=store.outside_action(name)),
     )
     if same_classes and both:
         report.largest_decision_change = _largest(

@@ -30,6 +30,7 @@ from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, Manifest, parse_
 from model_store.refusal import Converter, from_json
 from model_store.store import changes, domain_choice
 from model_store.store.audit import check_active, check_chain, check_head, check_tail, check_versions, head_position
+from model_store.store.contract import ContractComparison
 from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_file, store_entry_kind
 from model_store.store.folders import binding_problem, read_stored_version, read_stored_versions
 from model_store.store.history import format_time, read_trail
@@ -356,11 +357,12 @@ class Store:
 
     def activate(self, name: str, version: str, *, reason: str, actor: str, via: str = "python",
                  accept_breaking: bool = False, recent: Sequence[Mapping[str, Any]] = (),
-                 convert: Converter = from_json, on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:
+                 convert: Converter = from_json, on_verified: Callable[[Bundle], None] | None = None,
+                 on_compared: Callable[[ContractComparison], None] | None = None) -> dict[str, Any]:
         """See ``changes.activate``: refuses a candidate that breaks callers unless ``accept_breaking``."""
         return changes.activate(self, name, version, reason=reason, actor=actor, via=via,
                                 accept_breaking=accept_breaking, recent=recent, convert=convert,
-                                on_verified=on_verified)
+                                on_verified=on_verified, on_compared=on_compared)
 
     def rollback(self, name: str, *, reason: str, actor: str, via: str = "python",
                  on_verified: Callable[[Bundle], None] | None = None) -> dict[str, Any]:

@@ -165,3 +165,13 @@ def decision_rows(bundle_dirs: list[Path]) -> np.ndarray:
         manifest = json.loads((path / "manifest.json").read_text())
         rows.extend(manifest["golden"]["inputs"])
     return np.asarray(rows, dtype=np.float64)
+
+
+def store_with(root: Path, bundles, active: str) -> Store:
+    """A new store at ``root`` with every bundle published and version ``active`` of each model activated."""
+    store = Store(root, create=True)
+    for bundle in bundles:
+        store.publish(bundle.source, actor="publisher")
+    for name in sorted({bundle.name for bundle in bundles}):
+        store.activate(name, active, reason="first release", actor="alice")
+    return store

@@ -25,11 +25,10 @@ from sklearn.svm import SVC
 
 from model_store.errors import BreakingChangeError
 from model_store.refusal import from_text
-from model_store.store import Store
 from model_store.store.contract import compare_contracts
 from model_store.store.preview import preview
 
-from store_support import FEATURES, REPO
+from store_support import FEATURES, REPO, store_with
 
 _CLASSES = np.array(["setosa", "versicolor", "virginica"])
 
@@ -64,11 +63,7 @@ def versions(tmp_path_factory):
 @pytest.fixture
 def store(tmp_path, versions):
     bundles, _ = versions
-    store = Store(tmp_path / "store", create=True)
-    for bundle in bundles.values():
-        store.publish(bundle.source, actor="publisher")
-    store.activate("iris", "1.0.0", reason="first release", actor="alice")
-    return store
+    return store_with(tmp_path / "store", list(bundles.values()), "1.0.0")
 
 
 def _refused(store, version, **kwargs) -> BreakingChangeError:
@@ -92,10 +87,45 @@ def test_dropping_calibration_is_refused(store):
     assert [change.split(":")[0] for change in error.changes] == ["probability removed"]
 
 
-def test_narrowing_ranges_is_refused_when_no_recent_inputs_show_it_is_safe(store):
-    error = _refused(store, "4.0.0")
-    assert sorted(change.split(":")[0] for change in error.changes) == sorted(f"feature {name}" for name in FEATURES)
-    assert all("no recent inputs" in change for change in error.changes)
+def test_narrowing_to_the_active_training_range_without_recent_inputs_is_not_breaking(store, versions):
+    # 4.0.0 is 1.0.0 exported without a margin: each range is exactly the training [min, max] of 1.0.0,
+    # as a routine retrain narrows them. Nothing the active version was fitted on is refused.
+    bundles, _ = versions
+    assert [list(f.allowed) for f in bundles["4.0.0"].manifest.features] == [
+        [f.training.min, f.training.max] for f in bundles["1.0.0"].manifest.features]
+    entry = store.activate("iris", "4.0.0", reason="retrained, ranges tightened", actor="alice")
+    assert entry["action"] == "activate" and "accepted_breaking" not in entry
+
+
+def test_narrowing_past_the_active_training_range_without_recent_inputs_is_breaking_on_that_basis(versions):
+    bundles, _ = versions
+    active = bundles["1.0.0"].manifest
+    feature = active.features[0]
+    cut = _with_feature(active, allowed=(feature.training.min + 0.1, feature.allowed[1]))
+    [change] = compare_contracts(active, cut).changes
+    assert (change.kind, change.breaking, change.basis) == ("range_narrowed", True, "active version's training range")
+    assert f"[{feature.training.min:g}, {feature.training.max:g}]" in change.detail
+    assert compare_contracts(active, cut).to_dict()["range_basis"] == "active version's training range"
+
+
+def test_training_values_the_active_version_already_refuses_do_not_count_against_a_narrower_range(versions):
+    bundles, _ = versions
+    active = bundles["1.0.0"].manifest
+    training = active.features[0].training
+    # The active version refuses below 5.0 (a range narrower than its training data at the bottom) ...
+    strict = _with_feature(active, allowed=(5.0, active.features[0].allowed[1]))
+    # ... so a candidate that also stops at the training maximum loses nothing it accepted.
+    candidate = _with_feature(active, allowed=(5.0, training.max))
+    [change] = compare_contracts(strict, candidate).changes
+    assert (change.kind, change.breaking) == ("range_narrowed", False)
+
+
+def test_the_range_basis_names_the_recent_inputs_when_there_are_some(versions):
+    bundles, X = versions
+    recent = [dict(zip(FEATURES, row)) for row in X[:7].tolist()]
+    comparison = compare_contracts(bundles["1.0.0"].manifest, bundles["4.0.0"].manifest, recent)
+    assert comparison.to_dict()["range_basis"] == "recent inputs: 7"
+    assert {change.basis for change in comparison.changes} == {"recent inputs: 7"}
 
 
 def test_narrowing_ranges_is_allowed_when_every_recent_input_stays_inside(store, versions):
@@ -153,16 +183,29 @@ def test_the_preview_lists_the_contract_changes(store):
     assert {change["kind"] for change in widened["changes"]} == {"range_widened"} and widened["breaking"] == []
 
 
-def test_class_and_unit_changes_are_breaking(versions):
+def test_class_changes_are_breaking(versions):
     bundles, _ = versions
     active = bundles["1.0.0"].manifest
     fewer = active.model_copy(update={"classifier": active.classifier.model_copy(update={"classes": ["setosa", "versicolor"]})})
-    feature = active.features[0].model_copy(update={"unit": "mm"})
-    other_unit = active.model_copy(update={"features": [feature, *active.features[1:]]})
     kinds = {change.kind: change.breaking for change in compare_contracts(active, fewer).changes}
     assert kinds == {"class_removed": True}
     assert {change.kind: change.breaking for change in compare_contracts(fewer, active).changes} == {"class_added": True}
-    assert [change.kind for change in compare_contracts(active, other_unit).breaking] == ["unit_changed"]
+
+
+def test_one_unit_changed_to_another_is_breaking(versions):
+    bundles, _ = versions
+    in_cm = _with_feature(bundles["1.0.0"].manifest, unit="cm")
+    [change] = compare_contracts(in_cm, _with_feature(in_cm, unit="mm")).changes
+    assert (change.kind, change.active, change.candidate, change.breaking) == ("unit_changed", "cm", "mm", True)
+
+
+def test_a_unit_documented_or_no_longer_documented_is_listed_but_not_breaking(versions):
+    bundles, _ = versions
+    without = bundles["1.0.0"].manifest
+    assert without.features[0].unit is None
+    with_unit = _with_feature(without, unit="cm")
+    assert [(c.kind, c.breaking) for c in compare_contracts(without, with_unit).changes] == [("unit_added", False)]
+    assert [(c.kind, c.breaking) for c in compare_contracts(with_unit, without).changes] == [("unit_removed", False)]
 
 
 def _cli(store, *args):
@@ -219,6 +262,7 @@ def test_a_range_shifted_down_is_narrowed_at_its_top_and_breaks_without_recent_i
     bundles, _ = versions
     active = bundles["1.0.0"].manifest
     low, high = active.features[0].allowed
+    assert high - 0.5 < active.features[0].training.max  # the top cuts into the training range
     shifted = _with_feature(active, allowed=(low - 1.0, high - 0.5))  # wider below, narrower above
     [change] = compare_contracts(active, shifted).changes
     assert (change.kind, change.breaking) == ("range_narrowed", True)
@@ -234,3 +278,33 @@ def test_recent_inputs_the_active_version_already_refuses_do_not_count_against_a
     [change] = compare_contracts(active, narrower, [inside, refused_anyway]).changes
     assert (change.kind, change.breaking, change.recent_refused) == (
         "range_narrowed", False, {"count": 0, "of": 1, "share": 0.0})
+
+
+def _csv(path, header, rows):
+    with open(path, "w", newline="") as handle:
+        csv.writer(handle).writerows([header, *rows])
+    return str(path)
+
+
+@pytest.mark.parametrize("command", [["activate", "iris", "5.0.0", "--reason", "x"], ["preview", "iris", "5.0.0"]])
+def test_inputs_holding_none_of_the_feature_columns_are_refused_naming_the_expected_ones(store, tmp_path, command):
+    inputs = _csv(tmp_path / "recent.csv", ["pallet_id", "weight_kg"], [["p1", "3.5"]])
+    refused = _cli(store, *command, "--inputs", inputs)
+    assert refused.returncode == 2
+    [line] = refused.stderr.splitlines()
+    assert "none of the feature columns of iris 1.0.0" in line and ", ".join(FEATURES) in line
+    assert store.active("iris").version == "1.0.0"
+
+
+def test_inputs_missing_some_feature_columns_are_refused_naming_the_missing_ones(store, tmp_path):
+    inputs = _csv(tmp_path / "recent.csv", FEATURES[:2], [["5.1", "3.5"]])
+    refused = _cli(store, "activate", "iris", "5.0.0", "--reason", "x", "--inputs", inputs)
+    assert refused.returncode == 2
+    [line] = refused.stderr.splitlines()
+    assert f"lacks the feature column(s) {FEATURES[2]}, {FEATURES[3]} of iris 1.0.0" in line
+
+
+def test_cli_activate_says_what_narrowed_ranges_were_judged_on(store):
+    activated = _cli(store, "activate", "iris", "4.0.0", "--reason", "retrained", "--actor", "alice")
+    assert activated.returncode == 0, activated.stderr
+    assert "narrowed ranges judged on: active version's training range" in activated.stdout

@@ -72,9 +72,13 @@ globalThis.rbfClient.start(async ({main, session, page}) => {
     const contract = r.contract;
     report.append(el("h3", {}, "Contract comparison"));
     if (!contract.changes.length) {
-      report.append(el("p", {id: "contract"}, "Unchanged: same features, units, ranges, classes and probabilities."));
+      report.append(el("p", {id: "contract"}, "Unchanged: same features, units, ranges, classes, probabilities and domain model."));
     } else {
-      const shown = (value) => Array.isArray(value) ? `[${value.map((item) => fmt(item)).join(", ")}]` : (value === null ? "-" : String(value));
+      if (contract.range_basis) report.append(el("p", {id: "range-basis"}, `Narrowed ranges judged on: ${contract.range_basis}.`));
+      // Lists are ranges, objects the domain model's thresholds and refuse rate.
+      const shown = (value) => Array.isArray(value) ? `[${value.map((item) => fmt(item)).join(", ")}]`
+        : (value === null ? "-" : (typeof value === "object"
+          ? Object.entries(value).map(([key, item]) => `${key.replace(/_/g, " ")} ${fmt(item)}`).join(", ") : String(value)));
       report.append(table(["change", "active", "candidate", "breaking"], contract.changes.map((change) => [
         el("span", {}, change.kind.replace(/_/g, " "), change.subject === null ? "" : `: ${change.subject}`,
           el("div", {class: "legend-note"}, change.detail)),

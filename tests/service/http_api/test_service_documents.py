@@ -132,3 +132,12 @@ def test_a_model_without_an_active_version_has_only_version_documents(make_clien
     assert response.status_code == 404
     assert "no active version" in response.json()["detail"]
     assert client.get("/models/cancer/versions/1.0.0/openapi.json").status_code == 200
+
+
+def test_the_record_id_has_the_same_limits_in_the_model_document_and_the_record_schema(shared_client):
+    document = _document(shared_client, "/models/iris/openapi.json")["components"]["schemas"]["RecordId"]
+    schema = _document(shared_client, "/models/iris/versions/1.0.0/schema")["properties"]["id"]
+    assert document == schema
+    text, integer = document["anyOf"]
+    assert (integer["minimum"], integer["maximum"]) == (-(2**53 - 1), 2**53 - 1)  # RFC 8259 section 6
+    assert not jsonschema.Draft202012Validator(text).is_valid("P\u00850001")  # NEL: Unicode category Cc

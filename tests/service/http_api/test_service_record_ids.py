@@ -1,16 +1,22 @@
-"""Record ids over HTTP: ``"id"`` (a string or an integer, at most 128 characters) is not a feature; it
-is echoed on its record's result, scored or refused, and beside the record index in the flat problem
-list of an all-refused answer. A bad id refuses only its own record.
+"""Record ids over HTTP: ``"id"`` (a string of at most 128 characters, or an integer) is not a feature;
+it is echoed on its record's result, scored or refused, and beside the record index in the flat
+problem list of an all-refused answer. A bad id refuses only its own record, with a message naming
+the rule it breaks and its limit.
 
-The limit of 128 characters and the types come from the service's contract (README, "Scoring");
-they are the project's own rule, so the tests name them rather than cite a standard.
+The limit of 128 characters and the types come from the service's contract (README, "Scoring"),
+the project's own rule. The integer limit is RFC 8259 section 6: integers in
+[-(2**53)+1, (2**53)-1] are exact in every implementation that uses IEEE 754 doubles. Control
+characters are Unicode general category Cc, read from Python's ``unicodedata`` (the Unicode
+Character Database).
 """
 
 from __future__ import annotations
 
+import unicodedata
+
 import pytest
 
-from model_store.refusal import MAX_ID_LENGTH
+from model_store.refusal import ID_CONTROL_RANGES, MAX_ID_LENGTH, id_problem
 
 from .cases import GOOD_RECORD
 
@@ -59,7 +65,7 @@ def test_an_id_longer_than_128_characters_refuses_that_record_only(shared_client
     assert (ok["status"], ok["id"]) == ("scored", "ok")
 
 
-@pytest.mark.parametrize("record_id", [True, None, 1.5, "", ["a"], {"a": 1}, 10**MAX_ID_LENGTH])
+@pytest.mark.parametrize("record_id", [True, None, 1.5, "", ["a"], {"a": 1}, 10**MAX_ID_LENGTH, 2**53])
 def test_an_id_that_is_not_a_short_string_or_integer_is_refused(shared_client, record_id):
     [result] = _results(shared_client.post("/score/iris", json={"records": [{**GOOD_RECORD, "id": record_id}]}), 422)
     assert [problem["reason"] for problem in result["problems"]] == ["invalid_id"]
@@ -81,3 +87,49 @@ def test_an_id_holding_a_lone_surrogate_is_refused_not_a_server_error(shared_cli
     assert response.status_code == 400, response.text
     assert response.headers["content-type"] == "application/problem+json"
     assert "unpaired UTF-16 surrogate \\ud800" in response.json()["detail"]
+
+
+_EXACT = 2**53 - 1  # RFC 8259 section 6
+
+
+@pytest.mark.parametrize("record_id", [_EXACT, -_EXACT, 0])
+def test_an_integer_id_within_the_exactly_representable_range_is_scored(shared_client, record_id):
+    [result] = _results(shared_client.post("/score/iris", json={"records": [{**GOOD_RECORD, "id": record_id}]}))
+    assert (result["status"], result["id"]) == ("scored", record_id)
+
+
+@pytest.mark.parametrize("record_id", [_EXACT + 1, -_EXACT - 1, 10**40])
+def test_an_integer_id_beyond_2_to_the_53_is_refused_with_the_limit_in_its_message(shared_client, record_id):
+    [result] = _results(shared_client.post("/score/iris", json={"records": [{**GOOD_RECORD, "id": record_id}]}), 422)
+    [problem] = result["problems"]
+    assert problem["reason"] == "invalid_id"
+    assert str(_EXACT) in problem["message"] and "RFC 8259 section 6" in problem["message"]
+
+
+@pytest.mark.parametrize("character", ["\x00", "\t", "\n", "\x1f", "\x7f", "\x85", "\x9f"])
+def test_an_id_holding_a_control_character_is_refused_naming_the_character(shared_client, character):
+    assert unicodedata.category(character) == "Cc"
+    record = {**GOOD_RECORD, "id": f"pallet{character}7"}
+    [problem] = _results(shared_client.post("/score/iris", json={"records": [record]}), 422)[0]["problems"]
+    assert problem["reason"] == "invalid_id"
+    assert f"U+{ord(character):04X} at character 7" in problem["message"] and "Cc" in problem["message"]
+
+
+@pytest.mark.parametrize("character", ["\u00a0", "\u2028", "\u200b", "\u00e9"])
+def test_an_id_holding_other_characters_outside_category_cc_is_scored(shared_client, character):
+    assert unicodedata.category(character) != "Cc"  # Zs, Zl, Cf, Ll
+    [result] = _results(shared_client.post("/score/iris", json={"records": [{**GOOD_RECORD, "id": f"p{character}"}]}))
+    assert result["status"] == "scored"
+
+
+def test_the_control_ranges_are_exactly_unicode_category_cc():
+    cc = [code for code in range(0x110000) if unicodedata.category(chr(code)) == "Cc"]
+    ranged = [code for low, high in ID_CONTROL_RANGES for code in range(low, high + 1)]
+    assert ranged == cc
+
+
+def test_an_id_too_long_says_the_limit_in_its_message(shared_client):
+    record = {**GOOD_RECORD, "id": "x" * (MAX_ID_LENGTH + 1)}
+    [problem] = _results(shared_client.post("/score/iris", json={"records": [record]}), 422)[0]["problems"]
+    assert problem["message"] == id_problem("x" * (MAX_ID_LENGTH + 1))
+    assert f"{MAX_ID_LENGTH + 1} characters" in problem["message"] and f"at most {MAX_ID_LENGTH}" in problem["message"]

@@ -53,9 +53,12 @@ _VALUES = st.one_of(
     st.lists(st.integers(), max_size=2),
 )
 _NAMES = st.sampled_from(["sepal_length_cm", "sepal_width_cm", "petal_length_cm", "petal_width_cm", "colour", "id"])
-# Record ids (the service's rule, model_store.refusal.ID_RULE): strings of 1 to 128 characters or
-# integers of at most 128 digits; each side of both limits.
-_IDS = st.sampled_from(["", "a", "x" * 128, "x" * 129, 10**128 - 1, 10**128, -(10**128 - 1), -(10**128), 0, True])
+# Record ids (the service's rule, model_store.refusal.ID_RULE): strings of 1 to 128 characters
+# without a Unicode category Cc character, or integers within ±(2**53 - 1) (RFC 8259 section 6);
+# each side of every limit, and characters either side of the Cc ranges (U+001F/U+0020,
+# U+007E/U+007F, U+009F/U+00A0), with a final newline (which "$" would let through in Python).
+_IDS = st.sampled_from(["", "a", "x" * 128, "x" * 129, 2**53 - 1, 2**53, -(2**53 - 1), -(2**53), 0, True,
+                        "a\x1f", "a ", "~", "\x7f", "\x9f", "\xa0", "a\n", "\u2028"])
 
 
 @settings(max_examples=300, deadline=None)
