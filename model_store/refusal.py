@@ -191,6 +191,8 @@ def check_records(
                 if broken is not None:
                     found.insert(0, Problem(RECORD_ID, _printable_id(record_id), "invalid_id", None, broken))
                     record_id = None
+                elif isinstance(record_id, float):
+                    record_id = int(record_id)  # 7.0 is the integer 7 in JSON's data model; echo it as one
             record_ids.append(record_id)
         if not allow_extra:
             found.extend(
@@ -227,6 +229,10 @@ def id_problem(value: Any) -> str | None:
             if 0xD800 <= code <= 0xDFFF:  # a lone surrogate (JSON "\ud800") could not be echoed as UTF-8
                 return f"the id holds the lone surrogate U+{code:04X} at character {position}, which UTF-8 cannot carry"
         return None
+    # JSON does not tell 7 from 7.0 (RFC 8259 section 6; JSON Schema 2020-12 counts 7.0 as an
+    # "integer", validation section 6.1.1), so an integral float is the integer it equals.
+    if isinstance(value, float) and value.is_integer():
+        value = int(value)
     if isinstance(value, int) and not isinstance(value, bool):
         if abs(value) > MAX_ID_INTEGER:
             return (f"the integer id is outside -{MAX_ID_INTEGER} to {MAX_ID_INTEGER} (2^53 - 1), beyond which JSON "

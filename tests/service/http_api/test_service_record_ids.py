@@ -92,6 +92,18 @@ def test_an_id_holding_a_lone_surrogate_is_refused_not_a_server_error(shared_cli
 _EXACT = 2**53 - 1  # RFC 8259 section 6
 
 
+@pytest.mark.parametrize("text, echoed", [("-1.0", -1), ("7.0", 7), ("1e2", 100)])
+def test_an_integral_number_with_a_fraction_part_is_the_integer_it_equals(shared_client, text, echoed):
+    # JSON's data model does not tell 7 from 7.0 (RFC 8259 section 6), and JSON Schema 2020-12
+    # counts 7.0 as an "integer" (validation section 6.1.1), so the published schema admits it.
+    body = '{"records": [{"sepal_length_cm": 5.1, "sepal_width_cm": 3.5, "petal_length_cm": 1.4, ' \
+           f'"petal_width_cm": 0.2, "id": {text}}}]}}'
+    response = shared_client.post("/score/iris", content=body.encode(), headers={"Content-Type": "application/json"})
+    [result] = _results(response)
+    assert (result["status"], result["id"]) == ("scored", echoed)
+    assert type(result["id"]) is int
+
+
 @pytest.mark.parametrize("record_id", [_EXACT, -_EXACT, 0])
 def test_an_integer_id_within_the_exactly_representable_range_is_scored(shared_client, record_id):
     [result] = _results(shared_client.post("/score/iris", json={"records": [{**GOOD_RECORD, "id": record_id}]}))
