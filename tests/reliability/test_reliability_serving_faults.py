@@ -267,11 +267,21 @@ def test_a_worker_killed_mid_request_is_replaced_and_no_other_request_fails(tmp_
 
 
 def _gone(pid: int) -> bool:
-    """Exited: no such process, or a zombie whose files the kernel has already closed (proc(5) state Z)."""
+    """Exited with every socket closed: no such process, or only its main thread left, as a zombie.
+
+    A zombie main thread alone is not enough: when a multi-threaded process is killed, its main
+    thread can show state Z (proc(5), /proc/PID/stat) while its other threads are still exiting,
+    and the process's files, its client connections among them, are closed only when the last
+    thread exits. Exited threads leave /proc/PID/task, so a task list holding only the zombie
+    main thread means the files are closed. (Checking the main thread alone let a request sent
+    on a still-open keep-alive connection of the killed worker count as "started after the kill".)
+    """
     try:
-        return open(f"/proc/{pid}/stat").read().rsplit(")", 1)[1].split()[0] == "Z"
+        state = open(f"/proc/{pid}/stat").read().rsplit(")", 1)[1].split()[0]
+        threads = os.listdir(f"/proc/{pid}/task")
     except FileNotFoundError:
         return True
+    return state == "Z" and threads == [str(pid)]
 
 
 def _open_request(port, token, body):
