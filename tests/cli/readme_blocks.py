@@ -15,7 +15,7 @@ import shlex
 from dataclasses import dataclass
 from pathlib import Path
 
-__all__ = ["README", "SHELL_LANGUAGES", "Block", "blocks", "commands", "rbfgate_argvs", "sections"]
+__all__ = ["README", "SHELL_LANGUAGES", "Block", "blocks", "commands", "rbfgate_argvs", "sections", "words"]
 
 README = Path(__file__).resolve().parents[2] / "README.md"
 SHELL_LANGUAGES = frozenset({"sh", "bash", "shell"})
@@ -108,12 +108,10 @@ def rbfgate_argvs(command: str) -> list[list[str]]:
     rest of a line to another program (``kubectl exec POD -- rbfgate ...``). ``.venv/bin/rbfgate``
     counts too. Variables and substitutions are left as written (``$AUDIT_TOKEN``).
     """
-    lexer = shlex.shlex(command.replace("\\\n", " "), posix=True, punctuation_chars=True)
-    lexer.whitespace_split = True
     argvs: list[list[str]] = []
     current: list[str] | None = None
     at_command = True
-    for token in lexer:
+    for token in words(command):
         if token in _SEPARATORS:
             current, at_command = None, True
         elif current is not None:
@@ -128,6 +126,13 @@ def rbfgate_argvs(command: str) -> list[list[str]]:
                 argvs.append(current)
             at_command = False
     return argvs
+
+
+def words(command: str) -> list[str]:
+    """A command line's shell words, with list, pipe and subshell punctuation as words of their own."""
+    lexer = shlex.shlex(command.replace("\\\n", " "), posix=True, punctuation_chars=True)
+    lexer.whitespace_split = True
+    return list(lexer)
 
 
 def _marker_above(lines: list[str], fence_index: int) -> str | None:

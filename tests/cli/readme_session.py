@@ -27,7 +27,7 @@ from pathlib import Path
 
 import httpx
 
-from readme_blocks import rbfgate_argvs
+from readme_blocks import rbfgate_argvs, words
 from tests.process_control import free_port, stop_process_group, wait_until_ok
 
 __all__ = ["CommandFailed", "CurlRequest", "ReadmeSession", "parse_curl"]
@@ -128,8 +128,11 @@ class ReadmeSession:
     def run_python(self, source: str, line: int) -> None:
         script = self.workdir / f".readme-block-{line}.py"
         script.write_text(source, encoding="utf-8")
-        result = subprocess.run([sys.executable, script.name], cwd=self.workdir, env=self.env,
-                                capture_output=True, text=True, timeout=_COMMAND_SECONDS)
+        try:
+            result = subprocess.run([sys.executable, script.name], cwd=self.workdir, env=self.env,
+                                    capture_output=True, text=True, timeout=_COMMAND_SECONDS)
+        except subprocess.TimeoutExpired as exc:
+            raise CommandFailed(f"the python block at README line {line} ran over {_COMMAND_SECONDS} s") from exc
         if result.returncode != 0:
             raise CommandFailed(f"python block exited {result.returncode}\n{result.stdout}{result.stderr}")
 
@@ -153,6 +156,8 @@ class ReadmeSession:
 
     def _serve(self, command: str, argvs: list[list[str]]) -> None:
         [argv] = argvs
+        if words(command) not in ([*words(command)[:1], *argv], [*words(command)[:1], *argv, "&"]):
+            raise CommandFailed(f"a runnable serve line must hold the serve command alone: {command}")
         if "--port" in argv or "--host" in argv:
             raise CommandFailed(f"a runnable serve line must use the default address: {command}")
         self.close()
@@ -160,8 +165,11 @@ class ReadmeSession:
         self.server = subprocess.Popen([str(self.bin_dir / "rbfgate"), *argv], cwd=self.workdir, env=self.env,
                                        stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
         log.close()
-        wait_until_ok(self.server, f"http://127.0.0.1:{self.port}/readyz", timeout=60,
-                      describe=lambda: self._server_log.read_text(errors="replace")[-3000:])
+        try:
+            wait_until_ok(self.server, f"http://127.0.0.1:{self.port}/readyz", timeout=60,
+                          describe=lambda: self._server_log.read_text(errors="replace")[-3000:])
+        except RuntimeError as exc:
+            raise CommandFailed(f"{command}: {exc}") from exc
 
     def _curl(self, command: str) -> None:
         expanded = subprocess.run(["bash", "-c", "printf '%s\\0' " + command.split(None, 1)[1]], cwd=self.workdir,
@@ -172,8 +180,11 @@ class ReadmeSession:
         if not request.url.startswith(README_ORIGIN + "/"):
             raise CommandFailed(f"a runnable curl line must call {README_ORIGIN}: {command}")
         url = f"http://127.0.0.1:{self.port}" + request.url[len(README_ORIGIN):]
-        response = httpx.request(request.method, url, headers=request.headers,
-                                 content=None if request.body is None else request.body.encode(), timeout=60)
+        try:
+            response = httpx.request(request.method, url, headers=request.headers,
+                                     content=None if request.body is None else request.body.encode(), timeout=60)
+        except httpx.HTTPError as exc:
+            raise CommandFailed(f"no answer ({exc!r}) for: {command}") from exc
         if not response.is_success:
             raise CommandFailed(f"HTTP {response.status_code} for: {command}\n{response.text[:2000]}")
         self.last_response = response
