@@ -74,6 +74,8 @@ def parse_curl(words: list[str]) -> CurlRequest:
                 name, _, text = value.partition(":")
                 headers.append((name.strip(), text.strip()))
             elif word in ("-d", "--data", "--data-raw"):
+                if value.startswith("@") and word != "--data-raw":
+                    raise CommandFailed(f"curl {word} @FILE (a body read from a file) is not sent by the README tests")
                 body = value
             else:
                 output = value
@@ -172,7 +174,7 @@ class ReadmeSession:
             raise CommandFailed(f"{command}: {exc}") from exc
 
     def _curl(self, command: str) -> None:
-        expanded = subprocess.run(["bash", "-c", "printf '%s\\0' " + command.split(None, 1)[1]], cwd=self.workdir,
+        expanded = subprocess.run(["bash", "-c", "printf '%s\\0' " + command[len("curl"):]], cwd=self.workdir,
                                   env=self.env, capture_output=True, text=True, timeout=30)
         if expanded.returncode != 0:
             raise CommandFailed(f"bash could not expand: {command}\n{expanded.stderr}")

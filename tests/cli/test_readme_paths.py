@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import pytest
 
 from readme_blocks import README, SHELL_LANGUAGES, Block, blocks, commands
-from readme_session import CommandFailed, ReadmeSession
+from readme_session import CommandFailed, ReadmeSession, parse_curl
 
 _TEXT = README.read_text(encoding="utf-8")
 _BLOCKS = blocks(_TEXT)
@@ -119,3 +119,18 @@ def _differences(shown, real, where: str = "answer") -> list[str]:
     if isinstance(shown, str) and shown.endswith("..."):
         return [] if isinstance(real, str) else [f"{where}: a string shown, {real!r} answered"]
     return [] if (shown == real and type(shown) is type(real)) else [f"{where}: {shown!r} shown, {real!r} answered"]
+
+
+def test_a_curl_line_is_sent_as_curl_sends_it():
+    # curl(1): -d sends a POST with Content-Type application/x-www-form-urlencoded unless -H sets one.
+    request = parse_curl(["-s", "-X", "POST", "http://127.0.0.1:8000/models/m/activate", "-H", "Authorization: Bearer t",
+                          "-d", '{"version": "1"}'])
+    assert (request.method, request.body) == ("POST", '{"version": "1"}')
+    assert request.headers == [("Authorization", "Bearer t"), ("Content-Type", "application/x-www-form-urlencoded")]
+
+
+@pytest.mark.parametrize("words", [["-k", "http://127.0.0.1:8000/"], ["-d", "@body.json", "http://127.0.0.1:8000/"],
+                                   ["http://127.0.0.1:8000/a", "http://127.0.0.1:8000/b"]])
+def test_a_curl_line_the_session_cannot_send_faithfully_fails(words):
+    with pytest.raises(CommandFailed):
+        parse_curl(words)
