@@ -118,11 +118,10 @@ class ReadmeSession:
 
     def run(self, command: str) -> None:
         """Run one logical command line of a README shell block."""
-        words = command.split(None, 1)
         argvs = rbfgate_argvs(command)
         if argvs and argvs[0][:1] == ["serve"]:
             self._serve(command, argvs)
-        elif words and words[0] == "curl":
+        elif command.split(None, 1)[:1] == ["curl"]:
             self._curl(command)
         else:
             self._bash(command)
