@@ -157,7 +157,8 @@ class ReadmeSession:
 
     def _serve(self, command: str, argvs: list[list[str]]) -> None:
         [argv] = argvs
-        if words(command) not in ([*words(command)[:1], *argv], [*words(command)[:1], *argv, "&"]):
+        written = words(command)
+        if written not in ([*written[:1], *argv], [*written[:1], *argv, "&"]):
             raise CommandFailed(f"a runnable serve line must hold the serve command alone: {command}")
         if "--port" in argv or "--host" in argv:
             raise CommandFailed(f"a runnable serve line must use the default address: {command}")
