@@ -105,6 +105,7 @@ class ModelRegistry:
         self._failures: Mapping[str, LoadFailure] = MappingProxyType({})
         self._outside: Mapping[str, tuple[str, str]] = MappingProxyType({})  # name -> (history head, action)
         self._poll_error: str | None = None
+        self._logged_poll_error: str | None = None  # logged once, not on every poll that finds it again
         self._explained: Mapping[str, tuple[str, str, str]] = MappingProxyType({})  # pointers the history explains
         self._unexplained: Mapping[str, str] = MappingProxyType({})  # model -> why its pointer is not followed
         self._followed_seq: Mapping[str, int] = MappingProxyType({})  # the furthest pointer head followed
@@ -195,10 +196,16 @@ class ModelRegistry:
             self._note_poll_error(exc)
             return
         self._poll_error = None  # a refresh below sets it again if a pointer cannot be read
+        try:
+            self._store.check_work_entries()  # a link or FIFO as staging/ or lock: say so, keep serving
+        except RbfgateError as exc:
+            self._note_poll_error(exc)
         for name in names:
             self.refresh(name)
         for gone in (set(self._table) | set(self._pointers) | set(self._unexplained)) - set(names):
             self._lost(gone)
+        if self._poll_error is None:
+            self._logged_poll_error = None  # a problem that comes back is logged again
         self._started = True
 
     def refresh(self, name: str, *, force: bool = False) -> LoadedModel | None:
@@ -373,7 +380,8 @@ class ModelRegistry:
         self._clear_failure(name)
 
     def _note_poll_error(self, exc: RbfgateError) -> None:
-        if self._poll_error != str(exc):
+        if self._logged_poll_error != str(exc):
+            self._logged_poll_error = str(exc)
             _log.error("cannot read the store's active pointers, serving what is loaded: %s", exc)
         self._poll_error = str(exc)
 

@@ -199,7 +199,11 @@ def _guarded(handler, args, *, environ) -> int:
 
 
 def _store(args, environ, *, create: bool = False) -> Store:
-    return Store(resolve_store_root(args.store, environ), create=create)
+    """The store of ``--store``, after refusing a link, FIFO, device or socket in place of its ``staging/`` or
+    ``lock``, so that every command (reading ones too) names it in one line."""
+    store = Store(resolve_store_root(args.store, environ), create=create)
+    store.check_work_entries()
+    return store
 
 
 def _actor(args, environ) -> str:

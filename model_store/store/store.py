@@ -31,7 +31,7 @@ from model_store.refusal import Converter, from_json
 from model_store.store import changes, domain_choice
 from model_store.store.audit import check_active, check_chain, check_head, check_tail, check_versions, head_position
 from model_store.store.contract import ContractComparison
-from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_file, store_entry_kind
+from model_store.store.files import UnsafeStoreEntry, check_tree, check_work_entry, read_store_file, store_entry_kind
 from model_store.store.folders import binding_problem, read_stored_version, read_stored_versions
 from model_store.store.history import format_time, read_trail
 from model_store.store.layout import StoreLayout, model_names, open_layout, require_model, version_names
@@ -220,11 +220,14 @@ class Store:
 
         The hash chain, the pointer's head and active version, every version
         folder against its publish entry (``folders``), every version the
-        trail says is stored, and the trust trail against the settings.
-        Raises ``HistoryError`` naming the first problem. Holds the lock shared,
+        trail says is stored, the trust trail against the settings, and that
+        ``staging/`` and ``lock`` are the store's own (``check_work_entries``).
+        Raises ``HistoryError`` naming the first problem (``UnsafeStoreEntry``, a ``StoreError``, for
+        ``staging/`` or ``lock``: the store itself is unusable). Holds the lock shared,
         so that everything is read at one moment between two changes.
         """
         require_model(self._layout, name)
+        self.check_work_entries()  # a StoreError, as the lock's own check under shared_lock raises
         with shared_lock(self._layout.lock, self.lock_timeout):
             trail = read_trail(self._layout.history(name), name, root=self.root)
             pointer = read_pointer(self._layout.pointer(name), root=self.root)
@@ -242,6 +245,12 @@ class Store:
         check_versions(stored, lines, name, auditing=True)
         check_trail_kept(self._layout, [item.entry for item in lines], name)
         return len(lines)
+
+    def check_work_entries(self) -> None:
+        """``UnsafeStoreEntry`` (a ``StoreError``) naming ``staging/`` or ``lock`` when either is a link, FIFO,
+        device, socket or the wrong kind of entry: rbfgate makes both itself, so that was put there by hand."""
+        check_work_entry(self._layout.staging)
+        check_work_entry(self._layout.lock)
 
     def history_document(self, name: str, *, verify: bool = True) -> dict[str, Any]:
         """What ``history --json`` prints and ``GET /models/{model}/history`` answers: the same keys in both.

@@ -109,3 +109,16 @@ def test_a_real_server_with_two_workers_keeps_serving_when_an_older_pointer_is_p
             [iris] = [m for m in client.get("/readyz").json()["models"] if m["model"] == "iris"]
             assert "older copy of active.json" in iris["unexplained_pointer"]
     assert any('"pointer_unexplained"' in line for line in server.log_lines())
+
+
+def test_a_fifo_in_place_of_the_store_lock_is_reported_by_the_poll_while_scoring_goes_on(make_client, store,
+                                                                                         service_models):
+    client = make_client(store.root)
+    store.layout.lock.unlink(missing_ok=True)
+    os.mkfifo(store.layout.lock)  # opening it for reading would wait for a writer
+    client.app.state.services.registry.refresh_all()
+    ready = client.get("/readyz")
+    assert ready.status_code == 200 and ready.json()["state"] == "degraded"
+    assert f"{store.layout.lock}: the store lock is not a regular file but a FIFO" in ready.json()["store_error"]
+    record = {"records": service_models.iris1.records(service_models.iris1.X[:1])}
+    assert client.post("/score/iris", json=record).status_code == 200
