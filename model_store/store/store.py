@@ -41,7 +41,7 @@ from model_store.store.publishing import PublishOutcome, StepHook, read_record
 from model_store.store.signing import TrustedKey, check_bundle_signature
 from model_store.store.state import activation_stack, stored_versions
 from model_store.store.timeline import LiveAt, live_at
-from model_store.store.trust import check_trail_kept, trust_entries, verified_keys
+from model_store.store.trust import check_trail_kept, check_trust_settled, trust_entries, verified_keys
 
 __all__ = ["Store", "VersionInfo"]
 
@@ -233,6 +233,7 @@ class Store:
             pointer = read_pointer(self._layout.pointer(name), root=self.root)
             stored = read_stored_versions(self._layout, name)
             verified_keys(self._layout)
+            check_trust_settled(self._layout)  # a trust change written to trust.jsonl only: not in force yet
         lines = trail.lines
         if trail.unfinished:
             raise HistoryError(
