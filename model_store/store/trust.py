@@ -25,7 +25,8 @@ every change is refused.
 
 A store made before the trail existed has keys and no ``trust_head``: its keys
 are taken as they are until the next change to the store, which records them
-as ``trust-add`` entries ("recorded when the trust trail began") first. A
+as ``trust-add`` entries ("recorded when the trust trail began") first, with
+that change's actor and via (who added each key, and when, is in the reason). A
 change killed while doing so leaves some of those entries and settings still
 without ``trust_head``; the next change completes it (``trust-recover``).
 Settings without ``trust_head`` in a store whose model histories hold entries
@@ -90,9 +91,12 @@ def recover_trust(layout: StoreLayout, *, now: str, actor: str, via: str) -> Non
     if not state.tracked:
         _check_not_dropped(layout)
         recorded = {item.entry["key_id"] for item in state.lines}
+        # Recorded as what they are: entries written now, by the change that starts the trail (its actor and
+        # via); who added each key, and when, is what the older settings say, kept in the reason.
         drafts = [
-            _draft(now, key.added_by or actor, via, "trust-add", key,
-                   f"{_STARTED}: trusted since {key.added_at or 'an unknown time'}")
+            _draft(now, actor, via, "trust-add", key,
+                   f"{_STARTED}: trusted since {key.added_at or 'an unknown time'}, "
+                   f"added by {key.added_by or 'an unknown actor'}")
             for key in _keys(settings) if key.key_id not in recorded
         ]
         if state.lines or repaired:
@@ -199,9 +203,13 @@ def _commit(layout, settings, lines: list[HistoryLine], drafts: list[dict[str, A
     if written:
         append_entries(layout.trust_trail, written)
     entries = [item.entry for item in lines] + written
+    # A key the settings already trust keeps when and by whom it was added there: for keys recorded when the
+    # trail began, the entry's time and actor are those of the migration, not of the addition.
+    known = {(key.key_id, key.public_key): key for key in _keys(settings)}
+    keys = [known.get((key.key_id, key.public_key), key) for key in _fold(entries)]
     settings = {
         **settings,
-        "trusted_keys": [key.to_dict() for key in _fold(entries)],
+        "trusted_keys": [key.to_dict() for key in keys],
         "trust_head": entries[-1]["hash"] if entries else GENESIS,
         "trust_seq": entries[-1]["seq"] if entries else 0,
     }

@@ -90,6 +90,19 @@ def test_a_store_made_before_the_trust_trail_records_its_keys_at_the_next_change
     assert store.verify_history("iris") == 3
 
 
+def test_keys_recorded_when_the_trust_trail_began_name_the_change_that_recorded_them(signed_store):
+    """The entries are written by the change that starts the trail: its actor and via, not those of whoever
+    added the key long before (who did, and when, stays in the reason and in the settings)."""
+    store, _ = signed_store
+    key = store.trusted_keys()[0]  # added by "admin" via cli
+    _as_before_the_trust_trail(store)
+    store.activate("iris", "1.0.0", reason="re-verify", actor="ops-bob", via="http")
+    [entry] = store.trust_history()
+    assert (entry["actor"], entry["via"]) == ("ops-bob", "http")
+    assert f"trusted since {key.added_at}, added by admin" in entry["reason"]
+    assert store.trusted_keys() == [key]  # when and by whom it was added there is kept
+
+
 def test_a_trust_trail_removed_with_its_head_and_keys_is_refused_not_started_anew(signed_store, bundle_factory):
     """Deleting trust.jsonl, trust_head and the keys makes the store look older than the trail: its model
     histories (entries with via) show it is not, so signatures cannot be switched off that way."""
