@@ -37,6 +37,7 @@ from model_store.store.history import format_time, read_trail
 from model_store.store.layout import StoreLayout, model_names, open_layout, require_model, version_names
 from model_store.store.locking import exclusive_lock, shared_lock
 from model_store.store.pointer import ActiveRecord, read_pointer
+from model_store.store.pointer_repair import PointerRepair, repair_pointer
 from model_store.store.publishing import PublishOutcome, StepHook, read_record
 from model_store.store.signing import TrustedKey, check_bundle_signature
 from model_store.store.state import activation_stack, stored_versions
@@ -157,7 +158,8 @@ class Store:
                     f"history of {name}: the active pointer went back to seq {pointer.history_seq} (version "
                     f"{pointer.version}) after it had recorded seq {followed_seq}, while the trail goes on to seq "
                     f"{trail.lines[-1].seq}; a change only moves it forward, so an older copy of active.json was put "
-                    "back by hand; restore the current one from a backup so that it matches the trail"
+                    "back by hand; restore the current one from a backup so that it matches the trail, or rebuild it "
+                    f"with 'rbfgate repair-pointer {name} --reason TEXT'"
                 )
         check_active(pointer, activation_stack([item.entry for item in trail.lines[: position + 1]]), name)
         return pointer.active_record()
@@ -384,6 +386,10 @@ class Store:
 
     def prune(self, name: str, *, keep: int, actor: str, via: str = "python") -> list[str]:
         return changes.prune(self, name, keep=keep, actor=actor, via=via)
+
+    def repair_pointer(self, name: str, *, reason: str, actor: str, via: str = "python") -> PointerRepair:
+        """See ``pointer_repair.repair_pointer``: rebuild the active pointer from the verified trail."""
+        return repair_pointer(self, name, reason=reason, actor=actor, via=via)
 
     def add_trusted_key(self, public_key: bytes, *, label: str, actor: str, via: str = "python") -> TrustedKey:
         return changes.add_trusted_key(self, public_key, label=label, actor=actor, via=via)

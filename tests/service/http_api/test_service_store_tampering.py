@@ -122,3 +122,14 @@ def test_a_fifo_in_place_of_the_store_lock_is_reported_by_the_poll_while_scoring
     assert f"{store.layout.lock}: the store lock is not a regular file but a FIFO" in ready.json()["store_error"]
     record = {"records": service_models.iris1.records(service_models.iris1.X[:1])}
     assert client.post("/score/iris", json=record).status_code == 200
+
+
+def test_a_pointer_rebuilt_with_repair_pointer_is_followed_again(make_client, store):
+    client = make_client(store.root)
+    store.layout.pointer("iris").write_text('{"version": "2.0.0"')
+    client.app.state.services.registry.refresh_all()
+    assert "not valid" in _unexplained(client)
+    Store(store.root).repair_pointer("iris", reason="restored from backup", actor="ops", via="cli")
+    client.app.state.services.registry.refresh_all()
+    assert client.get("/readyz").status_code == 200
+    assert _serving(client) == "1.0.0" and client.get("/models/iris").json()["unexplained_pointer"] is None
