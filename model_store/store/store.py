@@ -32,7 +32,7 @@ from model_store.store import changes, domain_choice
 from model_store.store.audit import check_active, check_chain, check_head, check_tail, check_versions, head_position
 from model_store.store.contract import ContractComparison
 from model_store.store.files import UnsafeStoreEntry, check_tree, check_work_entry, read_store_file, store_entry_kind
-from model_store.store.folders import binding_problem, read_stored_version, read_stored_versions
+from model_store.store.folders import binding_problem, folder_fingerprint, read_stored_version, read_stored_versions
 from model_store.store.history import format_time, read_trail
 from model_store.store.layout import StoreLayout, model_names, open_layout, require_model, version_names
 from model_store.store.locking import exclusive_lock, shared_lock
@@ -330,6 +330,16 @@ class Store:
             listed = {MANIFEST_FILE, SIGNATURE_FILE, *bundle.manifest.files}
             members = {entry: data for entry, data in members.items() if entry in listed and data is not None}
         return bundle, members
+
+    def check_binding(self, name: str, version: str) -> None:
+        """``HistoryError`` unless the folder of ``version`` holds what its publish entry recorded (folder name,
+        record, manifest and its digest; ``folders``); its arrays are not read (their checksums are checked on
+        every load)."""
+        self._check_binding(name, version)
+
+    def folder_fingerprint(self, name: str, version: str) -> tuple:
+        """Changes whenever what ``check_binding`` reads may have changed (``folders.folder_fingerprint``)."""
+        return folder_fingerprint(self._layout, name, version)
 
     def _check_binding(self, name: str, version: str) -> dict[str, Any]:
         """The publish entry of ``version``, after checking its folder says what that entry recorded."""
