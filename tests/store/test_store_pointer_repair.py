@@ -7,7 +7,9 @@ import json
 import os
 
 import pytest
-from store_support import iris_bundle, run_cli, trail_lines, tree_snapshot, two_releases, write_trail_lines
+from store_support import (
+    iris_bundle, killed_before_the_pointer, run_cli, trail_lines, tree_snapshot, two_releases, write_trail_lines,
+)
 
 from model_store.errors import HistoryError
 from model_store.store import Store
@@ -19,6 +21,13 @@ def store(tmp_path, bundle_factory) -> Store:
     store = two_releases(tmp_path / "store", bundle_factory)
     store.publish(iris_bundle(bundle_factory, "1.2.0", C=4.0), actor="publisher")
     return store
+
+
+def _refused_writing_nothing(store, match: str) -> None:
+    before = tree_snapshot(store.root)
+    with pytest.raises(HistoryError, match=match):
+        store.repair_pointer("iris", reason="fix", actor="carol")
+    assert tree_snapshot(store.root) == before
 
 
 def _pointer(store) -> dict:
@@ -81,11 +90,8 @@ def test_a_pointer_that_agrees_with_the_trail_is_left_alone(store):
 
 def test_a_trail_cut_short_is_not_hidden_by_a_rebuilt_pointer(store):
     write_trail_lines(store, "iris", trail_lines(store, "iris")[:-1])  # the pointer's head was the cut entry
-    before = tree_snapshot(store.root)
-    with pytest.raises(HistoryError, match="hash of no entry of the trail .* it is the only evidence, so it is not "
-                                           "rebuilt: restore history.jsonl"):
-        store.repair_pointer("iris", reason="fix", actor="carol")
-    assert tree_snapshot(store.root) == before
+    _refused_writing_nothing(store, "hash of no entry of the trail .* it is the only evidence, so it is not rebuilt: "
+                                    "restore history.jsonl")
 
 
 def test_an_edited_entry_refuses_the_repair_and_writes_nothing(store):
@@ -94,10 +100,7 @@ def test_an_edited_entry_refuses_the_repair_and_writes_nothing(store):
     lines[2] = json.dumps({**entry, "reason": "nothing to see"}, sort_keys=True).encode()
     write_trail_lines(store, "iris", lines)
     store.layout.pointer("iris").unlink()
-    before = tree_snapshot(store.root)
-    with pytest.raises(HistoryError, match="entry seq 3 .* was edited"):
-        store.repair_pointer("iris", reason="fix", actor="carol")
-    assert tree_snapshot(store.root) == before
+    _refused_writing_nothing(store, "entry seq 3 .* was edited")
 
 
 def test_a_swapped_version_folder_refuses_the_repair_and_writes_nothing(store):
@@ -106,10 +109,7 @@ def test_a_swapped_version_folder_refuses_the_repair_and_writes_nothing(store):
     os.rename(versions / "1.2.0", versions / "1.0.0")
     os.rename(versions / "swap", versions / "1.2.0")
     store.layout.pointer("iris").unlink()
-    before = tree_snapshot(store.root)
-    with pytest.raises(HistoryError, match="version folders were swapped"):
-        store.repair_pointer("iris", reason="fix", actor="carol")
-    assert tree_snapshot(store.root) == before
+    _refused_writing_nothing(store, "version folders were swapped")
 
 
 def test_the_command_prints_what_it_rebuilt_and_history_verifies_after_it(store):
@@ -134,15 +134,7 @@ def test_the_command_refuses_in_one_line_with_exit_1(store):
 
 
 def test_a_pointer_one_interrupted_command_behind_is_completed_not_rebuilt(store, monkeypatch):
-    from model_store.store import recovery
-
-    def killed(*args, **kwargs):
-        raise KeyboardInterrupt  # the activation dies after its entry, before it moves the pointer
-
-    monkeypatch.setattr(recovery, "write_pointer", killed)
-    with pytest.raises(KeyboardInterrupt):
-        store.activate("iris", "1.2.0", reason="rollout", actor="alice")
-    monkeypatch.undo()
+    killed_before_the_pointer(monkeypatch, lambda: store.activate("iris", "1.2.0", reason="rollout", actor="alice"))
     repair = store.repair_pointer("iris", reason="after the crash", actor="carol")
     assert repair.entry is None  # a crash state: completed as by any change, nothing to rebuild
     assert store.history("iris")[-1]["action"] == "recover" and _pointer(store)["version"] == "1.2.0"
