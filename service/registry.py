@@ -336,7 +336,8 @@ class ModelRegistry:
         """Keep serving the last verified bundle of ``name`` (if any); report it not ready, saying why."""
         loaded = self._table.get(name)
         serving = ("no verified bundle of it is loaded in this worker" if loaded is None else
-                   f"serving the bundle of {loaded.version} (digest {loaded.digest[:16]}...) verified when it was loaded")
+                   f"serving the bundle of {loaded.version} (digest {loaded.digest[:16]}...) verified when it was "
+                   "loaded")
         reason = (f"the folder of {version}, the active version, does not hold what its publish entry recorded "
                   f"({exc}); {serving}")
         if self._unbound.get(name) != reason:

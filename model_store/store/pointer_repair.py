@@ -112,7 +112,8 @@ def _pointer_problem(layout: StoreLayout, name: str, lines: list[HistoryLine]) -
             f"{pointer.history_seq}, the hash of no entry of the trail (which {ends}): entries were removed from the "
             "trail's end or rewritten, history.jsonl is older than active.json, or active.json was edited; it is the "
             "only evidence, so it is not rebuilt: restore history.jsonl (or both files) from a backup, or, once the "
-            f"trail is checked against a copy kept elsewhere, remove active.json and run 'rbfgate repair-pointer {name}'"
+            "trail is checked against a copy kept elsewhere, remove active.json and run "
+            f"'rbfgate repair-pointer {name}'"
         )
     try:
         if position < len(lines) - 1:

@@ -168,7 +168,8 @@ def _interrupted_change(lines: list[HistoryLine], position: int, settings: dict[
 
 def _describe(entry: dict[str, Any]) -> str:
     key = f" of key {entry['key_id']}" if "key_id" in entry else ""
-    return f"seq {entry['seq']} ({entry['action']}{key} by {entry['actor']} via {entry.get('via') or '-'} at {entry['time']})"
+    return (f"seq {entry['seq']} ({entry['action']}{key} by {entry['actor']} via {entry.get('via') or '-'} "
+            f"at {entry['time']})")
 
 
 def check_trail_kept(layout: StoreLayout, entries: list[dict[str, Any]], model: str) -> None:

@@ -391,8 +391,9 @@ def test_metrics_answer_the_live_workers_when_a_multiprocess_file_is_damaged(tmp
         with server.client() as client:
             wait_until(lambda: len(worker_pids(server.process.pid)) == 2, "both workers to start")
             directory = _metrics_directory(worker_pids(server.process.pid)[0])
+            body = {"records": service_models.iris1.records(rows)}
             for _ in range(4):
-                assert client.post("/score/iris", json={"records": service_models.iris1.records(rows)}).status_code == 200
+                assert client.post("/score/iris", json=body).status_code == 200
             wait_until(lambda: glob.glob(os.path.join(directory, "counter_*.db")), "a worker to write its counters")
             written = open(sorted(glob.glob(os.path.join(directory, "counter_*.db")))[0], "rb").read()
             # As a worker killed while its disk was full leaves it: a pid no process has (above pid_max, proc(5)).
