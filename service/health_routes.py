@@ -4,7 +4,9 @@
 model with an active version has a verified version loaded in this worker
 (``"state": "degraded"`` when an older version keeps serving because the
 active one failed its checks, or the store could not be read on the last
-poll), and 503 problem details while some active model has nothing loaded.
+poll), and 503 problem details while some active model has nothing loaded, its
+pointer is not explained by its history, or the folder of its active version
+does not hold what its publish entry recorded.
 Orchestrators treat 2xx as ready (common practice, e.g. Kubernetes probes).
 """
 
@@ -39,11 +41,15 @@ def add_health_routes(app: FastAPI, services: Services) -> None:
         if not is_ready:
             missing = [entry["model"] for entry in report["models"] if entry["serving"] is None]
             unexplained = [entry["model"] for entry in report["models"] if entry["unexplained_pointer"]]
+            unbound = [entry["model"] for entry in report["models"] if entry["folder_mismatch"]]
             reasons = [
                 *([f"the active pointer of {', '.join(unexplained)} is not explained by its history, see "
                    "unexplained_pointer"] if unexplained else []),
+                *([f"the folder of the active version of {', '.join(unbound)} does not hold what its publish entry "
+                   "recorded, see folder_mismatch"] if unbound else []),
                 *([f"no verified version loaded yet for {', '.join(missing)}"] if missing else []),
-                *([report["store_error"]] if report["store_error"] and not (missing or unexplained) else []),
+                *([report["store_error"]]
+                  if report["store_error"] and not (missing or unexplained or unbound) else []),
             ]
             detail = "; ".join(reasons) or "the models are still loading"
             raise ServiceProblem(503, "not-ready", "Not ready", detail, extra=report, headers={"Retry-After": "1"})

@@ -7,6 +7,11 @@ values to files there and ``/metrics`` on any worker aggregates all of them
 (prometheus-client's multiprocess mode). Gauges use the ``livemax`` mode: a
 version shows as active while any live worker serves it.
 
+Files in that directory that cannot be read (truncated by a full disk, damaged,
+or put there by something else) are left out of ``/metrics`` and named once in
+the log, so that one bad file never turns the whole answer into a 500: the
+metrics of every readable file, the live workers' among them, are answered.
+
 Label values come only from names the service has checked (model names and
 versions from the store, feature names from the manifest, fixed outcomes and
 route templates), never from raw request text, so a caller cannot inflate the
@@ -15,12 +20,17 @@ number of series.
 
 from __future__ import annotations
 
+import glob
+import json
+import logging
 import os
+import struct
 from collections.abc import Iterable
 
 import numpy as np
 from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 from prometheus_client import multiprocess
+from prometheus_client.mmap_dict import MmapedDict
 
 __all__ = ["DISTANCE_BUCKETS", "TRAFFIC_KEYS", "ServiceMetrics"]
 
@@ -31,6 +41,8 @@ DISTANCE_BUCKETS = (0.125, 0.25, 0.5, 1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.0)
 _PERCENTILE_BUCKETS = (10.0, 25.0, 50.0, 75.0, 90.0, 95.0, 99.0, 100.0)
 TRAFFIC_KEYS = ("requests", "scored", "refused", "typical", "unusual", "outside")
 _METHODS = frozenset({"GET", "POST", "PUT", "PATCH", "DELETE", "HEAD", "OPTIONS"})
+_FILE_KINDS = frozenset({"counter", "gauge", "histogram", "summary"})  # prometheus-client's file name prefixes
+_log = logging.getLogger("rbfgate.service")
 
 
 class ServiceMetrics:
@@ -38,6 +50,7 @@ class ServiceMetrics:
 
     def __init__(self, multiprocess_dir: str | None = None) -> None:
         self.multiprocess_dir = multiprocess_dir
+        self._files = None if multiprocess_dir is None else _ReadableFiles(multiprocess_dir)
         self._registry = CollectorRegistry()
         registry = self._registry
         self.http_requests = Counter(
@@ -163,9 +176,7 @@ class ServiceMetrics:
     def _collected(self):
         if self.multiprocess_dir is None:
             return self._registry.collect()
-        registry = CollectorRegistry()
-        multiprocess.MultiProcessCollector(registry, path=self.multiprocess_dir)
-        return registry.collect()
+        return self._files.collect()
 
     def render(self) -> tuple[bytes, str]:
         """The exposition text and its content type."""
@@ -173,13 +184,68 @@ class ServiceMetrics:
             return generate_latest(self._registry), CONTENT_TYPE_LATEST
         _forget_dead_workers(self.multiprocess_dir)
         registry = CollectorRegistry()
-        multiprocess.MultiProcessCollector(registry, path=self.multiprocess_dir)
+        registry.register(self._files)
         return generate_latest(registry), CONTENT_TYPE_LATEST
 
     def worker_exited(self) -> None:
         """Drop this worker's live gauges (multiprocess mode only)."""
         if self.multiprocess_dir is not None:
             multiprocess.mark_process_dead(os.getpid(), path=self.multiprocess_dir)
+
+
+class _ReadableFiles:
+    """prometheus-client's multiprocess merge over the files of ``directory`` that can be read whole.
+
+    ``MultiProcessCollector`` raises on the first file it cannot parse (a truncated header is a
+    ``struct.error``, a cut entry a ``RuntimeError``, a damaged key a ``ValueError``), which made
+    ``/metrics`` answer 500 for as long as the file stayed. Each file is read through once here
+    (they are small: 64 KiB as created), and the bad ones are left out and logged once each (again
+    only when the file changes).
+    """
+
+    def __init__(self, directory: str) -> None:
+        self._directory = directory
+        self._reported: set[tuple[str, int, int]] = set()
+
+    def collect(self):
+        for _ in range(2):  # a file forgotten (deleted) between the check and the merge: check again, once
+            files = [path for path in sorted(glob.glob(os.path.join(self._directory, "*.db"))) if self._readable(path)]
+            try:
+                return multiprocess.MultiProcessCollector.merge(files, accumulate=True)
+            except FileNotFoundError:
+                continue
+        return multiprocess.MultiProcessCollector.merge([], accumulate=True)
+
+    def _readable(self, path: str) -> bool:
+        try:
+            _check_file(path)
+            return True
+        except FileNotFoundError:
+            return False  # a dead worker's live gauges, forgotten meanwhile
+        except (OSError, RuntimeError, ValueError, IndexError, TypeError, struct.error) as exc:
+            try:
+                found = os.stat(path)
+                seen = (path, found.st_size, found.st_mtime_ns)
+            except OSError:
+                seen = (path, -1, -1)
+            if seen not in self._reported:
+                self._reported.add(seen)
+                _log.error("metrics: left out %s, which cannot be read as a prometheus-client multiprocess file "
+                           "(%s); the other files' metrics are answered; remove it if no live worker writes it",
+                           path, exc)
+            return False
+
+
+def _check_file(path: str) -> None:
+    """Read ``path`` through as ``MultiProcessCollector`` will: the name says the kind (and, for a gauge, the
+    mode and the pid), the used length fits the file, and each entry's key is the JSON list it writes."""
+    kind, *rest = os.path.basename(path).removesuffix(".db").split("_")
+    if kind not in _FILE_KINDS or (kind == "gauge" and (len(rest) != 2 or not rest[1].isdigit())):
+        raise ValueError("the file name is not one prometheus-client makes")
+    for key, _value, _timestamp, _position in MmapedDict.read_all_values_from_file(path):
+        metric_name, name, labels, help_text = json.loads(key)
+        if not (isinstance(metric_name, str) and isinstance(name, str) and isinstance(labels, dict)):
+            raise ValueError(f"entry {key[:60]!r} is not [metric, sample, labels, help]")
 
 
 def _forget_dead_workers(directory: str) -> None:

@@ -168,6 +168,7 @@ def _model_summary(services: Services, name: str) -> dict[str, Any]:
         "served_by_this_worker": None if serving is None else {"version": serving.version, "bundle_sha256": serving.digest},
         "load_failure": None if failure is None else failure.to_dict(),
         "unexplained_pointer": services.registry.unexplained(name),
+        "folder_mismatch": services.registry.folder_mismatch(name),
     }
 
 

@@ -168,6 +168,9 @@ class ModelSummary(_Doc):
     load_failure: LoadFailureInfo | None
     unexplained_pointer: str | None = Field(
         description="why this worker does not follow the pointer (its history does not explain it), or null")
+    folder_mismatch: str | None = Field(
+        description="why the active version's folder is not served (it does not hold what its publish entry "
+                    "recorded), or null")
 
 
 class ModelList(_Doc):
@@ -347,6 +350,7 @@ class ReadyModel(_Doc):
     serving: ServedVersion | None
     failure: LoadFailureInfo | None
     unexplained_pointer: str | None
+    folder_mismatch: str | None
 
 
 class TokensStatus(_Doc):

@@ -20,6 +20,13 @@ followed: the last verified version keeps serving, and the model is reported
 not ready with the reason (``/readyz``, ``/models/{model}``). A poll that
 runs past its deadline (a hung read on a network filesystem) also makes the
 worker not ready; tokens are refreshed by their own thread, never behind it.
+The folder of the version being served must go on holding what its publish
+entry recorded (``Store.check_binding``: folder name, record, manifest and
+its digest), checked again on a poll whenever ``lstat`` shows that one of
+those entries changed: a folder swapped, copied over or edited under a
+running worker is reported (not ready, ``folder_mismatch``) while the bundle
+verified when it was loaded keeps serving; a version whose folder fails the
+check when it is loaded is never served, and reported the same way.
 The operators' outside-domain choice (refuse or flag) lives in the history;
 the pointer's history head moves with every entry, so the trail is read
 again only when the head has moved.
@@ -105,9 +112,12 @@ class ModelRegistry:
         self._failures: Mapping[str, LoadFailure] = MappingProxyType({})
         self._outside: Mapping[str, tuple[str, str]] = MappingProxyType({})  # name -> (history head, action)
         self._poll_error: str | None = None
+        self._logged_poll_error: str | None = None  # logged once, not on every poll that finds it again
         self._explained: Mapping[str, tuple[str, str, str]] = MappingProxyType({})  # pointers the history explains
         self._unexplained: Mapping[str, str] = MappingProxyType({})  # model -> why its pointer is not followed
         self._followed_seq: Mapping[str, int] = MappingProxyType({})  # the furthest pointer head followed
+        self._unbound: Mapping[str, str] = MappingProxyType({})  # model -> why its active folder is not as published
+        self._bound: Mapping[str, tuple] = MappingProxyType({})  # model -> (version, fingerprint) found bound
         self._poll_started: float | None = None
         self._started = False
         self._refresh_lock = threading.RLock()
@@ -129,6 +139,11 @@ class ModelRegistry:
         """Why this worker does not follow ``name``'s pointer (the history does not explain it), or None."""
         return self._unexplained.get(name)
 
+    def folder_mismatch(self, name: str) -> str | None:
+        """Why the folder of ``name``'s active version is not served: it does not hold what its publish entry
+        recorded (swapped, copied over or edited by hand), or None."""
+        return self._unbound.get(name)
+
     def poll_overrun(self) -> str | None:
         """Set while the current store poll has run past its deadline (a store read hangs)."""
         started = self._poll_started
@@ -147,10 +162,12 @@ class ModelRegistry:
 
     def readiness(self) -> tuple[bool, dict]:
         """(ready, report): ready when every model with an active pointer has a loaded version that the
-        verified history explains, and the store poll is not stuck past its deadline."""
+        verified history explains, whose folder still holds what was published, and the store poll is not
+        stuck past its deadline."""
         table, pointers, failures, unexplained = self._table, self._pointers, self._failures, self._unexplained
+        unbound = self._unbound
         models = []
-        for name in sorted(set(pointers) | set(unexplained)):
+        for name in sorted(set(pointers) | set(unexplained) | set(unbound)):
             loaded = table.get(name)
             failure = failures.get(name)
             pointer = pointers.get(name)
@@ -160,11 +177,13 @@ class ModelRegistry:
                 "serving": None if loaded is None else {"version": loaded.version, "bundle_sha256": loaded.digest},
                 "failure": None if failure is None else failure.to_dict(),
                 "unexplained_pointer": unexplained.get(name),
+                "folder_mismatch": unbound.get(name),
             })
         overrun = self.poll_overrun()
         ready = (
             self._started and overrun is None
-            and all(entry["serving"] is not None and entry["unexplained_pointer"] is None for entry in models)
+            and all(entry["serving"] is not None and entry["unexplained_pointer"] is None
+                    and entry["folder_mismatch"] is None for entry in models)
         )
         degraded = bool(failures) or self._poll_error is not None
         status = "ready" if ready and not degraded else ("degraded" if ready else "not_ready")
@@ -195,10 +214,16 @@ class ModelRegistry:
             self._note_poll_error(exc)
             return
         self._poll_error = None  # a refresh below sets it again if a pointer cannot be read
+        try:
+            self._store.check_work_entries()  # a link or FIFO as staging/ or lock: say so, keep serving
+        except RbfgateError as exc:
+            self._note_poll_error(exc)
         for name in names:
             self.refresh(name)
         for gone in (set(self._table) | set(self._pointers) | set(self._unexplained)) - set(names):
             self._lost(gone)
+        if self._poll_error is None:
+            self._logged_poll_error = None  # a problem that comes back is logged again
         self._started = True
 
     def refresh(self, name: str, *, force: bool = False) -> LoadedModel | None:
@@ -224,6 +249,7 @@ class ModelRegistry:
             current = self._table.get(name)
             if current is not None and (current.version, current.digest) == target:
                 self._clear_failure(name)
+                self._check_live_folder(name, current)
                 return current
             failure = self._failures.get(name)
             if (
@@ -285,6 +311,41 @@ class ModelRegistry:
             self._on_event({"event": "pointer_unexplained", "model": name, "version": version, "detail": str(exc)})
         self._unexplained = MappingProxyType({**self._unexplained, name: reason})
 
+    def _check_live_folder(self, name: str, loaded: LoadedModel) -> None:
+        """Check again that the folder of the version being served holds what its publish entry recorded, when
+        ``lstat`` says something it reads changed since the last check (a few ``lstat`` calls otherwise)."""
+        try:
+            fingerprint = self._store.folder_fingerprint(name, loaded.version)
+        except RbfgateError as exc:
+            self._note_poll_error(exc)
+            return
+        if self._bound.get(name) == (loaded.version, fingerprint):
+            return
+        try:
+            self._store.check_binding(name, loaded.version)
+        except HistoryError as exc:
+            self._mark_unbound(name, loaded.version, exc)
+            return
+        except RbfgateError as exc:  # an OS error reading the folder: perhaps passing, tried again next poll
+            self._note_poll_error(exc)
+            return
+        self._bound = MappingProxyType({**self._bound, name: (loaded.version, fingerprint)})
+        self._unbound = MappingProxyType({key: value for key, value in self._unbound.items() if key != name})
+
+    def _mark_unbound(self, name: str, version: str, exc: HistoryError) -> None:
+        """Keep serving the last verified bundle of ``name`` (if any); report it not ready, saying why."""
+        loaded = self._table.get(name)
+        serving = ("no verified bundle of it is loaded in this worker" if loaded is None else
+                   f"serving the bundle of {loaded.version} (digest {loaded.digest[:16]}...) verified when it was "
+                   "loaded")
+        reason = (f"the folder of {version}, the active version, does not hold what its publish entry recorded "
+                  f"({exc}); {serving}")
+        if self._unbound.get(name) != reason:
+            _log.error("not serving the folder of %s %s: %s", name, version, reason)
+            self._on_event({"event": "folder_mismatch", "model": name, "version": version, "detail": str(exc)})
+        self._unbound = MappingProxyType({**self._unbound, name: reason})
+        self._bound = MappingProxyType({key: value for key, value in self._bound.items() if key != name})
+
     def _pointer_gone(self, name: str) -> LoadedModel | None:
         """No pointer: a model not activated yet, or (beside a trail) a pointer deleted by hand."""
         try:
@@ -319,6 +380,8 @@ class ModelRegistry:
                 )
         except Exception as exc:  # noqa: BLE001 - whatever a bundle does, the old version keeps serving
             self._record_failure(name, version, digest, exc)
+            if isinstance(exc, HistoryError):  # the folder is not what was published (the pointer was explained)
+                self._mark_unbound(name, version, exc)
             return current
         return self._install(name, bundle, current, load_seconds=self._clock() - started)
 
@@ -326,6 +389,8 @@ class ModelRegistry:
         loaded = LoadedModel(name, bundle.version, bundle.digest, bundle, _now())
         self._table = MappingProxyType({**self._table, name: loaded})  # the switch: one assignment
         self._clear_failure(name)
+        self._unbound = MappingProxyType({key: value for key, value in self._unbound.items() if key != name})
+        self._bound = MappingProxyType({key: value for key, value in self._bound.items() if key != name})
         old = None if current is None else (current.version, current.digest)
         self._metrics.switched(name, old, (bundle.version, bundle.digest))
         self._on_event({"event": "switch", "model": name, "version": bundle.version, "bundle_sha256": bundle.digest,
@@ -366,6 +431,7 @@ class ModelRegistry:
 
     def _drop(self, name: str) -> None:
         self._unexplained = MappingProxyType({key: value for key, value in self._unexplained.items() if key != name})
+        self._unbound = MappingProxyType({key: value for key, value in self._unbound.items() if key != name})
         if name not in self._table and name not in self._pointers and name not in self._failures:
             return
         self._table = MappingProxyType({key: value for key, value in self._table.items() if key != name})
@@ -373,7 +439,8 @@ class ModelRegistry:
         self._clear_failure(name)
 
     def _note_poll_error(self, exc: RbfgateError) -> None:
-        if self._poll_error != str(exc):
+        if self._logged_poll_error != str(exc):
+            self._logged_poll_error = str(exc)
             _log.error("cannot read the store's active pointers, serving what is loaded: %s", exc)
         self._poll_error = str(exc)
 

@@ -1,4 +1,5 @@
-"""Store commands: publish, versions, activate, rollback, outside-domain, history, preview, prune, keygen, sign, trust.
+"""Store commands: publish, versions, activate, rollback, outside-domain, history, preview, prune, repair-pointer,
+keygen, sign, trust.
 
 Every command that reads or changes a store takes ``--store DIR``; without
 it the store is ``$RBFGATE_STORE``, else ``$XDG_DATA_HOME/rbfgate/store``,
@@ -87,6 +88,11 @@ def register(subparsers, environ: Mapping[str, str] | None = None) -> None:
     parser = add("prune", _prune, "remove old versions, never the active one or the rollback target", actor=True)
     parser.add_argument("name", metavar="NAME")
     parser.add_argument("--keep", metavar="N", type=count_argument, required=True, help="how many newest versions to keep")
+    parser = add("repair-pointer", _repair_pointer, "rebuild a model's active pointer (active.json) from its verified "
+                 "history, when it is missing or disagrees with the history (say, after a restore from a backup); "
+                 "refused, changing nothing, while anything else fails verification", actor=True)
+    parser.add_argument("name", metavar="NAME")
+    parser.add_argument("--reason", metavar="TEXT", required=True, help="why (kept in the history)")
     parser = add("keygen", _keygen, "create an Ed25519 key pair PREFIX.key (secret) and PREFIX.pub", store=False)
     parser.add_argument("--out", metavar="PREFIX", required=True, help="path prefix of the two key files")
     parser = add("sign", _sign, "verify a bundle and sign its digest (signature.json beside the manifest)", store=False)
@@ -199,7 +205,11 @@ def _guarded(handler, args, *, environ) -> int:
 
 
 def _store(args, environ, *, create: bool = False) -> Store:
-    return Store(resolve_store_root(args.store, environ), create=create)
+    """The store of ``--store``, after refusing a link, FIFO, device or socket in place of its ``staging/`` or
+    ``lock``, so that every command (reading ones too) names it in one line."""
+    store = Store(resolve_store_root(args.store, environ), create=create)
+    store.check_work_entries()
+    return store
 
 
 def _actor(args, environ) -> str:
@@ -320,6 +330,20 @@ def _preview(args, environ) -> int:
 def _prune(args, environ) -> int:
     removed = _store(args, environ).prune(args.name, keep=args.keep, actor=_actor(args, environ), via="cli")
     print(f"removed from {args.name}: {', '.join(removed)}" if removed else f"nothing to remove from {args.name}")
+    return 0
+
+
+def _repair_pointer(args, environ) -> int:
+    store = _store(args, environ)
+    repair = store.repair_pointer(args.name, reason=args.reason, actor=_actor(args, environ), via="cli")
+    if repair.entry is None:
+        print(f"nothing to repair: the active pointer of {args.name} is what its verified history leads to")
+        return 0
+    entry = repair.entry
+    names = f"version {entry['version']} (digest {entry['digest']})" if entry["version"] else "no active version"
+    print(f"rebuilt the active pointer of {args.name}: it names {names}, as the verified history says; "
+          f"history entry seq {entry['seq']}")
+    print(f"found: {repair.found}")
     return 0
 
 

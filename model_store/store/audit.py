@@ -27,7 +27,8 @@ from model_store.store.state import Step, stored_versions
 __all__ = ["check_active", "check_chain", "check_head", "check_tail", "check_versions", "head_position"]
 
 _RESTORE = "restore history.jsonl from a backup and investigate who changed it"
-_POINTER_RESTORE = "restore active.json from a backup so that it matches the trail, and investigate who changed it"
+_POINTER_RESTORE = ("restore active.json from a backup so that it matches the trail, or rebuild it from the verified "
+                    "trail with 'rbfgate repair-pointer {model} --reason TEXT', and investigate who changed it")
 
 
 def check_chain(lines: list[HistoryLine], model: str, head: str | None, *, restore: str = _RESTORE) -> None:
@@ -112,7 +113,8 @@ def check_head(lines: list[HistoryLine], pointer: Pointer | None, model: str) ->
             raise HistoryError(
                 f"history of {model}: the trail has {len(lines)} entries but active.json, which records its "
                 "last hash, is missing; a model has its pointer before its first entry, so it was deleted; "
-                "restore active.json from a backup and investigate who deleted it"
+                f"restore active.json from a backup or rebuild it with 'rbfgate repair-pointer {model} --reason "
+                "TEXT', and investigate who deleted it"
             )
         return
     last = lines[-1].entry["hash"] if lines else GENESIS
@@ -153,7 +155,7 @@ def check_tail(lines: list[HistoryLine], position: int, pointer: Pointer, model:
     raise HistoryError(
         f"history of {model}: the active pointer records seq {pointer.history_seq} as the last entry, but {len(changes)} "
         f"changes come after it ({listed}); an interrupted command leaves at most one, so active.json was replaced by "
-        f"an older copy of itself; {_POINTER_RESTORE}"
+        f"an older copy of itself; {_POINTER_RESTORE.format(model=model)}"
     )
 
 
@@ -165,7 +167,7 @@ def check_active(pointer: Pointer | None, stack: list[Step], model: str) -> None
         raise HistoryError(
             f"history of {model}: the active pointer names version {found[0]} (digest {str(found[1])[:16]}...), "
             f"but the trail's activations and rollbacks lead to {expected[0]} (digest {str(expected[1])[:16]}...); "
-            "active.json was edited by hand, restore it from a backup so that it matches the trail"
+            f"active.json was edited by hand: {_POINTER_RESTORE.format(model=model)}"
         )
 
 

@@ -84,6 +84,8 @@ KINDS: dict[str, EntryKind] = {kind.action: kind for kind in (
     EntryKind("refused-activate", MODEL_TRAIL, "an activation was refused because the stored bundle failed its checks"),
     EntryKind("refused-rollback", MODEL_TRAIL, "a rollback was refused because its target failed its checks"),
     EntryKind("recover", MODEL_TRAIL, "a change interrupted by a crash was completed by the next command"),
+    EntryKind("repair-pointer", MODEL_TRAIL, "an operator rebuilt the active pointer from the verified trail "
+              "(model_store.store.pointer_repair); version and digest are what it names, unchanged by the entry"),
     EntryKind("outside-domain-refuse", MODEL_TRAIL, "operators chose to refuse records outside the model's domain "
               "(the default; model_store.store.domain_choice)"),
     EntryKind("outside-domain-flag", MODEL_TRAIL, "operators chose to answer records outside the domain, flagged"),

@@ -20,7 +20,8 @@ from pathlib import Path
 
 from model_store.errors import StoreError
 
-__all__ = ["UnsafeStoreEntry", "check_tree", "read_store_file", "store_entry_kind"]
+__all__ = ["UnsafeStoreEntry", "check_tree", "check_work_entry", "read_store_file", "store_entry_kind",
+           "work_entry_error"]
 
 _DIRECTORY_FLAGS = os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | os.O_CLOEXEC
 _FILE_FLAGS = os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC
@@ -126,6 +127,40 @@ def check_tree(root: Path, directory: Path, *, subdirectories: frozenset[str] = 
     return names
 
 
+def check_work_entry(path: Path) -> bool:
+    """Whether the store's own ``staging`` directory or ``lock`` file at ``path`` exists.
+
+    ``UnsafeStoreEntry`` when something else is in its place: a symbolic link, a FIFO, a device, a
+    socket, or a file where the directory belongs (or the reverse). rbfgate makes both itself, so
+    anything else was put there by hand: every change empties ``staging/`` (a link there would make it
+    delete and write the contents of another directory) and opens ``lock`` (a FIFO there would block,
+    a link could make it create a file outside the store).
+    """
+    try:
+        mode = os.lstat(path).st_mode
+    except FileNotFoundError:
+        return False
+    except OSError as exc:
+        raise StoreError(f"{path}: cannot be examined: {exc.strerror}") from exc
+    if (stat.S_ISREG if Path(path).name == "lock" else stat.S_ISDIR)(mode):
+        return True
+    raise work_entry_error(Path(path), mode)
+
+
+def work_entry_error(path: Path, mode: int) -> UnsafeStoreEntry:
+    """The one-line error for ``mode`` (``lstat``/``fstat``) found where ``staging/`` or ``lock`` belongs."""
+    if path.name == "lock":
+        found = "a symbolic link" if stat.S_ISLNK(mode) else f"not a regular file but a {_kind(mode)}"
+        return UnsafeStoreEntry(
+            f"{path}: the store lock is {found}; a store holds only regular files and directories, so it was put "
+            "there by hand: remove it (the next change creates a new lock file)"
+        )
+    return UnsafeStoreEntry(
+        f"{path}: is a {_kind(mode)}; staging/ must be the store's own directory (every change empties it), so it "
+        "was put there by hand: remove it (the next change creates the directory again)"
+    )
+
+
 def _parts(root: Path, path: Path) -> tuple[str, ...]:
     try:
         parts = Path(path).relative_to(Path(root)).parts
@@ -157,6 +192,7 @@ def _kind(mode: int) -> str:
     for test, name in (
         (stat.S_ISLNK, "symbolic link"), (stat.S_ISFIFO, "FIFO (named pipe)"), (stat.S_ISSOCK, "socket"),
         (stat.S_ISCHR, "character device"), (stat.S_ISBLK, "block device"), (stat.S_ISDIR, "directory"),
+        (stat.S_ISREG, "regular file"),
     ):
         if test(mode):
             return name

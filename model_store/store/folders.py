@@ -14,6 +14,7 @@ activation), not here.
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 
 from model_store.digest import canonical_json, sha256_bytes
@@ -23,7 +24,7 @@ from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_fil
 from model_store.store.layout import StoreLayout, stray_entries, version_names
 from model_store.store.publishing import VersionRecord, read_record
 
-__all__ = ["StoredVersion", "binding_problem", "read_stored_version", "read_stored_versions"]
+__all__ = ["StoredVersion", "binding_problem", "folder_fingerprint", "read_stored_version", "read_stored_versions"]
 
 _RESTORE = "restore the version folder from a backup and investigate who changed it"
 
@@ -102,3 +103,24 @@ def binding_problem(model: str, stored: StoredVersion) -> HistoryError | None:
             f"{record.digest[:16]}...; the stored bundle was altered or replaced; {_RESTORE}"
         )
     return None
+
+
+def folder_fingerprint(layout: StoreLayout, name: str, version: str) -> tuple:
+    """What ``lstat`` says of the entries the binding check reads (the version folder, its record, its bundle
+    folder and manifest, the model's trail): inode, size, and modification and change times in ns.
+
+    For a reader that re-checks a live version often (the service's poll): the binding needs checking again
+    only when this changes. A rename, a copy over a file or an edit changes an inode or a change time, which
+    no user can set back (the kernel sets ``st_ctime`` on every change of the entry).
+    """
+    paths = (layout.version(name, version), layout.record(name, version), layout.bundle(name, version),
+             layout.bundle(name, version) / MANIFEST_FILE, layout.history(name))
+    states = []
+    for path in paths:
+        try:
+            found = os.lstat(path)
+        except OSError:
+            states.append(None)
+            continue
+        states.append((found.st_dev, found.st_ino, found.st_mode, found.st_size, found.st_mtime_ns, found.st_ctime_ns))
+    return tuple(states)

@@ -21,7 +21,7 @@ from contextlib import contextmanager
 from pathlib import Path
 
 from model_store.errors import LockTimeoutError, StoreError
-from model_store.store.files import UnsafeStoreEntry
+from model_store.store.files import UnsafeStoreEntry, check_work_entry, work_entry_error
 
 __all__ = ["exclusive_lock", "shared_lock"]
 
@@ -42,8 +42,9 @@ def exclusive_lock(path: Path, timeout: float, *, sleep: Callable[[float], None]
             "restore it or point --store at the store"
         ) from exc
     except OSError as exc:
-        if exc.errno in (errno.ELOOP, errno.ENXIO):  # a symbolic link, or a FIFO without a reader (O_NONBLOCK)
-            raise _not_a_lock(path, "a symbolic link or a special file") from exc
+        # A symbolic link (ELOOP), a FIFO without a reader or a socket (ENXIO), a directory (EISDIR).
+        if exc.errno in (errno.ELOOP, errno.ENXIO, errno.EISDIR):
+            raise _not_a_lock(path) from exc
         raise StoreError(
             f"{path.parent}: cannot change this store: opening its lock file failed ({_describe(exc)}); "
             "the store is read-only or belongs to another user, use a writable --store"
@@ -62,8 +63,8 @@ def shared_lock(path: Path, timeout: float, *, sleep: Callable[[float], None] = 
     try:
         descriptor = os.open(path, os.O_RDONLY | _NO_LINK_NO_WAIT)
     except OSError as exc:
-        if exc.errno == errno.ELOOP:
-            raise _not_a_lock(path, "a symbolic link") from exc
+        if exc.errno in (errno.ELOOP, errno.ENXIO):  # a symbolic link; a socket (opening one fails with ENXIO)
+            raise _not_a_lock(path) from exc
         yield
         return
     try:
@@ -94,14 +95,16 @@ def _acquire(descriptor: int, mode: int, path: Path, timeout: float, sleep) -> N
 def _check_regular(descriptor: int, path: Path) -> None:
     mode = os.fstat(descriptor).st_mode
     if not stat.S_ISREG(mode):
-        raise _not_a_lock(path, "not a regular file")
+        raise work_entry_error(path, mode)
 
 
-def _not_a_lock(path: Path, found: str) -> UnsafeStoreEntry:
-    return UnsafeStoreEntry(
-        f"{path}: the store lock is {found}; a store holds only regular files, so it was put there by hand: "
-        "remove it (the next change creates a new lock file)"
-    )
+def _not_a_lock(path: Path) -> UnsafeStoreEntry:
+    """The error naming what is in the lock's place (``open`` refused it; ``lstat`` says what it is)."""
+    try:
+        check_work_entry(path)
+    except UnsafeStoreEntry as exc:
+        return exc
+    return work_entry_error(path, stat.S_IFLNK)  # replaced meanwhile; O_NOFOLLOW refused a link
 
 
 def _describe(exc: OSError) -> str:

@@ -87,13 +87,15 @@ def read_pointer(path: Path, *, root: Path | None = None) -> Pointer | None:
         )
     except (ValueError, TypeError, KeyError) as exc:
         raise HistoryError(
-            f"{path}: the active pointer is not valid ({exc!r}); it was edited by hand, restore it from a backup"
+            f"{path}: the active pointer is not valid ({exc!r}); it was edited by hand, restore it from a backup "
+            f"or rebuild it with 'rbfgate repair-pointer {Path(path).parent.name} --reason TEXT'"
         ) from exc
     if not isinstance(pointer.history_head, str) or type(pointer.history_seq) is not int or not all(
         value is None or isinstance(value, str) for value in (pointer.version, pointer.digest, pointer.activated_at)
     ):
         raise HistoryError(f"{path}: the active pointer's fields are malformed (expected text for version, digest and "
-                           "activated_at, a whole number for history_seq); restore it from a backup")
+                           "activated_at, a whole number for history_seq); restore it from a backup or rebuild it "
+                           f"with 'rbfgate repair-pointer {Path(path).parent.name} --reason TEXT'")
     return pointer
 
 

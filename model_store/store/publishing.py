@@ -23,7 +23,7 @@ from model_store.digest import canonical_json, sha256_bytes
 from model_store.errors import IntegrityError, NotFoundError, RbfgateError, StoreError
 from model_store.manifest import MANIFEST_FILE, SIGNATURE_FILE, parse_manifest_bytes
 from model_store.store.durable import fsync_directory, fsync_tree, temporary_name
-from model_store.store.files import UnsafeStoreEntry, read_store_file, store_entry_kind
+from model_store.store.files import check_work_entry, read_store_file
 from model_store.store.layout import StoreLayout, version_names
 
 __all__ = [
@@ -173,19 +173,13 @@ def discard_version(version_dir: Path, staging_root: Path) -> None:
 
 
 def _staging_kind(staging_root: Path) -> str | None:
-    """"directory", or None when missing; refuses a link or anything else in its place.
+    """"directory", or None when missing; refuses a link or anything else in its place (``files.check_work_entry``).
 
     Everything under staging/ is deleted by the next change, so staging/ must be
     the store's own directory: a link there would make rbfgate delete (and
     write) the contents of whatever directory it points to.
     """
-    kind = store_entry_kind(staging_root.parent, staging_root)  # UnsafeStoreEntry for a link or a FIFO
-    if kind == "file":
-        raise UnsafeStoreEntry(
-            f"{staging_root}: is a file; staging/ is the store's own work directory, so it was put there by hand: "
-            "remove it (the next change creates the directory again)"
-        )
-    return kind
+    return "directory" if check_work_entry(staging_root) else None
 
 
 def _ensure_staging(staging_root: Path) -> None:

@@ -68,18 +68,20 @@ def commit(
     return entries
 
 
-def recover(layout: StoreLayout, name: str, *, now: str, actor: str, via: str) -> ModelState:
+def recover(layout: StoreLayout, name: str, *, now: str, actor: str, via: str,
+            rebuilt: Pointer | None = None) -> ModelState:
     """Load the model's state for a change, completing any interrupted change first (lock held).
 
     Every check ``Store.verify_history`` makes runs before anything is written
     (only the states a crash leaves are completed instead of refused), so a
     tampered model is left as it was found and no change is made while it
-    fails verification.
+    fails verification. ``rebuilt`` (``pointer_repair``) stands for the pointer
+    file, which is not read: the pointer the verified trail leads to.
     """
     history_path = layout.history(name)
     trail = read_trail(history_path, name, root=layout.root)
     lines = trail.lines
-    pointer = read_pointer(layout.pointer(name), root=layout.root)
+    pointer = rebuilt if rebuilt is not None else read_pointer(layout.pointer(name), root=layout.root)
     check_chain(lines, name, pointer.history_head if pointer else None)
     if pointer is None:
         check_head(lines, None, name)  # raises when the trail has entries: its pointer was deleted

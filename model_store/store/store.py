@@ -31,17 +31,18 @@ from model_store.refusal import Converter, from_json
 from model_store.store import changes, domain_choice
 from model_store.store.audit import check_active, check_chain, check_head, check_tail, check_versions, head_position
 from model_store.store.contract import ContractComparison
-from model_store.store.files import UnsafeStoreEntry, check_tree, read_store_file, store_entry_kind
-from model_store.store.folders import binding_problem, read_stored_version, read_stored_versions
+from model_store.store.files import UnsafeStoreEntry, check_tree, check_work_entry, read_store_file, store_entry_kind
+from model_store.store.folders import binding_problem, folder_fingerprint, read_stored_version, read_stored_versions
 from model_store.store.history import format_time, read_trail
 from model_store.store.layout import StoreLayout, model_names, open_layout, require_model, version_names
 from model_store.store.locking import exclusive_lock, shared_lock
 from model_store.store.pointer import ActiveRecord, read_pointer
+from model_store.store.pointer_repair import PointerRepair, repair_pointer
 from model_store.store.publishing import PublishOutcome, StepHook, read_record
 from model_store.store.signing import TrustedKey, check_bundle_signature
 from model_store.store.state import activation_stack, stored_versions
 from model_store.store.timeline import LiveAt, live_at
-from model_store.store.trust import check_trail_kept, trust_entries, verified_keys
+from model_store.store.trust import check_trail_kept, check_trust_settled, trust_entries, verified_keys
 
 __all__ = ["Store", "VersionInfo"]
 
@@ -157,7 +158,8 @@ class Store:
                     f"history of {name}: the active pointer went back to seq {pointer.history_seq} (version "
                     f"{pointer.version}) after it had recorded seq {followed_seq}, while the trail goes on to seq "
                     f"{trail.lines[-1].seq}; a change only moves it forward, so an older copy of active.json was put "
-                    "back by hand; restore the current one from a backup so that it matches the trail"
+                    "back by hand; restore the current one from a backup so that it matches the trail, or rebuild it "
+                    f"with 'rbfgate repair-pointer {name} --reason TEXT'"
                 )
         check_active(pointer, activation_stack([item.entry for item in trail.lines[: position + 1]]), name)
         return pointer.active_record()
@@ -220,16 +222,20 @@ class Store:
 
         The hash chain, the pointer's head and active version, every version
         folder against its publish entry (``folders``), every version the
-        trail says is stored, and the trust trail against the settings.
-        Raises ``HistoryError`` naming the first problem. Holds the lock shared,
+        trail says is stored, the trust trail against the settings, and that
+        ``staging/`` and ``lock`` are the store's own (``check_work_entries``).
+        Raises ``HistoryError`` naming the first problem (``UnsafeStoreEntry``, a ``StoreError``, for
+        ``staging/`` or ``lock``: the store itself is unusable). Holds the lock shared,
         so that everything is read at one moment between two changes.
         """
         require_model(self._layout, name)
+        self.check_work_entries()  # a StoreError, as the lock's own check under shared_lock raises
         with shared_lock(self._layout.lock, self.lock_timeout):
             trail = read_trail(self._layout.history(name), name, root=self.root)
             pointer = read_pointer(self._layout.pointer(name), root=self.root)
             stored = read_stored_versions(self._layout, name)
             verified_keys(self._layout)
+            check_trust_settled(self._layout)  # a trust change written to trust.jsonl only: not in force yet
         lines = trail.lines
         if trail.unfinished:
             raise HistoryError(
@@ -242,6 +248,12 @@ class Store:
         check_versions(stored, lines, name, auditing=True)
         check_trail_kept(self._layout, [item.entry for item in lines], name)
         return len(lines)
+
+    def check_work_entries(self) -> None:
+        """``UnsafeStoreEntry`` (a ``StoreError``) naming ``staging/`` or ``lock`` when either is a link, FIFO,
+        device, socket or the wrong kind of entry: rbfgate makes both itself, so that was put there by hand."""
+        check_work_entry(self._layout.staging)
+        check_work_entry(self._layout.lock)
 
     def history_document(self, name: str, *, verify: bool = True) -> dict[str, Any]:
         """What ``history --json`` prints and ``GET /models/{model}/history`` answers: the same keys in both.
@@ -319,6 +331,16 @@ class Store:
             members = {entry: data for entry, data in members.items() if entry in listed and data is not None}
         return bundle, members
 
+    def check_binding(self, name: str, version: str) -> None:
+        """``HistoryError`` unless the folder of ``version`` holds what its publish entry recorded (folder name,
+        record, manifest and its digest; ``folders``); its arrays are not read (their checksums are checked on
+        every load)."""
+        self._check_binding(name, version)
+
+    def folder_fingerprint(self, name: str, version: str) -> tuple:
+        """Changes whenever what ``check_binding`` reads may have changed (``folders.folder_fingerprint``)."""
+        return folder_fingerprint(self._layout, name, version)
+
     def _check_binding(self, name: str, version: str) -> dict[str, Any]:
         """The publish entry of ``version``, after checking its folder says what that entry recorded."""
         publish = self._publish_entry(name, version)
@@ -374,6 +396,10 @@ class Store:
 
     def prune(self, name: str, *, keep: int, actor: str, via: str = "python") -> list[str]:
         return changes.prune(self, name, keep=keep, actor=actor, via=via)
+
+    def repair_pointer(self, name: str, *, reason: str, actor: str, via: str = "python") -> PointerRepair:
+        """See ``pointer_repair.repair_pointer``: rebuild the active pointer from the verified trail."""
+        return repair_pointer(self, name, reason=reason, actor=actor, via=via)
 
     def add_trusted_key(self, public_key: bytes, *, label: str, actor: str, via: str = "python") -> TrustedKey:
         return changes.add_trusted_key(self, public_key, label=label, actor=actor, via=via)

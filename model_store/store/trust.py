@@ -12,9 +12,21 @@ added by hand, a cut-off or edited trail are reported as ``HistoryError``,
 and every reader that needs the keys (publish, activation, every load) is
 refused until the settings and the trail are restored.
 
+A trust change appends its entry to ``trust.jsonl`` first and rewrites the
+settings second. A change killed in between leaves one entry (and perhaps
+``trust-recover`` entries of recoveries killed in turn) after the head the
+settings record. That change is not in force: readers go by the settings,
+which still say what was trusted before it. ``check_trust_settled`` reports it
+to auditors (``history --verify``), and the next change to the store completes
+it, rolling forward, as the entry is the record of what the operator asked
+for (``trust-recover`` says so). More than one change after the head is not
+what a crash leaves: the settings were put back to an older copy by hand, and
+every change is refused.
+
 A store made before the trail existed has keys and no ``trust_head``: its keys
 are taken as they are until the next change to the store, which records them
-as ``trust-add`` entries ("recorded when the trust trail began") first. A
+as ``trust-add`` entries ("recorded when the trust trail began") first, with
+that change's actor and via (who added each key, and when, is in the reason). A
 change killed while doing so leaves some of those entries and settings still
 without ``trust_head``; the next change completes it (``trust-recover``).
 Settings without ``trust_head`` in a store whose model histories hold entries
@@ -33,7 +45,10 @@ from model_store.store.history import GENESIS, HistoryLine, Trail, append_entrie
 from model_store.store.layout import StoreLayout, model_names, read_settings, write_settings
 from model_store.store.signing import TrustedKey
 
-__all__ = ["TRUST_TRAIL", "change_trust", "check_trail_kept", "recover_trust", "trust_entries", "verified_keys"]
+__all__ = [
+    "TRUST_TRAIL", "change_trust", "check_trail_kept", "check_trust_settled", "recover_trust", "trust_entries",
+    "verified_keys",
+]
 
 TRUST_TRAIL = "trust trail"  # how messages name it
 _RESTORE = "restore rbfgate-store.json and trust.jsonl from a backup and investigate who changed them"
@@ -76,9 +91,12 @@ def recover_trust(layout: StoreLayout, *, now: str, actor: str, via: str) -> Non
     if not state.tracked:
         _check_not_dropped(layout)
         recorded = {item.entry["key_id"] for item in state.lines}
+        # Recorded as what they are: entries written now, by the change that starts the trail (its actor and
+        # via); who added each key, and when, is what the older settings say, kept in the reason.
         drafts = [
-            _draft(now, key.added_by or actor, via, "trust-add", key,
-                   f"{_STARTED}: trusted since {key.added_at or 'an unknown time'}")
+            _draft(now, actor, via, "trust-add", key,
+                   f"{_STARTED}: trusted since {key.added_at or 'an unknown time'}, "
+                   f"added by {key.added_by or 'an unknown actor'}")
             for key in _keys(settings) if key.key_id not in recorded
         ]
         if state.lines or repaired:
@@ -96,9 +114,62 @@ def recover_trust(layout: StoreLayout, *, now: str, actor: str, via: str) -> Non
                                                                              f"{repaired}")])
         return
     _check_keys(settings, state.lines[: position + 1])  # the settings were right before the interrupted change
-    later = [item.entry for item in state.lines[position + 1:]]
-    reason = f"completed an interrupted trust change: applied entries seq {later[0]['seq']} to {later[-1]['seq']}"
+    change = _interrupted_change(state.lines, position, settings)
+    reason = f"completed an interrupted trust change: applied {_describe(change)}"
     _commit(layout, settings, state.lines, [_note(now, actor, via, reason + (f"; {repaired}" if repaired else ""))])
+
+
+def check_trust_settled(layout: StoreLayout) -> None:
+    """Raise ``HistoryError`` when a trust change was interrupted: entries after the head the settings record,
+    an unfinished last line, or a trail whose start was interrupted. For auditors: such a change is not in
+    force, and the next change to the store completes it (``recover_trust``)."""
+    state = _read(layout)
+    completes = "it is not in force yet, and the next change to the store completes it (a trust-recover entry)"
+    if state.trail.unfinished:
+        raise HistoryError(
+            f"{TRUST_TRAIL}: trust.jsonl ends in an unfinished line after seq "
+            f"{state.lines[-1].seq if state.lines else 0}: a trust change was killed while appending it; {completes}"
+        )
+    if not state.tracked:
+        if state.lines:
+            raise HistoryError(
+                f"{TRUST_TRAIL}: trust.jsonl holds {len(state.lines)} entries recording the keys of this older store, "
+                "but rbfgate-store.json records no trust_head yet: the change that started the trail was interrupted "
+                f"before it updated the settings; {completes}"
+            )
+        return
+    position = head_position(state.lines, state.settings["trust_head"])
+    if position is None or position == len(state.lines) - 1:
+        return  # None: verified_keys names the truncation
+    change = _interrupted_change(state.lines, position, state.settings)
+    trusted = ", ".join(key.key_id for key in _keys(state.settings)) or "none"
+    raise HistoryError(
+        f"{TRUST_TRAIL}: trust.jsonl holds {_describe(change)} after seq {state.lines[position].seq}, the last entry "
+        f"rbfgate-store.json records: a trust change was interrupted after it wrote its entry and before it updated "
+        f"the settings, which still trust: {trusted}; {completes}"
+    )
+
+
+def _interrupted_change(lines: list[HistoryLine], position: int, settings: dict[str, Any]) -> dict[str, Any]:
+    """The first entry after the settings' head (``lines[position + 1:]``): what an interrupted change leaves is one
+    trust-add or trust-remove entry, or a trust-recover note, followed by trust-recover entries of recoveries killed
+    in turn; ``HistoryError`` for more: the settings were replaced by an older copy of themselves."""
+    later = [item.entry for item in lines[position + 1:]]
+    changes = [entry for entry in later if entry["action"] != "trust-recover"]
+    if len(changes) <= 1 and (not changes or later[0] is changes[0]):
+        return later[0]  # the change, or a trust-recover note whose own settings write was interrupted
+    listed = ", ".join(_describe(entry) for entry in later[:4]) + (", ..." if len(later) > 4 else "")
+    raise HistoryError(
+        f"{TRUST_TRAIL}: rbfgate-store.json records seq {settings.get('trust_seq')} as the trail's last entry, but "
+        f"{len(later)} entries come after it ({listed}); an interrupted trust change leaves one, so the settings were "
+        f"replaced by an older copy of themselves; {_RESTORE}"
+    )
+
+
+def _describe(entry: dict[str, Any]) -> str:
+    key = f" of key {entry['key_id']}" if "key_id" in entry else ""
+    return (f"seq {entry['seq']} ({entry['action']}{key} by {entry['actor']} via {entry.get('via') or '-'} "
+            f"at {entry['time']})")
 
 
 def check_trail_kept(layout: StoreLayout, entries: list[dict[str, Any]], model: str) -> None:
@@ -133,9 +204,13 @@ def _commit(layout, settings, lines: list[HistoryLine], drafts: list[dict[str, A
     if written:
         append_entries(layout.trust_trail, written)
     entries = [item.entry for item in lines] + written
+    # A key the settings already trust keeps when and by whom it was added there: for keys recorded when the
+    # trail began, the entry's time and actor are those of the migration, not of the addition.
+    known = {(key.key_id, key.public_key): key for key in _keys(settings)}
+    keys = [known.get((key.key_id, key.public_key), key) for key in _fold(entries)]
     settings = {
         **settings,
-        "trusted_keys": [key.to_dict() for key in _fold(entries)],
+        "trusted_keys": [key.to_dict() for key in keys],
         "trust_head": entries[-1]["hash"] if entries else GENESIS,
         "trust_seq": entries[-1]["seq"] if entries else 0,
     }

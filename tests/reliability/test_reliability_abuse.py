@@ -133,10 +133,8 @@ def test_a_body_sent_too_slowly_is_dropped_and_logged_as_408(guarded_server):
         finally:
             stop.set()
             trickler.join(30)
-    time.sleep(0.5)  # the log line is written when the handler returns
-    events = [json.loads(line) for line in server.log_lines() if line.startswith("{")]
-    assert any(event.get("status") == 408 and event.get("route") == "/score/{model}" for event in events)
-    assert not any(event.get("status", 0) >= 500 for event in events)
+    assert server.wait_for_log(lambda event: event.get("status") == 408 and event.get("route") == "/score/{model}")
+    assert not server.wait_for_log(lambda event: event.get("status", 0) >= 500, timeout=0)
 
 
 @pytest.mark.parametrize(("header_bytes", "accepted"), [(8 * 1024, True), (64 * 1024, False), (1024 * 1024, False)])

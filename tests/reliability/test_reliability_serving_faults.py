@@ -9,6 +9,7 @@ max(1, |v|). Waiting loops are bounded and assert only the final state, never ho
 
 from __future__ import annotations
 
+import glob
 import json
 import os
 import shutil
@@ -374,3 +375,43 @@ def test_serve_refuses_to_start_with_an_unusable_tokens_file(tmp_path, service_m
     _assert_refused_to_start(result, path, "tokens file")
     if kind in ("directory", "fifo"):
         assert stat.S_ISREG(os.stat(path).st_mode) is False  # untouched
+
+
+def _metrics_directory(worker: int) -> str:
+    """The prometheus-client multiprocess directory ``rbfgate serve`` gave its workers (proc(5) environ)."""
+    with open(f"/proc/{worker}/environ", "rb") as handle:
+        items = handle.read().decode("utf-8", "replace").split("\0")
+    return dict(item.split("=", 1) for item in items if "=" in item)["PROMETHEUS_MULTIPROC_DIR"]
+
+
+def _garble_first_key(data: bytes) -> bytes:
+    damaged = bytearray(data)
+    damaged[12:20] = b"\xff" * 8  # inside the first entry's key (prometheus_client/mmap_dict.py: 8-byte header,
+    return bytes(damaged)         # then a 4-byte length and the UTF-8 key), no longer UTF-8
+
+
+_BAD_FILES = {"truncated": lambda data: data[:40], "empty": lambda data: b"", "garbled key": _garble_first_key}
+
+
+@pytest.mark.parametrize("damage", sorted(_BAD_FILES))
+def test_metrics_answer_the_live_workers_when_a_multiprocess_file_is_damaged(tmp_path, service_models, damage):
+    store = build_store(tmp_path / "store", service_models)
+    rows = service_models.iris1.X[:2]
+    with ServeProcess(tmp_path, "--store", store.root, "--workers", "2") as server:
+        with server.client() as client:
+            wait_until(lambda: len(worker_pids(server.process.pid)) == 2, "both workers to start")
+            directory = _metrics_directory(worker_pids(server.process.pid)[0])
+            body = {"records": service_models.iris1.records(rows)}
+            for _ in range(4):
+                assert client.post("/score/iris", json=body).status_code == 200
+            wait_until(lambda: glob.glob(os.path.join(directory, "counter_*.db")), "a worker to write its counters")
+            written = open(sorted(glob.glob(os.path.join(directory, "counter_*.db")))[0], "rb").read()
+            # As a worker killed while its disk was full leaves it: a pid no process has (above pid_max, proc(5)).
+            bad = os.path.join(directory, "counter_4194305.db")
+            with open(bad, "wb") as handle:
+                handle.write(_BAD_FILES[damage](written))
+            answers = [client.get("/metrics") for _ in range(8)]  # both workers answer some of them
+        assert [answer.status_code for answer in answers] == [200] * 8
+        assert all(_metric(answer.text, "rbfgate_score_requests_total", model="iris") >= 4 for answer in answers)
+    named = [line for line in server.stderr_path.read_text().splitlines() if bad in line]
+    assert 1 <= len(named) <= 2 and all("left out" in line for line in named), named  # once per worker at most

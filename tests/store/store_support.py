@@ -175,3 +175,18 @@ def store_with(root: Path, bundles, active: str) -> Store:
     for name in sorted({bundle.name for bundle in bundles}):
         store.activate(name, active, reason="first release", actor="alice")
     return store
+
+
+def killed_before_the_pointer(monkeypatch, change) -> None:
+    """Run ``change()`` as a command killed after it appended its entries and before it moved the pointer."""
+    import pytest
+
+    from model_store.store import recovery
+
+    def killed(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(recovery, "write_pointer", killed)
+    with pytest.raises(KeyboardInterrupt):
+        change()
+    monkeypatch.undo()

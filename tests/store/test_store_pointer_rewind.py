@@ -4,11 +4,10 @@ entries after the pointer's head (what one interrupted command leaves, and nothi
 from __future__ import annotations
 
 import pytest
-from store_support import iris_bundle, run_cli, tree_snapshot, two_releases
+from store_support import iris_bundle, killed_before_the_pointer, run_cli, tree_snapshot, two_releases
 
 from model_store.errors import HistoryError
 from model_store.store import Store
-from model_store.store import recovery
 
 
 @pytest.fixture
@@ -53,13 +52,8 @@ def test_a_garbled_pointer_fails_verification_like_any_other_edit(store):
 
 
 def test_an_outside_domain_choice_is_in_force_only_once_the_pointer_records_it(store, monkeypatch):
-    def killed(*args, **kwargs):
-        raise KeyboardInterrupt  # the command dies after its entry, before it moves the pointer
-
-    monkeypatch.setattr(recovery, "write_pointer", killed)
-    with pytest.raises(KeyboardInterrupt):
-        store.set_outside_action("iris", "flag", reason="reviewed", actor="dana")
-    monkeypatch.undo()
+    killed_before_the_pointer(monkeypatch, lambda: store.set_outside_action("iris", "flag", reason="reviewed",
+                                                                            actor="dana"))
     assert store.history("iris")[-1]["action"] == "outside-domain-flag"
     assert store.outside_action("iris") == "refuse"  # what a worker started now applies, like one running
     store.activate("iris", "1.1.0", reason="re-verify", actor="bob")  # the next change completes it

@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import os
+import socket
+import stat
 import threading
 
 import pytest
-from store_support import iris_bundle, two_releases
+from store_support import iris_bundle, run_cli, two_releases
 
 from model_store.errors import CheckFailedError, HistoryError, RbfgateError, StoreError
 
@@ -121,3 +123,55 @@ def test_a_linked_lock_is_refused_and_creates_nothing_where_it_points(store, tmp
     with pytest.raises(StoreError, match="lock is a symbolic link"):
         store.verify_history("iris")
     assert not target.exists()
+
+
+def _replace_work_entry(path, kind: str, tmp_path, monkeypatch) -> None:
+    """Put a ``kind`` where the store's own ``staging/`` or ``lock`` belongs (as someone with write access could)."""
+    if path.is_dir():
+        path.rmdir()  # staging/ is empty between changes
+    else:
+        path.unlink(missing_ok=True)
+    if kind == "link":
+        target = tmp_path / f"elsewhere-{path.name}"
+        target.mkdir() if path.name == "staging" else target.write_text("")
+        os.symlink(target, path)
+    elif kind == "fifo":
+        os.mkfifo(path)
+    elif kind == "device":
+        os.mknod(path, stat.S_IFCHR | 0o600, os.makedev(1, 3))  # 1:3 is /dev/null (Linux Documentation/devices.txt)
+    elif kind == "socket":
+        monkeypatch.chdir(path.parent)  # a relative name: a socket path is limited to 108 bytes (unix(7))
+        with socket.socket(socket.AF_UNIX) as listener:
+            listener.bind(path.name)  # the socket file stays after close
+    elif kind == "file":
+        path.write_text("")
+    else:
+        path.mkdir()
+
+
+_WORK_ENTRY_CASES = [("staging", kind) for kind in ("link", "fifo", "device", "socket", "file")] + [
+    ("lock", kind) for kind in ("link", "fifo", "device", "socket", "directory")]
+_FOUND = {"link": "symbolic link", "fifo": "FIFO (named pipe)", "device": "character device", "socket": "socket",
+          "file": "regular file", "directory": "directory"}
+
+
+@pytest.mark.parametrize(("which", "kind"), _WORK_ENTRY_CASES, ids=[f"{w}-{k}" for w, k in _WORK_ENTRY_CASES])
+def test_verify_names_anything_in_place_of_the_stores_own_staging_or_lock(store, tmp_path, monkeypatch, which, kind):
+    path = getattr(store.layout, which)
+    _replace_work_entry(path, kind, tmp_path, monkeypatch)
+    error = _bounded(lambda: store.verify_history("iris"))  # a FIFO must not make verify wait for a writer
+    assert isinstance(error, StoreError)
+    message = str(error)
+    assert f"{path}: " in message and _FOUND[kind] in message and "remove it" in message
+    assert "\n" not in message
+
+
+@pytest.mark.parametrize("command", [["versions", "iris"], ["history", "iris"], ["history", "iris", "--verify"]])
+def test_every_store_command_names_a_linked_staging_directory_in_one_line(store, tmp_path, command):
+    (tmp_path / "elsewhere").mkdir()
+    store.layout.staging.rmdir()
+    os.symlink(tmp_path / "elsewhere", store.layout.staging)
+    result = run_cli(*command, "--store", str(store.root))
+    assert result.returncode == 2  # the store itself is unusable (StoreError), not a history that fails to verify
+    [line] = result.stderr.splitlines()
+    assert f"{store.layout.staging}: is a symbolic link" in line and "remove it" in line

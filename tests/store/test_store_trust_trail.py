@@ -90,6 +90,19 @@ def test_a_store_made_before_the_trust_trail_records_its_keys_at_the_next_change
     assert store.verify_history("iris") == 3
 
 
+def test_keys_recorded_when_the_trust_trail_began_name_the_change_that_recorded_them(signed_store):
+    """The entries are written by the change that starts the trail: its actor and via, not those of whoever
+    added the key long before (who did, and when, stays in the reason and in the settings)."""
+    store, _ = signed_store
+    key = store.trusted_keys()[0]  # added by "admin" via cli
+    _as_before_the_trust_trail(store)
+    store.activate("iris", "1.0.0", reason="re-verify", actor="ops-bob", via="http")
+    [entry] = store.trust_history()
+    assert (entry["actor"], entry["via"]) == ("ops-bob", "http")
+    assert f"trusted since {key.added_at}, added by admin" in entry["reason"]
+    assert store.trusted_keys() == [key]  # when and by whom it was added there is kept
+
+
 def test_a_trust_trail_removed_with_its_head_and_keys_is_refused_not_started_anew(signed_store, bundle_factory):
     """Deleting trust.jsonl, trust_head and the keys makes the store look older than the trail: its model
     histories (entries with via) show it is not, so signatures cannot be switched off that way."""
@@ -155,3 +168,59 @@ def test_a_reordered_trust_trail_names_the_files_to_restore(signed_store, tmp_pa
     with pytest.raises(HistoryError, match="reordered; restore rbfgate-store.json and trust.jsonl") as raised:
         store.trusted_keys()
     assert "history.jsonl" not in str(raised.value)
+
+
+def _remove_key_killed_before_the_settings(store, monkeypatch) -> str:
+    """``trust remove`` killed after it wrote its entry to trust.jsonl, before it rewrote rbfgate-store.json:
+    the first of its two files written, deterministically. Returns the key id."""
+    import model_store.store.trust as trust
+
+    class Killed(BaseException):
+        pass
+
+    def killed(*args, **kwargs):
+        raise Killed
+
+    key_id = store.trusted_keys()[0].key_id
+    monkeypatch.setattr(trust, "write_settings", killed)
+    with pytest.raises(Killed):
+        store.remove_trusted_key(key_id, actor="mallory", via="cli")
+    monkeypatch.undo()
+    return key_id
+
+
+def test_verify_reports_a_trust_change_written_to_the_trail_only(signed_store, monkeypatch):
+    store, _ = signed_store
+    key_id = _remove_key_killed_before_the_settings(store, monkeypatch)
+    with pytest.raises(HistoryError) as raised:
+        store.verify_history("iris")
+    message = str(raised.value)
+    assert f"seq 2 (trust-remove of key {key_id} by mallory via cli" in message
+    assert "interrupted after it wrote its entry and before it updated the settings" in message
+    assert f"which still trust: {key_id}" in message and "the next change to the store completes it" in message
+
+
+def test_a_trust_change_written_to_the_trail_only_is_not_in_force_until_the_next_change_completes_it(
+        signed_store, monkeypatch, bundle_factory):
+    store, _ = signed_store
+    key_id = _remove_key_killed_before_the_settings(store, monkeypatch)
+    assert [key.key_id for key in store.trusted_keys()] == [key_id]  # readers go by the settings
+    store.activate("iris", "1.0.0", reason="re-verify", actor="bob", via="cli")  # the next change
+    recovered = store.trust_history()[-1]
+    assert (recovered["action"], recovered["actor"], recovered["via"]) == ("trust-recover", "bob", "cli")
+    assert f"applied seq 2 (trust-remove of key {key_id} by mallory via cli" in recovered["reason"]
+    assert store.trusted_keys() == [] and store.verify_history("iris") == 3
+
+
+def test_settings_put_back_behind_two_trust_changes_are_refused_not_completed(signed_store, tmp_path, bundle_factory):
+    store, _ = signed_store
+    older = store.layout.settings.read_bytes()  # a copy taken while one key was trusted
+    second = generate_key_files(tmp_path / "second")
+    store.add_trusted_key(parse_public_key(str(second.public_path)), label="second", actor="admin")
+    store.remove_trusted_key(store.trusted_keys()[0].key_id, actor="admin")
+    store.layout.settings.write_bytes(older)  # its keys still match the trail's first entry
+    for attempt in (lambda: store.verify_history("iris"),
+                    lambda: store.publish(iris_bundle(bundle_factory, "2.0.0", C=2.0), actor="mallory")):
+        with pytest.raises(HistoryError, match="2 entries come after it .* replaced by an older copy of themselves"):
+            attempt()
+    assert store.layout.settings.read_bytes() == older

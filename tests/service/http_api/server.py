@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import json
 import os
 import subprocess
 import sys
+import time
+from collections.abc import Callable
 from pathlib import Path
 
 import httpx
@@ -50,6 +53,30 @@ class ServeProcess:
 
     def log_lines(self) -> list[str]:
         return self.stdout_path.read_text().splitlines()
+
+    def wait_for_log(self, matches: Callable[[dict], bool], timeout: float = 30.0) -> list[dict]:
+        """The JSON log events for which ``matches`` is true, waiting (at most ``timeout`` s) until there is one.
+
+        A request's line is written when the request ends, after its answer was sent (its duration covers
+        the sending), so a client can hold the answer before the line exists: read the log only this way.
+        """
+        deadline = time.monotonic() + timeout
+        while True:
+            found = [event for event in self._events() if matches(event)]
+            if found or time.monotonic() > deadline:
+                return found
+            time.sleep(0.05)
+
+    def _events(self) -> list[dict]:
+        events = []
+        for line in self.log_lines():
+            try:
+                event = json.loads(line)
+            except ValueError:
+                continue  # a line still being written, or not one of ours
+            if isinstance(event, dict):
+                events.append(event)
+        return events
 
     def _wait_until_answering(self) -> None:
         wait_until_ok(self.process, f"{self.url}/healthz", _START_SECONDS,

@@ -7,7 +7,6 @@ as in the in-process tests: scikit-learn (reference.py), RFC 9457 / RFC 6750 / R
 
 from __future__ import annotations
 
-import json
 import socket
 
 import numpy as np
@@ -115,8 +114,8 @@ def test_served_metrics_and_logs(open_server):
         metrics = client.get("/metrics")
     assert metrics.headers["content-type"].startswith("text/plain")
     assert "rbfgate_score_requests_total" in metrics.text
-    events = [json.loads(line) for line in open_server.log_lines()]
-    assert any(event["event"] == "request" and event["route"] == "/score/{model}" for event in events)
+    assert open_server.wait_for_log(lambda event: event.get("event") == "request"
+                                    and event.get("route") == "/score/{model}")
 
 
 def test_switch_under_load_with_two_workers(tmp_path, service_models):

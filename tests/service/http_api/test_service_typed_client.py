@@ -130,6 +130,5 @@ def test_a_supplied_request_id_is_echoed_and_logged_by_the_real_server(server):
     response = httpx.post(f"{server.url}/score/{_MODEL}", json={"records": [_PALLET]},
                           headers={"X-Request-ID": supplied}, timeout=30)
     assert response.headers["X-Request-ID"] == supplied
-    lines = [json.loads(line) for line in server.log_lines() if line.startswith("{")]
-    [logged] = [line for line in lines if line.get("request_id") == supplied]
+    [logged] = server.wait_for_log(lambda event: event.get("request_id") == supplied)
     assert (logged["event"], logged["route"], logged["status"]) == ("request", "/score/{model}", 200)
