@@ -68,12 +68,15 @@ def cross_fitted_scores(reference: np.ndarray, folds: list[np.ndarray], full: On
     """(n,) score of each ``reference`` (n, f) row by a model fitted on the other ``folds``, on ``full``'s scale.
 
     ``folds`` partition ``range(n)``; each fold model is fitted like ``full`` (same gamma and nu,
-    the same subsample bound) on the rows outside its fold.
+    the same subsample bound) on the rows outside its fold. A fold that leaves fewer than 2 rows to
+    fit on (a reference of 2 or 3 rows) keeps ``full``'s own, in-sample scores.
     """
-    scores = np.empty(len(reference))
+    scores = full.estimator.decision_function(reference)  # kept only where a fold leaves under 2 rows to fit
     full_mass = float(full.estimator.dual_coef_.sum())
     for index, held in enumerate(folds):
         others = np.setdiff1d(np.arange(len(reference)), held, assume_unique=True)
+        if len(held) == 0 or len(others) < 2:
+            continue
         rows, _ = _subsample(reference[others], seed + index + 1)
         model = OneClassSVM(kernel="rbf", gamma=full.gamma, nu=NU).fit(rows)
         scores[held] = model.decision_function(reference[held]) * (full_mass / float(model.dual_coef_.sum()))

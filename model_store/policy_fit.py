@@ -3,32 +3,36 @@
 A rule judged on the rows it was derived from refuses almost nothing of them and more of rows it
 has never seen: the min/max of 124 wine rows contains all 124, but a new row falls outside one of
 its 13 feature ranges far more often than 1 % of the time. So both rules are judged here on rows
-their fit did not see (cross-fitting):
+their fit did not see (cross-fitting). The rows are the reference rows, then the holdout rows when
+there are any (``n`` in all):
 
-- The rows are the reference rows, then the holdout rows when there are any, split into ``FOLDS``
-  folds (scikit-learn ``KFold``, shuffled with the export's seed, recorded in the manifest).
-- Ranges: each row's ``margin_needed`` against the ranges derived from the rows of the other
-  folds (the same rule that derives the bundle's ranges, ``model_store.reference_rows``).
+- Ranges: each row's ``margin_needed`` against the ranges derived from the other ``n - 1`` rows
+  (leave-one-out, exact and cheap: only a row that alone holds a feature's minimum or maximum
+  changes the ranges), with the rule that derives the bundle's ranges (``model_store.reference_rows``).
 - Domain: a reference row's score by a one-class SVM fitted on the reference rows of the other
-  folds, on the bundle model's scale (``model_store.domain_fit``); a holdout row's score by the
-  bundle's own model, which is fitted on the reference rows only.
+  ``FOLDS`` folds (scikit-learn ``KFold`` over all rows, shuffled with the export's seed), put on
+  the bundle model's scale (``model_store.domain_fit``); a holdout row's score by the bundle's own
+  model, which is fitted on the reference rows only.
 
-From these ``n`` out-of-sample rows, ``choose`` sets the policy for a refusal budget of
-``round(refuse_rate x n)`` rows, split explicitly between the rules: the ranges get at most
-``RANGE_SHARE`` of it (rounded down), and the margin is the smallest that refuses no more rows
-than that; the domain threshold then spends what is left of the budget on the rows the ranges
-accept, so the two rules together refuse about ``refuse_rate``. A threshold sits halfway between
-the last refused and the first accepted value; with no row to refuse it is placed half the gap
-between the two most extreme values beyond the most extreme one, an extrapolation (a 1 % tail
-cannot be measured on fewer than 100 rows). A ``--margin`` given by the user is kept, and the
-domain gets what its range refusals leave.
+``choose`` then sets the policy for a refusal budget of ``refuse_rate x n`` rows, split explicitly
+between the rules: the ranges get ``RANGE_SHARE`` (half) of it, and the margin is the smallest
+that refuses that many rows (rows no margin lets in, outside an explicit ``allowed`` or physical
+``bounds``, count first); the domain's outside threshold spends the rest on the rows the ranges
+accept, so the two rules together refuse about ``refuse_rate``. Half each, because neither rule
+is known to matter more: the ranges catch an error in one feature (a unit, an offset, a column
+mix-up), the domain model a combination no reference row resembles. A threshold for k whole rows
+lies halfway between the k-th and the next value; for 0 rows, half the gap between the two most
+extreme values beyond the most extreme one (an extrapolation: a 1 % tail cannot be measured on
+fewer than 100 rows); a fraction of a row interpolates between the two whole counts around it. A
+``--margin`` given by the user is kept, and the domain gets what its range refusals leave.
 
-Choosing a threshold on the same rows it is then measured on is optimistic again, so the refusal
-estimate is nested: for each fold, the policy is chosen on the other folds' out-of-sample values
-and measured on that fold's (no model is refitted); the estimate is the share of all rows refused
-so. The bundle's ranges come from all rows, its domain model from all reference rows; being fitted
-on more rows than any fold, both refuse a little less than their fold versions, so the estimate
-errs on the side of refusing more (tests/bundle/test_fresh_refusals.py checks it on fresh rows).
+Choosing a threshold on the same values it is then measured on is optimistic again, so the
+refusal estimate is nested: for each fold, the policy is chosen on the other folds' out-of-sample
+values and measured on that fold's (no model is refitted); the estimate is the share of all rows
+refused so. The bundle's ranges come from all rows and its domain model from all reference rows,
+more than any fold model saw, so on new rows it tends to refuse less than the estimate says
+(tests/benchmarks/domain_detection.py prints both; tests/bundle/test_fresh_refusals.py bounds the
+share of new rows refused).
 
 This module imports scikit-learn; the serving path never imports it.
 """
@@ -87,7 +91,7 @@ def choose_policy(
         score = np.concatenate([score, domain.estimator.decision_function(scaled_holdout)])
     chosen_margin, unusual, outside = choose(need, score, refuse_rate, margin)
     record = {
-        "method": f"{len(folds)}-fold cross-fitting",
+        "method": f"ranges leave-one-out, domain {len(folds)}-fold cross-fitting",
         "folds": len(folds),
         "seed": int(seed),
         "rows": int(len(raw)),
