@@ -61,7 +61,7 @@ def test_export_with_a_holdout_records_it_and_prints_the_refusal_report(cancer_f
     assert f"holdout      {report.holdout.rows} rows: range 0.0 %" in printed
     accuracy = np.mean(cancer_files["fitted"].predict(cancer_files["X_hold"]) == cancer_files["y_hold"])
     assert bundle.manifest.training["holdout_metrics"]["accuracy"] == pytest.approx(accuracy)
-    assert bundle.manifest.domain.calibration.source == "holdout"
+    assert bundle.manifest.domain.calibration.source == "cross-fitting"
 
 
 def test_export_warns_in_one_line_when_the_holdout_refusals_exceed_twice_the_target(cancer_files, tmp_path, capsys):
