@@ -116,9 +116,16 @@ def _domain_lines(domain: dict[str, Any] | None) -> list[str]:
         f"    unusual      {thresholds['outside_below']:.6g} <= score < {thresholds['unusual_below']:.6g} "
         f"(answered and flagged; about {100 * calibration['unusual_rate']:g} % of real rows)",
         f"    outside      score < {thresholds['outside_below']:.6g} (refused as outside_domain unless the operator "
-        f"chose to flag only; about {100 * calibration['refuse_rate']:g} % of real rows)",
+        f"chose to flag only; {_outside_share(calibration)})",
         f"    thresholds   chosen on {calibration['rows']} {_SOURCES[calibration['source']]}",
     ]
+
+
+def _outside_share(calibration: dict[str, Any]) -> str:
+    rate = f"{100 * calibration['refuse_rate']:g} %"
+    if calibration["source"] == "cross-fitting":
+        return f"set with the ranges so that both together refuse about {rate} of new rows"
+    return f"about {rate} of real rows"
 
 
 _SOURCES = {"holdout": "holdout rows", "cross-validation": "out-of-fold reference rows (no holdout was given)",
