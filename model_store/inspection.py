@@ -147,15 +147,14 @@ def _report_lines(report: dict[str, Any] | None) -> list[str]:
     sample = report.get("out_of_sample")
     if sample:
         estimate = sample["estimate"]
-        how = ("chosen so that the ranges take at most "
-               f"{100 * sample['range_share']:g} % of the budget" if sample["margin_source"] == "chosen"
-               else "given with --margin")
-        lines.extend([
+        how = (f"chosen so that the ranges take {100 * sample['range_share']:g} % of the refusal budget"
+               if sample["margin_source"] == "chosen" else "given with --margin")
+        lines.append(
             f"    new rows     estimated out of sample: range {_percent(estimate['refused_range'])}, domain "
             f"{_percent(estimate['refused_domain'])}, refused in total {_percent(estimate['refused_total'])} "
-            f"({sample['method']} over {sample['rows']} rows, seed {sample['seed']})",
-            f"    margin       {sample['margin']:.4g} x each feature's span ({how})",
-        ])
+            f"({sample['method']} over {sample['rows']} rows, seed {sample['seed']})"
+        )
+        lines.append(f"    margin       {sample['margin']:.4g} x each feature's span ({how})")
     return lines
 
 

@@ -94,7 +94,7 @@ def choose_policy(
         "method": f"ranges leave-one-out, domain {len(folds)}-fold cross-fitting",
         "folds": len(folds),
         "seed": int(seed),
-        "rows": int(len(raw)),
+        "rows": len(raw),
         "range_share": RANGE_SHARE,
         "margin": float(chosen_margin),
         "margin_source": "chosen" if margin is None else "given",

@@ -88,7 +88,7 @@ def _identity_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--out", type=Path, required=True, metavar="DIR", help="new bundle directory")
     parser.add_argument("--margin", type=float, default=None,
                         help="widen each feature's allowed range by this fraction of its reference range (default: "
-                        "chosen out of sample so that the ranges refuse at most half of --refuse-rate)")
+                        "chosen out of sample so that the ranges refuse half of --refuse-rate of new rows)")
     parser.add_argument("--refuse-rate", type=float, default=0.01, metavar="F",
                         help="share of new rows (never seen at export) the refusal policy (ranges and domain model) "
                         "should refuse, estimated by cross-fitting (default 0.01)")

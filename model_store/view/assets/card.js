@@ -127,7 +127,7 @@
     const how = sample
       ? `The margin (${fmt(sample.margin)} x each feature's span, ${sample.margin_source === "given" ? "given at export" : "chosen"}) `
         + `and the domain thresholds were chosen on rows scored out of sample (${sample.method}, seed ${sample.seed}) so that `
-        + `the two rules together refuse about ${percent(report.refuse_rate)} of new rows, at most `
+        + `the two rules together refuse about ${percent(report.refuse_rate)} of new rows, `
         + `${fmt(100 * sample.range_share)} % of that by the ranges; the last row estimates what they refuse of rows the `
         + `export never saw. The reference and holdout rows are those the policy was derived from.`
       : `What the refusal policy does to the rows the bundle was exported with; the domain thresholds were set so that `
