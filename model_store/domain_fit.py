@@ -13,7 +13,8 @@ itself; a reference row by a model fitted with the same settings on the other cr
 of the reference. Such a fold model saw fewer rows than the bundle's, and libsvm's one-class
 coefficients sum to ``nu`` x rows, so its decision is on a smaller scale: each fold's scores are
 multiplied by the ratio of the bundle model's coefficient sum to the fold model's, which puts them
-on the bundle model's scale (checked against fresh rows in tests/bundle/test_policy_fit.py).
+on the bundle model's scale (tests/bundle/test_policy_fit.py checks it where in-sample and
+out-of-sample scores agree, at the median row).
 
 This module imports scikit-learn; the serving path never imports it.
 """

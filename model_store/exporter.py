@@ -5,10 +5,9 @@ The exporter reads the reference rows (usually the training data) and, when give
 distance, the domain model (``model_store.domain_fit``), the range margin and domain thresholds
 chosen out of sample with an estimate of what they refuse (``model_store.policy_fit``), the
 refusal report, golden vectors and a fingerprint; metrics are computed on the holdout when it has
-labels. After
-writing, it reloads the bundle with the numpy scorer and compares it with scikit-learn on the
-golden vectors (classifier and one-class decisions); on any mismatch the output is removed and
-``GoldenMismatchError`` raised.
+labels. After writing, it reloads the bundle with the numpy scorer and compares it with
+scikit-learn on the golden vectors (classifier and one-class decisions); on any mismatch the
+output is removed and ``GoldenMismatchError`` raised.
 
 This module imports scikit-learn; the serving path never imports it.
 """
@@ -99,8 +98,8 @@ def export_bundle(request: ExportRequest) -> Bundle:
                          "(leave it out to have it chosen from the data)")
     check_feature_names(request.features)
     if not 0 <= request.refuse_rate < 0.5:
-        raise InputError(f"--refuse-rate {request.refuse_rate} is outside [0, 0.5); it is the share of holdout rows "
-                         "the refusal policy may refuse, e.g. 0.01")
+        raise InputError(f"--refuse-rate {request.refuse_rate} is outside [0, 0.5); it is the share of new rows "
+                         "the refusal policy should refuse, e.g. 0.01")
     if request.holdout is not None and request.holdout.shape[1] != request.reference.shape[1]:
         raise InputError(f"the holdout has {request.holdout.shape[1]} feature columns, the reference "
                          f"{request.reference.shape[1]}; give both files the same columns")
