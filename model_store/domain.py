@@ -9,8 +9,8 @@ one-class decision, exactly scikit-learn's ``decision_function``::
 
 computed by the same kernel code as the classifier (``model_store.kernel``). Larger is more typical;
 it is positive inside the estimated support and falls towards ``intercept`` (negative) far from
-every reference row. Two thresholds chosen at export on the holdout rows (or by cross-validation)
-turn it into a verdict::
+every reference row. Two thresholds chosen at export on rows scored out of sample, together with
+the range margin (``model_store.policy_fit``), turn it into a verdict::
 
     score >= unusual_below                   typical
     outside_below <= score < unusual_below   unusual  (answered, flagged)

@@ -1,4 +1,4 @@
-"""Fit the domain model at export: a one-class SVM and the thresholds of its verdicts.
+"""Fit the domain model at export: the one-class SVM of the bundle and its cross-fitted scores.
 
 scikit-learn's ``OneClassSVM`` (Schölkopf et al. 2001, "Estimating the support of a
 high-dimensional distribution") is fitted on the reference rows in the classifier's scaled space,
@@ -7,14 +7,14 @@ rows)``, fixed as a number so that the bundle records it. References larger than
 ``MAX_FIT_ROWS`` are subsampled without replacement by a generator seeded from the reference
 file's SHA-256; the seed and the row count go into the manifest.
 
-Thresholds come from rows the model was not fitted on: the holdout when there is one, else
-out-of-fold scores of ``CV_FOLDS`` one-class SVMs fitted with the same settings on the other folds
-(each scaled by the ratio of its coefficient sum to the full model's: libsvm's coefficients sum to
-``nu`` x rows, so the decision grows with the rows fitted). Of ``n`` such rows, the ``round(rate n)``
-lowest scores fall below a threshold placed halfway to the next score, so the policy refuses about
-``--refuse-rate`` of them (counting range refusals first) and flags about ``UNUSUAL_RATE`` as
-unusual. With ``round(rate n) = 0`` the threshold sits half the gap between the two lowest scores
-below the lowest one: a small holdout cannot measure a 1 % tail, so it is extrapolated.
+The thresholds of its verdicts are chosen with the range margin in ``model_store.policy_fit``, on
+scores of rows the scoring model was not fitted on: a holdout row is scored by the bundle's model
+itself; a reference row by a model fitted with the same settings on the other cross-fitting folds
+of the reference. Such a fold model saw fewer rows than the bundle's, and libsvm's one-class
+coefficients sum to ``nu`` x rows, so its decision is on a smaller scale: each fold's scores are
+multiplied by the ratio of the bundle model's coefficient sum to the fold model's, which puts them
+on the bundle model's scale (tests/bundle/test_policy_fit.py checks it where in-sample and
+out-of-sample scores agree, at the median row).
 
 This module imports scikit-learn; the serving path never imports it.
 """
@@ -25,17 +25,15 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from sklearn.model_selection import KFold
 from sklearn.svm import OneClassSVM
 
-__all__ = ["CV_FOLDS", "DEFAULT_REFUSE_RATE", "MAX_FIT_ROWS", "NU", "UNUSUAL_RATE", "FittedDomain", "fit_domain",
-           "lower_threshold"]
+__all__ = ["DEFAULT_REFUSE_RATE", "MAX_FIT_ROWS", "NU", "UNUSUAL_RATE", "FittedDomain", "cross_fitted_scores",
+           "domain_spec", "fit_one_class"]
 
 DEFAULT_REFUSE_RATE = 0.01
 UNUSUAL_RATE = 0.10
 NU = 0.05
 MAX_FIT_ROWS = 2000  # libsvm's one-class fit grows with the square of the rows
-CV_FOLDS = 5
 
 
 @dataclass(frozen=True)
@@ -47,48 +45,61 @@ class FittedDomain:
     estimator: OneClassSVM
 
 
-def fit_domain(
-    reference: np.ndarray,
-    holdout: np.ndarray | None,
-    holdout_in_range: np.ndarray | None,
-    *,
-    refuse_rate: float,
-    seed: int,
-) -> FittedDomain:
-    """Fit on ``reference`` (n, f) scaled rows; thresholds from ``holdout`` (m, f) scaled rows or CV.
+@dataclass(frozen=True)
+class OneClassFit:
+    """The bundle's one-class SVM before its thresholds are known."""
 
-    ``holdout_in_range`` (m,) bool marks the holdout rows the range rule accepts; the domain
-    threshold only spends what is left of the refusal budget after the range refusals.
-    """
+    estimator: OneClassSVM
+    gamma: float
+    fit_rows: int
+    reference_rows: int
+    subsample_seed: int | None
+
+
+def fit_one_class(reference: np.ndarray, seed: int) -> OneClassFit:
+    """Fit on ``reference`` (n, f) scaled rows (a seeded subsample of ``MAX_FIT_ROWS`` when larger)."""
     fit_rows, subsample_seed = _subsample(reference, seed)
-    gamma = 1.0 / (reference.shape[1] * float(fit_rows.var())) if fit_rows.var() > 0 else 1.0
+    variance = float(fit_rows.var())
+    gamma = 1.0 / (reference.shape[1] * variance) if variance > 0 else 1.0
     estimator = OneClassSVM(kernel="rbf", gamma=gamma, nu=NU).fit(fit_rows)
-    if holdout is not None and len(holdout) >= 2:
-        scores = estimator.decision_function(holdout)
-        in_range = holdout_in_range if holdout_in_range is not None else np.ones(len(holdout), bool)
-        source = "holdout"
-    else:
-        scores = _out_of_fold(fit_rows, gamma, estimator, seed)
-        in_range = np.ones(len(scores), bool)
-        source = "cross-validation"
-    total = len(scores)
-    eligible = np.sort(scores[in_range])
-    range_refused = total - len(eligible)
-    outside = lower_threshold(eligible, max(0, round(refuse_rate * total) - range_refused))
-    unusual = max(outside, lower_threshold(eligible, round(UNUSUAL_RATE * total)))
+    return OneClassFit(estimator, gamma, len(fit_rows), len(reference), subsample_seed)
+
+
+def cross_fitted_scores(reference: np.ndarray, folds: list[np.ndarray], full: OneClassFit, seed: int) -> np.ndarray:
+    """(n,) score of each ``reference`` (n, f) row by a model fitted on the other ``folds``, on ``full``'s scale.
+
+    ``folds`` partition ``range(n)``; each fold model is fitted like ``full`` (same gamma and nu,
+    the same subsample bound) on the rows outside its fold. A fold that leaves fewer than 2 rows to
+    fit on (a reference of 2 or 3 rows) keeps ``full``'s own, in-sample scores.
+    """
+    scores = full.estimator.decision_function(reference)  # kept only where a fold leaves under 2 rows to fit
+    full_mass = float(full.estimator.dual_coef_.sum())
+    for index, held in enumerate(folds):
+        others = np.setdiff1d(np.arange(len(reference)), held, assume_unique=True)
+        if len(held) == 0 or len(others) < 2:
+            continue
+        rows, _ = _subsample(reference[others], seed + index + 1)
+        model = OneClassSVM(kernel="rbf", gamma=full.gamma, nu=NU).fit(rows)
+        scores[held] = model.decision_function(reference[held]) * (full_mass / float(model.dual_coef_.sum()))
+    return scores
+
+
+def domain_spec(fit: OneClassFit, thresholds: dict[str, float], calibration: dict[str, Any]) -> FittedDomain:
+    """The bundle's domain section and arrays for ``fit`` with the chosen ``thresholds``."""
+    estimator = fit.estimator
     spec = {
         "method": "one-class-svm",
         "space": "scaled",
-        "gamma": float(gamma),
+        "gamma": float(fit.gamma),
         "nu": NU,
         "intercept": float(estimator.intercept_[0]),
         "support_vectors": int(len(estimator.support_vectors_)),
-        "fit_rows": int(len(fit_rows)),
-        "reference_rows": int(len(reference)),
-        "subsample_seed": subsample_seed,
-        "thresholds": {"unusual_below": float(unusual), "outside_below": float(outside)},
-        "calibration": {"source": source, "rows": int(total), "refuse_rate": float(refuse_rate),
-                        "unusual_rate": UNUSUAL_RATE},
+        "fit_rows": int(fit.fit_rows),
+        "reference_rows": int(fit.reference_rows),
+        "subsample_seed": fit.subsample_seed,
+        "thresholds": {"unusual_below": float(thresholds["unusual_below"]),
+                       "outside_below": float(thresholds["outside_below"])},
+        "calibration": calibration,
     }
     arrays = {
         "domain_support_vectors.npy": estimator.support_vectors_,
@@ -97,30 +108,8 @@ def fit_domain(
     return FittedDomain(spec, arrays, estimator)
 
 
-def lower_threshold(ascending: np.ndarray, count: int) -> float:
-    """A threshold with ``count`` of the ``ascending`` scores below it (ties aside), halfway to the next."""
-    if len(ascending) == 0:
-        return -np.inf
-    if count >= len(ascending):
-        return float(ascending[-1]) + 1e-12 * max(1.0, abs(float(ascending[-1])))
-    if count > 0:
-        return float(0.5 * (ascending[count - 1] + ascending[count]))
-    gap = float(ascending[1] - ascending[0]) if len(ascending) > 1 else abs(float(ascending[0]))
-    return float(ascending[0]) - 0.5 * gap
-
-
 def _subsample(reference: np.ndarray, seed: int) -> tuple[np.ndarray, int | None]:
     if len(reference) <= MAX_FIT_ROWS:
         return reference, None
     rows = np.sort(np.random.default_rng(seed).choice(len(reference), MAX_FIT_ROWS, replace=False))
     return reference[rows], seed
-
-
-def _out_of_fold(rows: np.ndarray, gamma: float, full: OneClassSVM, seed: int) -> np.ndarray:
-    folds = KFold(n_splits=min(CV_FOLDS, len(rows)), shuffle=True, random_state=seed % 2**32)
-    scores = np.empty(len(rows))
-    full_mass = float(full.dual_coef_.sum())
-    for fitted, held in folds.split(rows):
-        model = OneClassSVM(kernel="rbf", gamma=gamma, nu=NU).fit(rows[fitted])
-        scores[held] = model.decision_function(rows[held]) * (full_mass / float(model.dual_coef_.sum()))
-    return scores

@@ -2,11 +2,12 @@
 
 The exporter reads the reference rows (usually the training data) and, when given, holdout rows
 (not used in fitting) to derive allowed ranges, the reference distribution of nearest-support
-distance, the domain model and its thresholds (``model_store.domain_fit``), the refusal report,
-golden vectors and a fingerprint; metrics are computed on the holdout when it has labels. After
-writing, it reloads the bundle with the numpy scorer and compares it with scikit-learn on the
-golden vectors (classifier and one-class decisions); on any mismatch the output is removed and
-``GoldenMismatchError`` raised.
+distance, the domain model (``model_store.domain_fit``), the range margin and domain thresholds
+chosen out of sample with an estimate of what they refuse (``model_store.policy_fit``), the
+refusal report, golden vectors and a fingerprint; metrics are computed on the holdout when it has
+labels. After writing, it reloads the bundle with the numpy scorer and compares it with
+scikit-learn on the golden vectors (classifier and one-class decisions); on any mismatch the
+output is removed and ``GoldenMismatchError`` raised.
 
 This module imports scikit-learn; the serving path never imports it.
 """
@@ -26,12 +27,13 @@ import sklearn
 
 from model_store.bundle import GOLDEN_TOLERANCE, Bundle, load_bundle, write_bundle
 from model_store.client_names import client_name_warnings
-from model_store.domain_fit import DEFAULT_REFUSE_RATE, FittedDomain, fit_domain
+from model_store.domain_fit import DEFAULT_REFUSE_RATE, UNUSUAL_RATE, FittedDomain, domain_spec, fit_one_class
 from model_store.errors import GoldenMismatchError, InputError
 from model_store.estimator_parts import ModelParts, plain_arrays_accepted
 from model_store.manifest import FORMAT
 from model_store.metrics import classification_metrics
 from model_store.naming import check_name
+from model_store.policy_fit import ChosenPolicy, choose_policy
 from model_store.reference_rows import QUANTILE_LEVELS, feature_ranges, leave_self_out_distances, refusal_shares
 from model_store.refusal import RECORD_ID
 
@@ -46,7 +48,7 @@ __all__ = [
     "export_bundle",
 ]
 
-DEFAULT_MARGIN = 0.05
+DEFAULT_MARGIN: float | None = None  # chosen out of sample (model_store.policy_fit)
 GOLDEN_FROM_REFERENCE = 32
 GOLDEN_SYNTHETIC = 8
 # Every 5 %, plus 1 % and 99 %: 23 numbers per feature keep the manifest small for wide models.
@@ -61,7 +63,8 @@ class ExportRequest:
     reference_labels: n true labels, or None when the reference has no target
     holdout:          (m, f) float64 rows not used in fitting, or None
     holdout_labels:   m true labels, or None
-    refuse_rate:      the share of holdout rows the whole refusal policy may refuse
+    margin:           range widening as a fraction of each feature's span; None: chosen out of sample
+    refuse_rate:      the share of rows never seen at export that the whole refusal policy may refuse
     """
 
     parts: ModelParts
@@ -73,7 +76,7 @@ class ExportRequest:
     name: str
     version: str
     out: Path
-    margin: float = DEFAULT_MARGIN
+    margin: float | None = DEFAULT_MARGIN
     feature_info: dict[str, dict] = field(default_factory=dict)
     reference_role: str = "reference data given to export"
     training: dict[str, Any] = field(default_factory=dict)
@@ -90,12 +93,13 @@ def export_bundle(request: ExportRequest) -> Bundle:
     """Write the bundle to ``request.out`` and verify it against scikit-learn; return it loaded."""
     check_name(request.name, what="model name")
     check_name(request.version, what="model version")
-    if not 0 <= request.margin <= 10:
-        raise InputError(f"--margin {request.margin} is outside [0, 10]; it is a fraction of each feature's range")
+    if request.margin is not None and not 0 <= request.margin <= 10:
+        raise InputError(f"--margin {request.margin} is outside [0, 10]; it is a fraction of each feature's range "
+                         "(leave it out to have it chosen from the data)")
     check_feature_names(request.features)
     if not 0 <= request.refuse_rate < 0.5:
-        raise InputError(f"--refuse-rate {request.refuse_rate} is outside [0, 0.5); it is the share of holdout rows "
-                         "the refusal policy may refuse, e.g. 0.01")
+        raise InputError(f"--refuse-rate {request.refuse_rate} is outside [0, 0.5); it is the share of new rows "
+                         "the refusal policy should refuse, e.g. 0.01")
     if request.holdout is not None and request.holdout.shape[1] != request.reference.shape[1]:
         raise InputError(f"the holdout has {request.holdout.shape[1]} feature columns, the reference "
                          f"{request.reference.shape[1]}; give both files the same columns")
@@ -115,10 +119,10 @@ def export_bundle(request: ExportRequest) -> Bundle:
         raise InputError(f"feature info names {unknown[0]!r}, which is not a feature; features are {request.features}")
     reference = request.reference
     golden_inputs = _golden_inputs(reference, request.reference_sha256)
-    ranges = feature_ranges(request.features, _rows_seen(request), request.margin, request.feature_info)
-    domain = _fit_domain(request, ranges)
+    policy, domain = _fit_policy(request)
+    ranges = feature_ranges(request.features, _rows_seen(request), policy.margin, request.feature_info)
     with plain_arrays_accepted():
-        document = _document(request, golden_inputs, ranges, domain)
+        document = _document(request, golden_inputs, ranges, domain, policy)
         arrays = {
             "support_vectors.npy": parts.svc.support_vectors_,
             "dual_coef.npy": parts.svc.dual_coef_,
@@ -153,21 +157,26 @@ def _in_range(raw: np.ndarray, ranges) -> np.ndarray:
     return ((raw >= low) & (raw <= high)).all(axis=1)
 
 
-def _fit_domain(request: ExportRequest, ranges) -> FittedDomain:
+def _fit_policy(request: ExportRequest) -> tuple[ChosenPolicy, FittedDomain]:
+    """The domain model, then the margin and thresholds chosen on cross-fitted rows (``model_store.policy_fit``)."""
     parts = request.parts
-    holdout = request.holdout
-    return fit_domain(
-        _scaled(parts, request.reference),
-        None if holdout is None else _scaled(parts, holdout),
-        None if holdout is None else _in_range(holdout, ranges),
-        refuse_rate=request.refuse_rate,
-        seed=int(request.reference_sha256[:8], 16),
-    )
+    seed = int(request.reference_sha256[:8], 16)
+    scaled_reference = _scaled(parts, request.reference)
+    scaled_holdout = None if request.holdout is None else _scaled(parts, request.holdout)
+    one_class = fit_one_class(scaled_reference, seed)
+    policy = choose_policy(request.features, _rows_seen(request), scaled_reference, scaled_holdout, one_class,
+                           feature_info=request.feature_info, refuse_rate=request.refuse_rate,
+                           margin=request.margin, seed=seed)
+    calibration = {"source": "cross-fitting", "rows": policy.record["rows"], "refuse_rate": float(request.refuse_rate),
+                   "unusual_rate": UNUSUAL_RATE}
+    thresholds = {"unusual_below": policy.unusual_below, "outside_below": policy.outside_below}
+    return policy, domain_spec(one_class, thresholds, calibration)
 
 
-def _refusal_report(request: ExportRequest, ranges, domain: FittedDomain) -> dict[str, Any]:
+def _refusal_report(request: ExportRequest, ranges, domain: FittedDomain, policy: ChosenPolicy) -> dict[str, Any]:
     thresholds = domain.spec["thresholds"]
-    report: dict[str, Any] = {"refuse_rate": float(request.refuse_rate), "holdout": None}
+    report: dict[str, Any] = {"refuse_rate": float(request.refuse_rate), "holdout": None,
+                              "out_of_sample": policy.record}
     for key, rows in (("reference", request.reference), ("holdout", request.holdout)):
         if rows is None:
             continue
@@ -190,7 +199,8 @@ def _check_domain(bundle: Bundle, domain: FittedDomain, golden_inputs: np.ndarra
         )
 
 
-def _document(request: ExportRequest, golden_inputs: np.ndarray, ranges, domain: FittedDomain) -> dict[str, Any]:
+def _document(request: ExportRequest, golden_inputs: np.ndarray, ranges, domain: FittedDomain,
+              policy: ChosenPolicy) -> dict[str, Any]:
     parts = request.parts
     svc = parts.svc
     gamma = float(svc._gamma)  # the fitted number behind gamma='scale' or 'auto'
@@ -222,7 +232,7 @@ def _document(request: ExportRequest, golden_inputs: np.ndarray, ranges, domain:
         },
         "golden": _golden(parts, golden_inputs),
         "domain": domain.spec,
-        "refusal_report": _refusal_report(request, ranges, domain),
+        "refusal_report": _refusal_report(request, ranges, domain, policy),
     }
 
 

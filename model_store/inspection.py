@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 from model_store.bundle import Bundle
@@ -115,26 +116,45 @@ def _domain_lines(domain: dict[str, Any] | None) -> list[str]:
         f"    unusual      {thresholds['outside_below']:.6g} <= score < {thresholds['unusual_below']:.6g} "
         f"(answered and flagged; about {100 * calibration['unusual_rate']:g} % of real rows)",
         f"    outside      score < {thresholds['outside_below']:.6g} (refused as outside_domain unless the operator "
-        f"chose to flag only; about {100 * calibration['refuse_rate']:g} % of real rows)",
+        f"chose to flag only; {_outside_share(calibration)})",
         f"    thresholds   chosen on {calibration['rows']} {_SOURCES[calibration['source']]}",
     ]
 
 
-_SOURCES = {"holdout": "holdout rows", "cross-validation": "out-of-fold reference rows (no holdout was given)"}
+def _outside_share(calibration: dict[str, Any]) -> str:
+    rate = f"{100 * calibration['refuse_rate']:g} %"
+    if calibration["source"] == "cross-fitting":
+        return f"set with the ranges so that both together refuse about {rate} of new rows"
+    return f"about {rate} of real rows"
+
+
+_SOURCES = {"holdout": "holdout rows", "cross-validation": "out-of-fold reference rows (no holdout was given)",
+            "cross-fitting": "rows scored out of sample, with the range margin (see refusals)"}
 
 
 def _report_lines(report: dict[str, Any] | None) -> list[str]:
     if report is None:
         return []
-    lines = [f"  refusals     share of rows (target: at most {100 * report['refuse_rate']:g} % of real rows refused)"]
+    lines = [f"  refusals     share of rows (target: about {100 * report['refuse_rate']:g} % of new rows refused)"]
     for title in ("reference", "holdout"):
         shares = report.get(title)
         if shares:
             lines.append(
                 f"    {title:<12} {shares['rows']} rows: range {_percent(shares['refused_range'])}, domain "
                 f"{_percent(shares['refused_domain'])}, flagged unusual {_percent(shares['flagged_unusual'])}, "
-                f"refused in total {_percent(shares['refused_total'])}"
+                f"refused in total {_percent(shares['refused_total'])} (rows the policy was derived from)"
             )
+    sample = report.get("out_of_sample")
+    if sample:
+        estimate = sample["estimate"]
+        how = (f"chosen so that the ranges take {100 * sample['range_share']:g} % of the refusal budget"
+               if sample["margin_source"] == "chosen" else "given with --margin")
+        lines.append(
+            f"    new rows     estimated out of sample: range {_percent(estimate['refused_range'])}, domain "
+            f"{_percent(estimate['refused_domain'])}, refused in total {_percent(estimate['refused_total'])} "
+            f"({sample['method']} over {sample['rows']} rows, seed {sample['seed']})"
+        )
+        lines.append(f"    margin       {sample['margin']:.4g} x each feature's span ({how})")
     return lines
 
 
@@ -149,16 +169,39 @@ def refusal_report_lines(manifest: Manifest) -> list[str]:
 
 
 def refusal_warning(manifest: Manifest) -> str | None:
-    """One line when the holdout share refused exceeds twice the target, naming the rule that refuses most."""
+    """One line when the out-of-sample refusal estimate exceeds twice the target, saying why and what to do.
+
+    When the rows refused in the estimate are no more than chance allows at the bound (one-sided
+    Poisson tail of at least ``_CHANCE`` with mean 2 x refuse_rate x rows, common practice for rare
+    counts), the dataset size is named as the cause; otherwise the rule that refuses most.
+    """
     report = manifest.refusal_report
-    if report is None or report.holdout is None or report.holdout.refused_total <= 2 * report.refuse_rate:
+    sample = None if report is None else report.out_of_sample
+    if sample is None or sample.estimate.refused_total <= 2 * report.refuse_rate:
         return None
-    shares = report.holdout
-    if shares.refused_range >= shares.refused_domain:
-        rule = (f"the ranges refuse most ({_percent(shares.refused_range)}); widen them with --margin or the "
-                "feature-info file's allowed/bounds")
+    estimate, rows = sample.estimate, sample.rows
+    refused = round(estimate.refused_total * rows)
+    if _poisson_tail(refused, 2 * report.refuse_rate * rows) >= _CHANCE:
+        cause = (f"{rows} rows are too few to tell this from the bound ({refused} rows refused, within chance "
+                 f"of the {2 * report.refuse_rate * rows:.1f} the bound allows); give more rows (a larger "
+                 "reference or a --holdout) or a larger --refuse-rate")
+    elif estimate.refused_range >= estimate.refused_domain:
+        cause = (f"the ranges refuse most ({_percent(estimate.refused_range)}); widen them with --margin or the "
+                 "feature-info file's allowed/bounds")
     else:
-        rule = (f"the domain model refuses most ({_percent(shares.refused_domain)}); give more holdout rows "
-                "or a lower --refuse-rate")
-    return (f"the refusal policy refuses {_percent(shares.refused_total)} of the {shares.rows} holdout rows, more than "
-            f"twice --refuse-rate {report.refuse_rate:g}; {rule}")
+        cause = (f"the domain model refuses most ({_percent(estimate.refused_domain)}); give more rows "
+                 "or a lower --refuse-rate")
+    return (f"the refusal policy is estimated to refuse {_percent(estimate.refused_total)} of new rows "
+            f"({sample.method} over {rows} rows), more than twice --refuse-rate {report.refuse_rate:g}; {cause}")
+
+
+_CHANCE = 0.05
+
+
+def _poisson_tail(count: int, mean: float) -> float:
+    """P(X >= count) for X ~ Poisson(mean)."""
+    term = below = math.exp(-mean)  # P(X = 0); each next term is the last x mean / k
+    for k in range(1, count):
+        term *= mean / k
+        below += term
+    return max(0.0, 1.0 - below) if count > 0 else 1.0

@@ -36,6 +36,8 @@ __all__ = [
     "GoldenVectors",
     "KernelSpec",
     "Manifest",
+    "OutOfSample",
+    "RefusalEstimate",
     "RefusalReport",
     "RuleShares",
     "ScalerSpec",
@@ -196,9 +198,13 @@ class DomainThresholds(_Strict):
 
 
 class DomainCalibration(_Strict):
-    """Where the thresholds come from: the share of real rows each verdict may take."""
+    """Where the thresholds come from: the share of real rows each verdict may take.
 
-    source: Literal["holdout", "cross-validation"]
+    ``cross-fitting``: chosen with the range margin on out-of-sample rows (``refusal_report.out_of_sample``);
+    ``holdout`` and ``cross-validation``: bundles exported before that, thresholds alone.
+    """
+
+    source: Literal["cross-fitting", "holdout", "cross-validation"]
     rows: int = Field(ge=1)
     refuse_rate: float = Field(ge=0, le=1)
     unusual_rate: float = Field(ge=0, le=1)
@@ -235,12 +241,38 @@ class RuleShares(_Strict):
     refused_total: float = Field(ge=0, le=1)
 
 
+class RefusalEstimate(_Strict):
+    """Shares (0-1) of rows refused by a policy chosen without them: per rule and in total."""
+
+    refused_range: float = Field(ge=0, le=1)
+    refused_domain: float = Field(ge=0, le=1)
+    refused_total: float = Field(ge=0, le=1)
+
+
+class OutOfSample(_Strict):
+    """How the margin and the domain thresholds were chosen on cross-fitted rows (``model_store.policy_fit``)."""
+
+    method: str
+    folds: int = Field(ge=1)
+    seed: int = Field(ge=0)
+    rows: int = Field(ge=1)
+    range_share: float = Field(ge=0, le=1)
+    margin: float = Field(ge=0)
+    margin_source: Literal["chosen", "given"]
+    estimate: RefusalEstimate
+
+
 class RefusalReport(_Strict):
-    """What the refusal policy does to the rows the bundle was exported with."""
+    """What the refusal policy does to the rows the bundle was exported with, and to rows it never saw.
+
+    ``reference`` and ``holdout`` are in-sample shares; ``out_of_sample`` (absent in bundles exported
+    before it) holds the estimate for new rows.
+    """
 
     refuse_rate: float = Field(ge=0, le=1)
     reference: RuleShares
     holdout: RuleShares | None = None
+    out_of_sample: OutOfSample | None = None
 
 
 class FileEntry(_Strict):

@@ -43,7 +43,7 @@ def export_model_file(
     version: str,
     out: Path,
     target: str | None = None,
-    margin: float = DEFAULT_MARGIN,
+    margin: float | None = DEFAULT_MARGIN,
     feature_info: dict[str, dict] | None = None,
     holdout_path: Path | None = None,
     refuse_rate: float = DEFAULT_REFUSE_RATE,

@@ -7,6 +7,10 @@ gets a negative lower bound (common practice: counts, areas and concentrations a
 recorded as ``non_negative`` in the manifest; give ``bounds`` for a feature that can go negative
 (a temperature in degrees Celsius) and was only positive in the data.
 
+``margin_needed`` is the same rule turned around: the smallest margin at which ranges derived from
+some rows accept another row, which is how the exporter measures range refusals out of sample
+(``model_store.policy_fit``).
+
 Nearest-support distance quantiles: for each reference row, the distance to the nearest support
 vector *other than itself* (a reference row within 1e-9 x max(1, |z|) of a support vector is that
 support vector, so it is compared with the others; otherwise every support vector counts), and for
@@ -20,7 +24,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["QUANTILE_LEVELS", "feature_ranges", "leave_self_out_distances", "refusal_shares"]
+__all__ = ["QUANTILE_LEVELS", "feature_ranges", "leave_self_out_distances", "margin_needed", "refusal_shares"]
 
 QUANTILE_LEVELS = np.linspace(0.0, 1.0, 101)
 _SELF_TOLERANCE = 1e-9
@@ -49,6 +53,32 @@ def feature_ranges(
             lower, upper = max(lower, bounds[0]), min(upper, bounds[1])
         ranges.append(([float(lower), float(upper)], non_negative))
     return ranges
+
+
+def margin_needed(names: list[str], fitted: np.ndarray, rows: np.ndarray, feature_info: dict[str, dict]) -> np.ndarray:
+    """(m,) the smallest margin at which ``feature_ranges(names, fitted, margin, ...)`` accepts each of ``rows`` (m, f).
+
+    ``fitted`` (n, f) are the rows the ranges are derived from. A row that no margin lets in (outside
+    an explicit ``allowed`` range or the physical ``bounds``, or negative where the fitted rows infer
+    a non-negative feature) needs ``inf``; a row inside the fitted min/max needs 0. A row is accepted
+    at margin ``m`` exactly when its need is ``<= m`` (up to rounding in ``low - m x span``).
+    """
+    low, high = fitted.min(axis=0), fitted.max(axis=0)
+    span = np.where(high > low, high - low, np.maximum(np.abs(low), 1.0))
+    need = np.maximum(np.maximum((low - rows) / span, (rows - high) / span), 0.0)  # (m, f)
+    for index, name in enumerate(names):
+        info = feature_info.get(name, {})
+        column = rows[:, index]
+        if info.get("allowed"):
+            low_allowed, high_allowed = info["allowed"]
+            need[:, index] = np.where((column < low_allowed) | (column > high_allowed), np.inf, 0.0)
+            continue
+        bounds = info.get("bounds")
+        if bounds is not None:
+            need[(column < bounds[0]) | (column > bounds[1]), index] = np.inf
+        elif low[index] >= 0:  # inferred non-negative: the lower bound never goes below 0
+            need[column < 0, index] = np.inf
+    return need.max(axis=1) if need.shape[1] else np.zeros(len(rows))
 
 
 def leave_self_out_distances(scaled: np.ndarray, support_vectors: np.ndarray, *, exclude_self: bool) -> np.ndarray:

@@ -56,7 +56,7 @@ class TrainRequest:
     calibration: str = "sigmoid"
     test_size: float = 0.25
     seed: int = 0
-    margin: float = DEFAULT_MARGIN
+    margin: float | None = DEFAULT_MARGIN
     refuse_rate: float = DEFAULT_REFUSE_RATE
     feature_info: dict[str, dict] = field(default_factory=dict)
     progress: bool | None = None  # None: show a progress bar only on a terminal

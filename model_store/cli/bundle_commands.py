@@ -62,8 +62,8 @@ def _add_export(subparsers) -> None:
     _identity_arguments(parser)
     parser.add_argument("--target", help="label column of the reference and holdout CSV (excluded from the features)")
     parser.add_argument("--holdout", type=Path, metavar="HOLDOUT.csv",
-                        help="rows not used in fitting, same columns as the reference: metrics, ranges, domain "
-                        "thresholds and the refusal report (without it the thresholds come from cross-validation)")
+                        help="rows not used in fitting, same columns as the reference: metrics, and more rows for "
+                        "the ranges, the choice of the margin and domain thresholds and the refusal report")
     parser.set_defaults(handler=_export)
 
 
@@ -86,11 +86,12 @@ def _identity_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--name", required=True, help="model name (letters, digits, . _ -)")
     parser.add_argument("--version", required=True, help="model version (letters, digits, . _ -)")
     parser.add_argument("--out", type=Path, required=True, metavar="DIR", help="new bundle directory")
-    parser.add_argument("--margin", type=float, default=0.05,
-                        help="widen each feature's allowed range by this fraction of its reference range (default 0.05)")
+    parser.add_argument("--margin", type=float, default=None,
+                        help="widen each feature's allowed range by this fraction of its reference range (default: "
+                        "chosen out of sample so that the ranges refuse half of --refuse-rate of new rows)")
     parser.add_argument("--refuse-rate", type=float, default=0.01, metavar="F",
-                        help="share of holdout rows the refusal policy (ranges and domain model) may refuse "
-                        "(default 0.01)")
+                        help="share of new rows (never seen at export) the refusal policy (ranges and domain model) "
+                        "should refuse, estimated by cross-fitting (default 0.01)")
     parser.add_argument("--feature-info", type=Path, metavar="FILE.json",
                         help='units, descriptions and ranges: {"feature": {"unit": ..., "description": ..., '
                         '"allowed": [low, high] (replaces the derived range), "bounds": [low, high] (physical limits '

@@ -69,21 +69,17 @@ def test_verdicts_follow_the_manifest_thresholds(tmp_path):
     assert scores.domain_verdict[-1] == "outside"
 
 
-def test_thresholds_refuse_about_the_refuse_rate_of_the_holdout(tmp_path):
-    # round(0.01 x 171) = 2 of the cancer holdout rows fall below the outside threshold, and
-    # round(0.10 x 171) = 17 below the unusual one (none are refused by the ranges, which include them).
-    bundle, _, _, holdout = _exported("cancer", tmp_path)
-    score = bundle.score(holdout).domain_score
-    thresholds = bundle.manifest.domain.thresholds
-    assert int((score < thresholds.outside_below).sum()) == round(0.01 * len(holdout))
-    assert int((score < thresholds.unusual_below).sum()) == round(0.10 * len(holdout))
-    assert bundle.manifest.domain.calibration.source == "holdout"
+def test_thresholds_are_chosen_on_the_reference_and_holdout_rows_together(tmp_path):
+    bundle, _, reference, holdout = _exported("cancer", tmp_path)
+    calibration = bundle.manifest.domain.calibration
+    assert calibration.source == "cross-fitting" and calibration.rows == len(reference) + len(holdout)
+    assert bundle.manifest.refusal_report.out_of_sample.rows == len(reference) + len(holdout)
 
 
-def test_without_a_holdout_the_thresholds_come_from_cross_validation(tmp_path):
+def test_without_a_holdout_the_thresholds_come_from_the_reference_rows_alone(tmp_path):
     bundle, _, reference, _ = _exported("wine", tmp_path, with_holdout=False)
     calibration = bundle.manifest.domain.calibration
-    assert calibration.source == "cross-validation" and calibration.rows == len(reference)
+    assert calibration.source == "cross-fitting" and calibration.rows == len(reference)
     assert bundle.manifest.refusal_report.holdout is None
 
 

@@ -61,7 +61,7 @@ def test_export_with_a_holdout_records_it_and_prints_the_refusal_report(cancer_f
     assert f"holdout      {report.holdout.rows} rows: range 0.0 %" in printed
     accuracy = np.mean(cancer_files["fitted"].predict(cancer_files["X_hold"]) == cancer_files["y_hold"])
     assert bundle.manifest.training["holdout_metrics"]["accuracy"] == pytest.approx(accuracy)
-    assert bundle.manifest.domain.calibration.source == "holdout"
+    assert bundle.manifest.domain.calibration.source == "cross-fitting"
 
 
 def test_export_warns_in_one_line_when_the_holdout_refusals_exceed_twice_the_target(cancer_files, tmp_path, capsys):
@@ -121,3 +121,34 @@ def test_the_outside_domain_choice_is_made_with_a_reason_and_kept_in_the_history
     capsys.readouterr()
     assert main(["outside-domain", "cancer", "--store", str(store)]) == 0
     assert "refused (outside_domain)" in capsys.readouterr().out
+
+
+def test_export_names_the_dataset_size_when_the_estimate_exceeds_the_bound_within_chance(tmp_path, capsys):
+    # 40 iris rows (Fisher 1936, shipped with scikit-learn): a 1 % budget is 0.4 rows, so the
+    # estimate rests on a row or two. Reference for "within chance": scipy's Poisson upper tail.
+    from scipy.stats import poisson
+    from sklearn.datasets import load_iris
+
+    X, y = load_iris(return_X_y=True)
+    keep = np.random.default_rng(0).permutation(len(X))[:40]
+    joblib.dump(make_pipeline(StandardScaler(), SVC()).fit(X[keep], y[keep]), tmp_path / "model.joblib")
+    _write(tmp_path / "reference.csv", X[keep], y[keep], ["a", "b", "c", "d"])
+    assert main(["export", str(tmp_path / "model.joblib"), "--reference", str(tmp_path / "reference.csv"),
+                 "--target", "diagnosis", "--name", "iris", "--version", "1", "--out", str(tmp_path / "b")]) == 0
+    warnings = [line for line in capsys.readouterr().err.splitlines() if line.startswith("warning:")]
+    sample = load_bundle(tmp_path / "b").manifest.refusal_report.out_of_sample
+    refused = round(sample.estimate.refused_total * sample.rows)
+    assert sample.estimate.refused_total > 2 * 0.01 and poisson.sf(refused - 1, 2 * 0.01 * sample.rows) >= 0.05
+    assert len(warnings) == 1 and "40 rows are too few to tell" in warnings[0], warnings
+
+
+def test_inspect_shows_the_out_of_sample_estimate_and_the_margin(cancer_files, tmp_path, capsys):
+    assert _export(cancer_files, tmp_path / "b") == 0
+    capsys.readouterr()
+    assert main(["inspect", str(tmp_path / "b")]) == 0
+    printed = capsys.readouterr().out
+    sample = load_bundle(tmp_path / "b").manifest.refusal_report.out_of_sample
+    assert (f"new rows     estimated out of sample: range {100 * sample.estimate.refused_range:.1f} %, domain "
+            f"{100 * sample.estimate.refused_domain:.1f} %, refused in total {100 * sample.estimate.refused_total:.1f} %"
+            in printed)
+    assert f"margin       {sample.margin:.4g} x each feature's span (chosen" in printed

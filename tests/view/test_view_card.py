@@ -37,6 +37,8 @@ def test_card_page_shows_identity_classes_metrics_and_every_plot_to_an_audit_tok
     assert f"outside below {thresholds.outside_below:.4g}" in text.replace("e-0", "e-")
     report = page.inner_text("#refusal-report")
     assert f"{100 * bundle.manifest.refusal_report.reference.refused_total:.2f} %" in report
+    sample = bundle.manifest.refusal_report.out_of_sample
+    assert f"new rows (estimated)\t{sample.rows}\t{100 * sample.estimate.refused_range:.2f} %" in report
     _assert_every_plot_drawn(page, bundle)
     with page.expect_download() as download:
         page.click("#download")

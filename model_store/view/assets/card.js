@@ -118,14 +118,26 @@
     const columns = [["rows", "rows", fmt], ["refused_range", "refused by a range", percent],
       ["refused_domain", "refused outside the domain", percent], ["flagged_unusual", "answered, flagged unusual", percent],
       ["refused_total", "refused in all", percent]];
+    const sample = report.out_of_sample;
     const rows = [["reference", report.reference], ["holdout", report.holdout]].filter(([, shares]) => shares);
+    if (sample) {  // bundles exported before the out-of-sample choice have no estimate
+      rows.push(["new rows (estimated)", Object.assign({rows: sample.rows, flagged_unusual: null}, sample.estimate)]);
+    }
+    const show = (value, format) => (value === null || value === undefined ? "not estimated" : format(value));
+    const how = sample
+      ? `The margin (${fmt(sample.margin)} x each feature's span, ${sample.margin_source === "given" ? "given at export" : "chosen"}) `
+        + `and the domain thresholds were chosen on rows scored out of sample (${sample.method}, seed ${sample.seed}) so that `
+        + `the two rules together refuse about ${percent(report.refuse_rate)} of new rows, `
+        + `${fmt(100 * sample.range_share)} % of that by the ranges; the last row estimates what they refuse of rows the `
+        + `export never saw. The reference and holdout rows are those the policy was derived from.`
+      : `What the refusal policy does to the rows the bundle was exported with; the domain thresholds were set so that `
+        + `about ${percent(report.refuse_rate)} of real rows are refused.`;
     return panel("Refusal report",
-      el("p", {class: "legend-note"}, `What the refusal policy does to the rows the bundle was exported with; `
-        + `the domain thresholds were set so that about ${percent(report.refuse_rate)} of real rows are refused.`),
+      el("p", {class: "legend-note"}, how),
       el("div", {class: "table-wrap"}, el("table", {id: "refusal-report"},
         el("thead", {}, el("tr", {}, el("th", {}, "rows from"), columns.map(([, label]) => el("th", {}, label)))),
         el("tbody", {}, rows.map(([name, shares]) => el("tr", {}, el("td", {}, name),
-          columns.map(([key, , show]) => el("td", {}, show(shares[key])))))))));
+          columns.map(([key, , format]) => el("td", {}, show(shares[key], format)))))))));
   }
 
   // The domain model and the service's thresholds; resolves to the chart's Vega view (or null).
@@ -140,7 +152,9 @@
       facts([
         ["model", `${domain.method}, nu ${fmt(domain.nu)}, gamma ${fmt(domain.gamma)}, ${fmt(domain.support_vectors)} support vectors, fitted on ${fmt(domain.fit_rows)} rows`],
         ["thresholds", `outside below ${fmt(domain.thresholds.outside_below)}, unusual below ${fmt(domain.thresholds.unusual_below)}`],
-        ["set from", `${fmt(calibration.rows)} ${calibration.source} rows: about ${percent(calibration.refuse_rate)} outside, ${percent(calibration.unusual_rate)} unusual`],
+        ["set from", calibration.source === "cross-fitting"
+          ? `${fmt(calibration.rows)} rows scored out of sample, with the range margin: about ${percent(calibration.refuse_rate)} refused by ranges and domain together, ${percent(calibration.unusual_rate)} unusual`
+          : `${fmt(calibration.rows)} ${calibration.source} rows: about ${percent(calibration.refuse_rate)} outside, ${percent(calibration.unusual_rate)} unusual`],
       ]));
     container.append(section);
     const box = el("div", {});
