@@ -27,6 +27,7 @@ from __future__ import annotations
 from itertools import chain
 from typing import Any
 
+import numpy as np
 import orjson
 from starlette.requests import ClientDisconnect, Request
 
@@ -91,8 +92,9 @@ def parse_json(data: bytes) -> Any:
 _UNDECIDED = object()
 # 19 digits in a row may be an integer past 64 bits (-9223372036854775809, say), which orjson reads
 # as a float where JSON's own parser, and so strict_json, keeps an exact int; 18 digits never are.
-# Floats as Python and JavaScript write them have at most 17 digits in a row.
-# (Found by mapping every digit to "0" and searching for 19 of them: a regex took 6 ms on 270 KB.)
+# A float's fraction may hold more (0.0012345678901234567), so only runs not after a "." count.
+# (Found first by mapping every digit to "0" and searching for 19 of them, a C-speed pass: a regex
+# took 6 ms on 270 KB; only a body with such a run is then looked at with numpy.)
 _DIGITS_AS_ZERO = bytes.maketrans(b"123456789", b"000000000")
 _LONG_DIGITS = b"0" * 19
 _CONTAINER_KINDS = frozenset({dict, list})
@@ -105,12 +107,23 @@ def _fast_document(data: bytes) -> Any:
         document = orjson.loads(data)
     except orjson.JSONDecodeError:
         return _UNDECIDED
-    if data.translate(_DIGITS_AS_ZERO).find(_LONG_DIGITS) >= 0:
+    if data.translate(_DIGITS_AS_ZERO).find(_LONG_DIGITS) >= 0 and _long_integer_digits(data):
         return _UNDECIDED
     members, depth = _members_and_depth(document)
     if depth > MAX_DEPTH or members != data.count(b":"):
         return _UNDECIDED
     return document
+
+
+def _long_integer_digits(data: bytes) -> bool:
+    """True when some run of 19 or more digits is not a number's fraction (not preceded by "."):
+    ``0.0012345678901234567`` is a float either way, ``-9223372036854775809`` is not."""
+    codes = np.frombuffer(data, dtype=np.uint8)
+    digit = ((codes >= 0x30) & (codes <= 0x39)).view(np.int8)
+    edges = np.flatnonzero(np.diff(digit, prepend=0, append=0))
+    starts, ends = edges[::2], edges[1::2]
+    long_runs = starts[ends - starts >= len(_LONG_DIGITS)]
+    return bool(np.any((long_runs == 0) | (codes[long_runs - 1] != ord("."))))
 
 
 def _members_and_depth(document: Any) -> tuple[int, int]:
