@@ -70,6 +70,9 @@ ID_RULE = (
 
 # A converter returns the float, or the reason the value cannot be scored.
 _DECIMAL_TEXT = re.compile(r"[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?")
+# From this many records on, the column checks are faster than the per-value ones (measured here:
+# about 8 numpy calls per feature cost more than the Python loop over a few records).
+_COLUMN_MIN_RECORDS = 8
 _NON_FINITE_TEXT = re.compile(r"[+-]?(nan|inf|infinity)", re.IGNORECASE)
 Converter = Callable[[Any], "float | str"]
 
@@ -180,7 +183,7 @@ def check_records(
     if with_ids:
         known = known | {RECORD_ID}
     rule = _RecordRule(names, bounds, known, convert, with_ids, allow_extra)
-    if convert is from_json and records:
+    if convert is from_json and len(records) >= _COLUMN_MIN_RECORDS:
         return _check_json_records(rule, records)
     rows: list[list[float]] = []
     accepted: list[int] = []
