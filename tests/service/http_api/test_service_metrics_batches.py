@@ -20,6 +20,7 @@ _VALUES = {
     "on every bound, below the first and past the last": np.array([0.0, *DISTANCE_BUCKETS, 1e300]),
     "spread": np.random.default_rng(3).exponential(4.0, 1000),
     "one value": np.array([0.3]),
+    "nine values, past the one-by-one limit": np.array([0.1, 0.125, 0.2, 1.0, 3.0, 8.0, 8.5, 64.0, 65.0]),
 }
 
 
