@@ -186,15 +186,16 @@ def _limits(results: dict) -> list[str]:
             f"- Single rows: with about {fewest:,} support vectors a call takes rbfgate {_range(ours, '.2f')} ms, "
             f"diagnostics included, and scikit-learn {_range(theirs, '.2f')} ms, "
             f"most of it input validation. With {biggest['n_support']:,} support vectors x {biggest['features']} "
-            "features both read every support vector for each row, so memory bandwidth decides "
-            f"(x{biggest['ratio_1thread']:.1f}).")
-    lines += _single_row_limits(single)
+            "features both read every support vector for each row, so reading memory takes a large share of "
+            f"either's time (x{biggest['ratio_1thread']:.1f}; the lines below give rbfgate's share of that floor).")
+    lines += _single_row_limits(single, results.get("limits", {}).get("1", {}).get("exp_per_second"))
     lines += _service_limits(results.get("service", []), results)
     return lines
 
 
-def _single_row_limits(single: list[dict]) -> list[str]:
-    """One line per single-row target missed, naming the limit with its measured share."""
+def _single_row_limits(single: list[dict], exp_rate: float | None = None) -> list[str]:
+    """One line per single-row target missed, naming the limit with its measured share;
+    ``exp_rate`` is the one-thread np.exp rate measured in the same run (values per second)."""
     lines = []
     for case in single:
         if not case.get("stream_seconds"):
@@ -210,11 +211,16 @@ def _single_row_limits(single: list[dict]) -> list[str]:
                 "the rest is the fixed cost of the few dozen numpy calls a row needs (scaling, the kernel product, "
                 "nearest support vector, percentile, range excess, domain model), about 1 to 3 µs each.")
         else:
+            exp_ms = 2 * case["n_support"] / exp_rate * 1e3 if exp_rate else 0.0
             lines.append(
                 f"- Missed: single row at {measured:.0%} < {wanted:.0%} of the memory-bandwidth floor for "
-                f"{case['n_support']:,} SV x {case['features']} ({case['support_bytes'] / 1e6:.1f} MB): rbfgate reads "
-                "the augmented support matrix (f + 2 rows), the coefficients and the domain model's support vectors, "
-                "more than the matrix alone, and keeps the kernel block for the nearest support vector.")
+                f"{case['n_support']:,} SV x {case['features']} ({case['support_bytes'] / 1e6:.1f} MB; stream "
+                f"{case['stream_seconds'] * 1e3:.2f} ms, rbfgate {case['rbfgate_1thread_seconds'] * 1e3:.2f} ms). "
+                "The floor only reads the matrix; a row also needs one float64 `exp` per support vector, done twice "
+                f"because a single row is scored as two to stay on the batch code path ({exp_ms:.2f} ms at the "
+                "measured `exp` rate), reads the augmented matrix (f + 2 rows), passes over the kernel block for "
+                "the nearest support vector, and pays a dozen numpy calls per tile of 8,192 support vectors, "
+                "plus the domain model's own expansion.")
     return lines
 
 
