@@ -36,6 +36,7 @@ from typing import Any
 import numpy as np
 
 from model_store.manifest import FeatureSpec
+from model_store.record_columns import plain_rows
 
 __all__ = [
     "ID_CONTROL_RANGES",
@@ -69,6 +70,9 @@ ID_RULE = (
 
 # A converter returns the float, or the reason the value cannot be scored.
 _DECIMAL_TEXT = re.compile(r"[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?")
+# From this many records on, the column checks are faster than the per-value ones (measured here:
+# about 8 numpy calls per feature cost more than the Python loop over a few records).
+_COLUMN_MIN_RECORDS = 8
 _NON_FINITE_TEXT = re.compile(r"[+-]?(nan|inf|infinity)", re.IGNORECASE)
 Converter = Callable[[Any], "float | str"]
 
@@ -175,16 +179,44 @@ def check_records(
     names = [feature.name for feature in features]
     known = set(names)
     bounds = [feature.allowed for feature in features]
+    with_ids = ids and RECORD_ID not in known
+    if with_ids:
+        known = known | {RECORD_ID}
+    rule = _RecordRule(names, bounds, known, convert, with_ids, allow_extra)
+    if convert is from_json and len(records) >= _COLUMN_MIN_RECORDS:
+        return _check_json_records(rule, records)
     rows: list[list[float]] = []
     accepted: list[int] = []
     problems: dict[int, list[Problem]] = {}
-    with_ids = ids and RECORD_ID not in known
     record_ids: list[Any] | None = [] if with_ids else None
-    if with_ids:
-        known = known | {RECORD_ID}
     for index, record in enumerate(records):
-        row, found = _check_one(record, names, bounds, convert)
+        row, found, record_id = rule.check(record)
         if record_ids is not None:
+            record_ids.append(record_id)
+        if found:
+            problems[index] = found
+        else:
+            rows.append(row)
+            accepted.append(index)
+    values = np.asarray(rows, dtype=np.float64).reshape(len(rows), len(names))
+    return CheckedBatch(values, np.asarray(accepted, dtype=np.int64), problems, record_ids)
+
+
+@dataclass(frozen=True)
+class _RecordRule:
+    """The per-value rules for one record: its row, its problems in their documented order, its id."""
+
+    names: list[str]
+    bounds: list[tuple[float, float]]
+    known: set[str]
+    convert: Converter
+    with_ids: bool
+    allow_extra: bool
+
+    def check(self, record: Mapping[str, Any]) -> tuple[list[float], list[Problem], Any]:
+        row, found = _check_one(record, self.names, self.bounds, self.convert)
+        record_id = None
+        if self.with_ids:
             record_id = record.get(RECORD_ID)
             if record_id is not None or RECORD_ID in record:
                 broken = id_problem(record_id)
@@ -193,18 +225,58 @@ def check_records(
                     record_id = None
                 elif isinstance(record_id, float):
                     record_id = int(record_id)  # 7.0 is the integer 7 in JSON's data model; echo it as one
-            record_ids.append(record_id)
-        if not allow_extra:
+        if not self.allow_extra:
             found.extend(
-                Problem(str(key), value, "unknown_feature", None) for key, value in record.items() if key not in known
+                Problem(str(key), value, "unknown_feature", None) for key, value in record.items() if key not in self.known
             )
+        return row, found, record_id
+
+
+def _check_json_records(rule: _RecordRule, records: Sequence[Mapping[str, Any]]) -> CheckedBatch:
+    """``check_records`` for JSON values: plain records a column at a time (``model_store.record_columns``),
+    every other record, and every record whose id is not plainly valid, through ``_RecordRule.check``."""
+    n_records = len(records)
+    low = np.array([low for low, _ in rule.bounds], dtype=np.float64)
+    high = np.array([high for _, high in rule.bounds], dtype=np.float64)
+    with_id = np.zeros(n_records, dtype=bool)
+    if rule.with_ids:
+        with_id = np.fromiter((RECORD_ID in record for record in records), dtype=bool, count=n_records)
+    values, plain = plain_rows(rule.names, low, high, records, None if rule.allow_extra else with_id.astype(np.int64))
+    record_ids: list[Any] | None = None
+    if rule.with_ids:
+        record_ids = [None] * n_records
+        for index in np.flatnonzero(with_id & plain).tolist():
+            record_id = records[index][RECORD_ID]
+            if _plainly_valid_id(record_id):
+                record_ids[index] = record_id
+            else:
+                plain[index] = False
+    problems: dict[int, list[Problem]] = {}
+    for index in np.flatnonzero(~plain).tolist():
+        row, found, record_id = rule.check(records[index])
+        if record_ids is not None:
+            record_ids[index] = record_id
         if found:
             problems[index] = found
         else:
-            rows.append(row)
-            accepted.append(index)
-    values = np.asarray(rows, dtype=np.float64).reshape(len(rows), len(names))
-    return CheckedBatch(values, np.asarray(accepted, dtype=np.int64), problems, record_ids)
+            values[index] = row
+            plain[index] = True
+    return CheckedBatch(values[plain], np.flatnonzero(plain), problems, record_ids)
+
+
+# What id_problem accepts, decided without a Python loop over the characters: an int within the
+# limit (not a bool), or a string of 1 to MAX_ID_LENGTH characters with no control character and
+# no lone surrogate. Anything else (7.0, say) is left to id_problem itself.
+_ID_REFUSED_CHARACTERS = re.compile(
+    "[" + "".join(f"\\u{low:04x}-\\u{high:04x}" for low, high in ID_CONTROL_RANGES) + "\\ud800-\\udfff]"
+)
+
+
+def _plainly_valid_id(value: Any) -> bool:
+    kind = type(value)
+    if kind is int:
+        return -MAX_ID_INTEGER <= value <= MAX_ID_INTEGER
+    return kind is str and 0 < len(value) <= MAX_ID_LENGTH and _ID_REFUSED_CHARACTERS.search(value) is None
 
 
 def _printable_id(value: Any) -> Any:

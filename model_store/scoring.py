@@ -32,6 +32,8 @@ domain verdict so that callers (CLI, service) can apply their refusal policy.
 
 from __future__ import annotations
 
+import bisect
+import math
 from contextlib import nullcontext
 from dataclasses import dataclass
 
@@ -168,8 +170,9 @@ class Scorer:
             scaled_sq = np.einsum("ij,ij->i", scaled, scaled)
         pairwise, nearest_index = self.kernel.evaluate(scaled, scaled_sq)
         pairwise += self.intercepts
-        with np.errstate(over="ignore", invalid="ignore"):
-            any_far = not bool(np.isfinite(self.gamma * scaled_sq).all())
+        # A Python float overflows to inf without a warning, so one product decides whether any row is
+        # far (as in model_store.kernel); NaN (an overflowed scaled row) is not finite either.
+        any_far = len(scaled_sq) > 0 and not math.isfinite(float(scaled_sq.max()) * self.gamma)
         scores = self._finish(raw, scaled, pairwise, nearest_index, any_far)
         if self.domain is None:
             return scores
@@ -235,6 +238,8 @@ def distance_percentile(distance: np.ndarray, quantiles: np.ndarray) -> np.ndarr
     the highest quantile that does not exceed the distance.
     """
     steps = len(quantiles) - 1
+    if len(distance) <= _PYTHON_PERCENTILE_ROWS:
+        return np.array([_percentile(value, quantiles.tolist(), steps) for value in distance.tolist()])
     upper = np.searchsorted(quantiles, distance, side="right")
     # upper lies in [0, steps + 1], so one bound of each clip is never reached; np.minimum and
     # np.maximum give the same integers without np.clip's per-call overhead (~10 us per row scored).
@@ -245,6 +250,25 @@ def distance_percentile(distance: np.ndarray, quantiles: np.ndarray) -> np.ndarr
     fraction = np.divide(distance - quantiles[lower], span, out=np.zeros_like(span), where=span > 0)
     position = np.where(upper == 0, 0.0, np.where(upper > steps, steps, lower + fraction))
     return 100.0 * position / steps
+
+
+# Up to this many rows the percentile is computed with Python floats: a dozen numpy calls cost
+# more than the arithmetic (single records, scored as two rows), and the operations are the same
+# IEEE 754 ones in the same order, so the results are the same bits.
+_PYTHON_PERCENTILE_ROWS = 4
+
+
+def _percentile(distance: float, quantiles: list[float], steps: int) -> float:
+    """``distance_percentile`` for one distance, operation for operation."""
+    upper = bisect.bisect_right(quantiles, distance)  # np.searchsorted(side="right") on sorted quantiles
+    if upper == 0:
+        return 100.0 * 0.0 / steps
+    if upper > steps:
+        return 100.0 * steps / steps
+    lower = upper - 1
+    span = quantiles[upper] - quantiles[lower]
+    fraction = (distance - quantiles[lower]) / span if span > 0 else 0.0
+    return 100.0 * (lower + fraction) / steps
 
 
 def _pairwise_coefficients(dual_coef: np.ndarray, boundaries: np.ndarray, pairs) -> np.ndarray:

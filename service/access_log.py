@@ -21,8 +21,9 @@ import sys
 import threading
 import time
 from collections.abc import Callable
-from datetime import datetime, timezone
 from typing import Any, TextIO
+
+import orjson
 
 from starlette.requests import Request
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
@@ -43,7 +44,11 @@ class JsonLines:
         self._lock = threading.Lock()
 
     def __call__(self, event: dict[str, Any]) -> None:
-        line = json.dumps({"time": _now(), **event}, ensure_ascii=False, default=str, allow_nan=False) + "\n"
+        document = {"time": _now(), **event}
+        try:  # orjson: a few microseconds per line instead of tens (the line is written on every request)
+            line = orjson.dumps(document, default=str).decode("utf-8") + "\n"
+        except TypeError:  # an integer past 64 bits (a logged input value, say): the json module writes it
+            line = json.dumps(document, ensure_ascii=False, default=str, allow_nan=False) + "\n"
         stream = self._stream or sys.stdout
         with self._lock:
             stream.write(line)
@@ -101,5 +106,17 @@ def _short(text: str, limit: int = 200) -> str:
     return text if len(text) <= limit else text[:limit] + "..."
 
 
+# The last whole second and its text, one tuple read and replaced at once (threads log too):
+# strftime runs once per second rather than once per line.
+_second_text = (-1, "")
+
+
 def _now() -> str:
-    return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    """RFC 3339 UTC time with microseconds, ``2026-01-02T03:04:05.123456Z``."""
+    global _second_text
+    now = time.time()
+    second = int(now)
+    cached = _second_text
+    if cached[0] != second:
+        cached = _second_text = (second, time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(second)))
+    return f"{cached[1]}.{int((now - second) * 1e6):06d}Z"

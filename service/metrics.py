@@ -25,6 +25,7 @@ import json
 import logging
 import os
 import struct
+from collections import Counter as _Tally
 from collections.abc import Iterable
 
 import numpy as np
@@ -32,7 +33,7 @@ from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, Counter, G
 from prometheus_client import multiprocess
 from prometheus_client.mmap_dict import MmapedDict
 
-__all__ = ["DISTANCE_BUCKETS", "TRAFFIC_KEYS", "ServiceMetrics"]
+__all__ = ["DISTANCE_BUCKETS", "TRAFFIC_KEYS", "ServiceMetrics", "observe_many"]
 
 _LATENCY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
 # Distances live in the scaled space, where one unit is about one training
@@ -103,11 +104,12 @@ class ServiceMetrics:
             "rbfgate_load_failures", "Bundles that failed their checks when a worker tried to load them.",
             ["model", "version"], registry=registry,
         )
+        self._children: dict[tuple, object] = {}
 
     def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
         method = method if method in _METHODS else "other"
-        self.http_requests.labels(route, method, str(status)).inc()
-        self.latency.labels(route).observe(seconds)
+        self._child(self.http_requests, route, method, str(status)).inc()
+        self._child(self.latency, route).observe(seconds)
 
     def observe_scoring(
         self,
@@ -123,23 +125,28 @@ class ServiceMetrics:
     ) -> None:
         """One scoring request: counts, (feature, reason) of each problem, (n,) distances, percentiles and verdicts."""
         outcome = "refused" if scored == 0 else ("partial" if refused else "scored")
-        self.score_requests.labels(model, version, outcome).inc()
+        self._child(self.score_requests, model, version, outcome).inc()
         if scored:
-            self.records.labels(model, version, "scored").inc(scored)
+            self._child(self.records, model, version, "scored").inc(scored)
         if refused:
-            self.records.labels(model, version, "refused").inc(refused)
-        for feature, reason in problems:
-            self.refusals.labels(model, version, feature, reason).inc()
-        distance_child = self.distance.labels(model, version)
-        percentile_child = self.percentile.labels(model, version)
-        for distance, percentile in zip(distances.tolist(), percentiles.tolist()):
-            distance_child.observe(distance)
-            percentile_child.observe(percentile)
+            self._child(self.records, model, version, "refused").inc(refused)
+        for (feature, reason), count in _Tally(problems).items():
+            self._child(self.refusals, model, version, feature, reason).inc(count)
+        observe_many(self._child(self.distance, model, version), distances)
+        observe_many(self._child(self.percentile, model, version), percentiles)
         if len(verdicts):
             # Verdicts are the three fixed words of model_store.domain, never request text.
-            names, counts = np.unique(verdicts.astype(str), return_counts=True)
-            for verdict, count in zip(names.tolist(), counts.tolist()):
-                self.domain_verdicts.labels(model, version, verdict).inc(count)
+            for verdict, count in _Tally(verdicts.tolist()).items():
+                self._child(self.domain_verdicts, model, version, str(verdict)).inc(count)
+
+    def _child(self, metric, *labels: str):
+        """``metric.labels(*labels)``, remembered: label values come from a bounded set (module docstring),
+        and ``labels`` takes a lock and builds a key on every call."""
+        key = (metric, labels)
+        child = self._children.get(key)
+        if child is None:
+            child = self._children[key] = metric.labels(*labels)
+        return child
 
     def switched(self, model: str, old: tuple[str, str] | None, new: tuple[str, str]) -> None:
         """A worker now serves ``new`` (version, digest) instead of ``old``."""
@@ -246,6 +253,35 @@ def _check_file(path: str) -> None:
         metric_name, name, labels, help_text = json.loads(key)
         if not (isinstance(metric_name, str) and isinstance(name, str) and isinstance(labels, dict)):
             raise ValueError(f"entry {key[:60]!r} is not [metric, sample, labels, help]")
+
+
+_ONE_BY_ONE = 8  # a few values are observed one by one: cheaper than the numpy calls of a batch
+
+
+def observe_many(histogram, values: np.ndarray) -> None:
+    """``histogram.observe(v)`` for every v of ``values`` (n,), with one bucket count and one sum per call.
+
+    prometheus-client has no batch observe; its Histogram keeps one (non-cumulative) count per
+    bucket in ``_buckets``, indexed by the first upper bound >= the value, and the sum in ``_sum``
+    (prometheus-client 0.20 to 0.26). When those are not there, each value is observed on its own.
+    tests/service checks that both give the same exposition.
+    """
+    if not len(values):
+        return
+    if len(values) <= _ONE_BY_ONE:
+        for value in values.tolist():
+            histogram.observe(value)
+        return
+    bounds, buckets, total = (getattr(histogram, name, None) for name in ("_upper_bounds", "_buckets", "_sum"))
+    if bounds is None or buckets is None or total is None:
+        for value in values.tolist():
+            histogram.observe(value)
+        return
+    counts = np.bincount(np.searchsorted(np.asarray(bounds, dtype=np.float64), values, side="left"),
+                         minlength=len(bounds))
+    for bucket in np.flatnonzero(counts).tolist():
+        buckets[bucket].inc(int(counts[bucket]))
+    total.inc(float(np.sum(values)))
 
 
 def _forget_dead_workers(directory: str) -> None:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import threading
 from collections import deque
+from itertools import repeat
 
 import numpy as np
 
@@ -29,10 +30,14 @@ class RecentRecords:
         if self.size == 0 or len(values) == 0:
             return
         rows = values[-self.size:].tolist()
+        names = tuple(feature_names)
         with self._lock:
             sample = self._samples.setdefault(model, deque(maxlen=self.size))
-            sample.extend(dict(zip(feature_names, row)) for row in rows)
+            # (names, row) pairs, made into dicts only when the preview reads them: scoring pays for
+            # one tolist and one extend, not a dict per record.
+            sample.extend(zip(repeat(names), rows))
 
     def records(self, model: str) -> list[dict[str, float]]:
         with self._lock:
-            return list(self._samples.get(model, ()))
+            kept = list(self._samples.get(model, ()))
+        return [dict(zip(names, row)) for names, row in kept]

@@ -30,6 +30,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
+import orjson
 
 from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION, apply_outside_policy, domain_answer
 from model_store.refusal import CheckedBatch, check_records, from_json
@@ -37,27 +39,26 @@ from model_store.scoring import Scores
 from service.problems import ServiceProblem
 from service.refusal_answer import RefusalAnswer, summarise_refusals
 from service.registry import LoadedModel
+from service.result_encoding import encode_results
 
 __all__ = ["ScoredBatch", "read_records", "score_records"]
 
 
 @dataclass(frozen=True)
 class ScoredBatch:
-    """The outcome of one request: ``results`` in request order, plus what metrics and logs need."""
+    """The outcome of one request: ``results_json`` (the results array, in request order, as JSON
+    text) plus what metrics and logs need."""
 
-    results: list[dict[str, Any]]
+    results_json: bytes
     checked: CheckedBatch
     scores: Scores | None  # of every row that passed the range rules, outside_domain refusals included
     refusals: RefusalAnswer
+    scored: int
 
     @property
-    def scored(self) -> int:
-        return len(self.checked.accepted) - len(self.checked.problems) + self.range_refused
-
-    @property
-    def range_refused(self) -> int:
-        accepted = set(self.checked.accepted.tolist())
-        return sum(index not in accepted for index in self.checked.problems)
+    def results(self) -> list[dict[str, Any]]:
+        """The results as Python values (the pages' try route, the all-refused answer)."""
+        return orjson.loads(self.results_json)
 
     @property
     def refused(self) -> int:
@@ -104,58 +105,21 @@ def read_records(document: Any, max_records: int) -> list[dict[str, Any]]:
 def score_records(
     model: LoadedModel, records: list[dict[str, Any]], outside_action: str = DEFAULT_OUTSIDE_ACTION
 ) -> ScoredBatch:
-    """Check ``records`` against the model's features, score the accepted ones, build the results."""
+    """Check ``records`` against the model's features, score the accepted ones, write the results."""
     bundle = model.bundle
     checked = check_records(bundle.manifest.features, records, from_json, ids=True)
     scores = bundle.score(checked.values) if len(checked.accepted) else None
     outside = apply_outside_policy(checked, scores, outside_action)
-    position = {int(index): row for row, index in enumerate(checked.accepted.tolist())}
-    classes = [str(label) for label in bundle.classes]
-    scored = _scored_results(scores, classes) if scores is not None else []
     refusals = summarise_refusals(checked.problems, checked.ids)
-    results = []
-    ids = checked.ids or [None] * len(records)
-    for index, record_id in enumerate(ids):
-        row = position.get(index)
-        if row is not None and not outside[row]:
-            result = scored[row]
-        else:
-            result = dict(refusals.results[index])
-            if row is not None:
-                result["domain"] = scored[row]["domain"]
-        results.append(result if record_id is None else {"id": record_id, **result})
-    return ScoredBatch(results, checked, scores, refusals)
-
-
-def _scored_results(scores: Scores, classes: list[str]) -> list[dict[str, Any]]:
-    labels = scores.labels.tolist()
-    decisions = scores.decision.tolist()
-    probabilities = None if scores.probabilities is None else scores.probabilities.tolist()
-    nearest = zip(
-        scores.nearest_distance.tolist(),
-        scores.nearest_similarity.tolist(),
-        scores.nearest_label.tolist(),
-        scores.nearest_index.tolist(),
-        scores.nearest_percentile.tolist(),
-    )
-    results = []
-    for row, (distance, similarity, label, index, percentile) in enumerate(nearest):
-        decision = decisions[row]
-        results.append({
-            "status": "scored",
-            "label": labels[row],
-            "decision": dict(zip(classes, decision)) if isinstance(decision, list) else decision,
-            "probability": None if probabilities is None else dict(zip(classes, probabilities[row])),
-            "nearest_support": {
-                "distance": distance,
-                "similarity": similarity,
-                "label": label,
-                "index": index,
-                "percentile": percentile,
-            },
-            "domain": domain_answer(scores, row),
-        })
-    return results
+    refused = dict(refusals.results)
+    scored_at = checked.accepted
+    if outside.any():
+        scored_at = np.where(outside, -1, checked.accepted)
+        for row in np.flatnonzero(outside).tolist():
+            index = int(checked.accepted[row])
+            refused[index] = {**refused[index], "domain": domain_answer(scores, row)}
+    results = encode_results(len(records), scores, bundle.classes, scored_at, refused, checked.ids)
+    return ScoredBatch(results, checked, scores, refusals, scored=len(checked.accepted) - int(outside.sum()))
 
 
 def _shape(pointer: str, detail: str) -> ServiceProblem:

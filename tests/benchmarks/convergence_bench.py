@@ -165,10 +165,10 @@ def _switch_events(stdout_path: Path, version: str) -> list[tuple[float, float]]
     """(wall-clock time, load seconds) of each worker's switch event to ``version``, in log order."""
     events = []
     for line in stdout_path.read_text().splitlines():
-        if '"event": "switch"' not in line:
+        if not line.startswith("{") or '"switch"' not in line:  # JSON log lines only; others are uvicorn's
             continue
         event = json.loads(line)
-        if event.get("version") == version:
+        if event.get("event") == "switch" and event.get("version") == version:
             moment = datetime.strptime(event["time"], "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=timezone.utc)
             events.append((moment.timestamp(), float(event.get("load_seconds", 0.0))))
     return events

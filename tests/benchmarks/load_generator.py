@@ -1,7 +1,7 @@
 """wrk, the HTTP load generator (Debian package ``wrk``), driven with post.lua.
 
-``ensure_wrk`` installs it with apt-get when it is missing (the benchmark runs
-as root on the project's machines); ``run_wrk`` runs one bounded load and
+``ensure_wrk`` installs it with apt-get when it is missing (as root on the project's
+machines, through ``sudo -n`` otherwise); ``run_wrk`` runs one bounded load and
 parses the RESULT line post.lua prints.
 """
 
@@ -45,7 +45,8 @@ def ensure_wrk(log=print) -> str:
     if found:
         return found
     log("  wrk not found; installing it with apt-get (Debian package wrk)")
-    for command in (["apt-get", "update", "-qq"], ["apt-get", "install", "-y", "-qq", "wrk"]):
+    as_root = [] if os.geteuid() == 0 else ["sudo", "-n"]
+    for command in ([*as_root, "apt-get", "update", "-qq"], [*as_root, "apt-get", "install", "-y", "-qq", "wrk"]):
         completed = subprocess.run(command, capture_output=True, text=True, timeout=600,
                                    env={**os.environ, "DEBIAN_FRONTEND": "noninteractive"})
         if completed.returncode != 0:

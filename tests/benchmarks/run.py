@@ -52,7 +52,7 @@ class Plan:
     @classmethod
     def quick(cls) -> "Plan":
         return cls(models=[(1000, 10), (1000, 50), (10000, 10)], scorer_budget=0.3, service_workers=[1],
-                   service_batches=[1, 100], load_seconds=3.0, load_rounds=2, load_runs=2, switches=2)
+                   service_batches=[1, 1000], load_seconds=3.0, load_rounds=2, load_runs=2, switches=2)
 
 
 def run(out: Path, plan: Plan, parts: tuple[str, ...] = _PARTS, log=print) -> dict:

@@ -24,7 +24,7 @@ from model_store.bundle import GOLDEN_TOLERANCE, load_bundle
 
 from .machine import MachineLimits, blas_threads
 from .models import CachedModel
-from .timing import alternate
+from .timing import alternate, median_seconds
 
 __all__ = ["ScorerResult", "bench_model"]
 
@@ -39,6 +39,11 @@ class ScorerResult:
     kernel_rate_*:  rows x support vectors / second achieved by rbfgate
     floor_seconds:  rows x support vectors x (2 (f + 2) / dgemm flop rate + 1 / exp rate), one BLAS thread:
                     the time if rbfgate ran at the machine's measured dgemm and exp limits and did nothing else
+    support_bytes:  bytes of the (n_sv, f) float64 support-vector matrix
+    stream_seconds: the memory-bandwidth floor of a single row: time to read that matrix once, measured in
+                    the same run as one BLAS matrix-vector product (support vectors @ ones(f), one thread,
+                    median), which reads every value once for two flops,
+                    far below the machine's flop rate, so memory decides its time
     """
 
     n_support: int
@@ -57,6 +62,8 @@ class ScorerResult:
     floor_seconds: float
     labels_equal: bool
     max_decision_error: float
+    support_bytes: int = 0
+    stream_seconds: float = 0.0
 
     @property
     def identical(self) -> bool:
@@ -77,6 +84,7 @@ def bench_model(model: CachedModel, batch_sizes: list[int], limits_1thread: Mach
     rows = rng.normal(size=(max(batch_sizes + [_CHECK_ROWS]), model.features))
     check = rows[:_CHECK_ROWS]
     labels_equal = np.array_equal(np.asarray(pipeline.predict(check)), bundle.score(check).labels.astype(np.int64))
+    stream_seconds = _stream_seconds(bundle.support_vectors, budget)
     results = []
     for size in batch_sizes:
         batch = rows[:size]
@@ -112,12 +120,22 @@ def bench_model(model: CachedModel, batch_sizes: list[int], limits_1thread: Mach
             floor_seconds=floor,
             labels_equal=bool(labels_equal),
             max_decision_error=error,
+            support_bytes=int(bundle.support_vectors.nbytes),
+            stream_seconds=stream_seconds,
         )
         log(f"  {model.n_support:>6} SV x {model.features:>2} features, {size:>6} rows: sklearn "
             f"{_ms(sklearn_seconds)}, rbfgate {_ms(one_seconds)} (1 thread) / {_ms(default_seconds)} (default) "
             f"-> x{result.ratio_1thread:.1f} / x{result.ratio_default:.1f}, identical {result.identical}")
         results.append(result)
     return results
+
+
+def _stream_seconds(support_vectors: np.ndarray, budget: float) -> float:
+    """Median time of one pass over ``support_vectors`` (n_sv, f): a one-thread BLAS matrix-vector product."""
+    matrix = np.ascontiguousarray(support_vectors, dtype=np.float64)
+    ones, out = np.ones(matrix.shape[1]), np.empty(matrix.shape[0])
+    with blas_threads(1):
+        return median_seconds(lambda: np.matmul(matrix, ones, out=out), budget=budget, least=5)
 
 
 def _tolerance_used(got: np.ndarray, reference: np.ndarray) -> float:

@@ -1,4 +1,4 @@
-"""Start and stop the two servers under test on free 127.0.0.1 ports: ``rbfgate serve`` and the reference.
+"""Start and stop the servers under test on free 127.0.0.1 ports: ``rbfgate serve``, the reference, the bare one.
 
 Each server runs in its own process group (so its workers stop with it), with
 its output sent to files in a work directory, and is stopped by the code that
@@ -14,7 +14,7 @@ from pathlib import Path
 
 from tests.process_control import free_port, stop_process_group, wait_until_ok
 
-__all__ = ["Server", "free_port", "rbfgate_server", "reference_server"]
+__all__ = ["Server", "bare_server", "free_port", "rbfgate_server", "reference_server"]
 
 _START_SECONDS = 120.0
 _STOP_SECONDS = 30.0
@@ -110,3 +110,12 @@ def reference_server(model_path: Path, features: list[str], workers: int, workdi
     environ = _clean_environ({"REFERENCE_MODEL": str(model_path), "REFERENCE_FEATURES": ",".join(features),
                               **(extra_environ or {})})
     return Server(f"reference-{workers}w", args, port, workdir, "/docs", environ)
+
+
+def bare_server(bundle_path: Path, workers: int, workdir: Path, extra_environ: dict[str, str] | None = None) -> Server:
+    """The bare app (tests/benchmarks/bare_app.py) under uvicorn's defaults (httptools, uvloop), access log off."""
+    port = free_port()
+    args = [sys.executable, "-m", "uvicorn", "tests.benchmarks.bare_app:app", "--host", "127.0.0.1",
+            "--port", str(port), "--workers", str(workers), "--no-access-log", "--log-level", "warning"]
+    environ = _clean_environ({"BARE_BUNDLE": str(bundle_path), **(extra_environ or {})})
+    return Server(f"bare-{workers}w", args, port, workdir, "/docs", environ)

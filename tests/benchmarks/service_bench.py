@@ -1,12 +1,16 @@
-"""Service benchmark: ``rbfgate serve`` against the reference endpoint, same model, same load.
+"""Service benchmark: ``rbfgate serve`` against two other servers, same model, same load.
 
-For each worker count (1, then 2) both servers are started side by side on
-the same machine, each is checked once per request body (200, one result per
-record, the same labels and decisions as the other), and then wrk runs A B A B
-(rbfgate, reference, rbfgate, reference, ...) for each batch size. Requests/s
-is the total over all rounds; p50/p99 are the medians of the rounds' values.
-Every record sent lies inside the bundle's allowed ranges, so rbfgate scores
-all of them (a refusal would be a non-2xx or a different answer).
+- reference: the FastAPI + joblib + pydantic endpoint a team would write (reference_app.py);
+- bare: FastAPI that only scores the same bundle with numpy, no validation, no diagnostics, no
+  log, no metrics (bare_app.py): the framework's ceiling, of which rbfgate reaches a share.
+
+For each worker count (1, then 2) the three servers are started side by side on the same
+machine, each is checked once per request body (200, one result per record, the same labels
+and decisions as the reference), and then wrk runs A B C A B C (rbfgate, reference, bare, ...)
+for each batch size. Requests/s is the total over all rounds; p50/p99 are the medians of the
+rounds' values; server CPU is read from /proc for the server's processes around each round.
+Every record sent lies inside the bundle's allowed ranges, so rbfgate scores all of them (a
+refusal would be a non-2xx or a different answer).
 """
 
 from __future__ import annotations
@@ -24,14 +28,14 @@ from model_store.store import Store
 
 from .load_generator import LoadResult, ensure_wrk, run_wrk
 from .models import CachedModel
-from .servers import reference_server, rbfgate_server
+from .servers import bare_server, rbfgate_server, reference_server
 
 __all__ = ["ServiceResult", "bench_service", "publish_model"]
 
 
 @dataclass(frozen=True)
 class ServiceResult:
-    server: str  # "rbfgate" or "reference"
+    server: str  # "rbfgate", "reference" or "bare"
     workers: int
     records: int
     connections: int
@@ -68,7 +72,8 @@ class ServiceResult:
             "server": self.server, "workers": self.workers, "records": self.records, "connections": self.connections,
             "requests_per_second": self.requests_per_second, "p50_ms": self.p50_ms, "p99_ms": self.p99_ms,
             "worst_p99_ms": self.worst_p99_ms, "non_2xx": self.non_2xx, "cpu_ms_per_request": self.cpu_ms_per_request,
-            "rounds": [run.to_dict() for run in self.rounds],
+            "records_per_second": self.requests_per_second * self.records,
+            "cpu_seconds": list(self.cpu_seconds), "rounds": [run.to_dict() for run in self.rounds],
         }
 
 
@@ -90,11 +95,13 @@ def bench_service(model: CachedModel, workdir: Path, *, workers_list: list[int],
     bodies = _write_bodies(workdir, bundle, model.reference, batch_sizes)
     results = []
     for workers in workers_list:
-        log(f"  {workers} worker(s): starting rbfgate serve and the reference endpoint")
+        log(f"  {workers} worker(s): starting rbfgate serve, the reference endpoint and the bare one")
         with rbfgate_server(store_root, workers, workdir) as ours, \
-                reference_server(model.joblib_path, bundle.feature_names, workers, workdir) as theirs:
-            targets = {"rbfgate": f"{ours.url}/score/{name}", "reference": f"{theirs.url}/score"}
-            servers = {"rbfgate": ours, "reference": theirs}
+                reference_server(model.joblib_path, bundle.feature_names, workers, workdir) as theirs, \
+                bare_server(model.bundle_path, workers, workdir) as bare:
+            targets = {"rbfgate": f"{ours.url}/score/{name}", "reference": f"{theirs.url}/score",
+                       "bare": f"{bare.url}/score"}
+            servers = {"rbfgate": ours, "reference": theirs, "bare": bare}
             for records, body_path in bodies.items():
                 _check_answers(targets, body_path, records)
                 for target in targets.values():  # warm both (and every worker) before timing
@@ -130,7 +137,7 @@ def _write_bodies(workdir: Path, bundle, reference: np.ndarray, batch_sizes: lis
 
 
 def _check_answers(targets: dict[str, str], body_path: Path, records: int) -> None:
-    """Both servers answer 200 with one result per record, and the same labels and decisions."""
+    """Every server answers 200 with one result per record, and the labels and decisions of the reference."""
     answers = {}
     for server, url in targets.items():
         request = urllib.request.Request(url, data=body_path.read_bytes(), headers={"Content-Type": "application/json"})
@@ -141,9 +148,9 @@ def _check_answers(targets: dict[str, str], body_path: Path, records: int) -> No
         if len(results) != records:
             raise RuntimeError(f"{server} returned {len(results)} results for {records} records")
         answers[server] = results
-    ours, theirs = answers["rbfgate"], answers["reference"]
-    for index, (mine, reference) in enumerate(zip(ours, theirs)):
-        if mine.get("status") != "scored" or str(mine["label"]) != str(reference["label"]):
-            raise RuntimeError(f"record {index}: rbfgate {mine} disagrees with the reference {reference}")
-        if abs(mine["decision"] - reference["decision"]) > GOLDEN_TOLERANCE * max(1.0, abs(reference["decision"])):
-            raise RuntimeError(f"record {index}: decision {mine['decision']} vs reference {reference['decision']}")
+    for server, results in answers.items():
+        for index, (mine, reference) in enumerate(zip(results, answers["reference"])):
+            if (server == "rbfgate" and mine.get("status") != "scored") or str(mine["label"]) != str(reference["label"]):
+                raise RuntimeError(f"record {index}: {server} {mine} disagrees with the reference {reference}")
+            if abs(mine["decision"] - reference["decision"]) > GOLDEN_TOLERANCE * max(1.0, abs(reference["decision"])):
+                raise RuntimeError(f"record {index}: {server} decision {mine['decision']} vs {reference['decision']}")

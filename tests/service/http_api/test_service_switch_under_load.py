@@ -23,8 +23,9 @@ _CLIENTS = 4
 def _switch_events(server: ServeProcess, version: str) -> int:
     count = 0
     for line in server.log_lines():
-        if '"event": "switch"' in line and json.loads(line).get("version") == version:
-            count += 1
+        if line.startswith("{") and '"switch"' in line:  # the JSON log lines (uvicorn writes plain text too)
+            event = json.loads(line)
+            count += event.get("event") == "switch" and event.get("version") == version
     return count
 
 

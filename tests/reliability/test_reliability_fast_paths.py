@@ -1,0 +1,173 @@
+"""The service's fast paths give exactly the answers of the rules they stand in for.
+
+Two paths exist only for speed (README, Performance): request bodies are parsed by orjson when
+that gives the document ``model_store.strict_json`` would give (``service.body``), and JSON records
+are checked a feature column at a time when they are plain (``model_store.record_columns``).
+Hypothesis draws bodies and records built to hit every branch (duplicates, depth, long integers,
+surrogates, booleans, nulls, strings, nested values, huge integers, out-of-range and boundary
+values, unknown members, ids of every kind) and compares each fast answer with the slow one:
+the same document or the same 400 message; the same accepted rows, values (bit for bit), ids and
+problems (feature, value, reason, allowed range, message) in the same order.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from model_store.manifest import FeatureSpec
+from model_store.refusal import check_records, from_json
+from service.body import MAX_DEPTH, parse_json
+from service.problems import ServiceProblem
+
+_SETTINGS = settings(max_examples=300, deadline=None, derandomize=True)
+
+# Two features with finite ranges and one whose range reaches the largest floats.
+# (model_construct: the checks read only name and allowed, so no training statistics are needed.)
+_FEATURES = [
+    FeatureSpec.model_construct(name="a", allowed=(-1.0, 1.0)),
+    FeatureSpec.model_construct(name="b", allowed=(0.0, 100.0)),
+    FeatureSpec.model_construct(name="c", allowed=(-1.7976931348623157e308, 1.7976931348623157e308)),
+]
+
+_values = st.one_of(
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.sampled_from([-1.0, 1.0, 0.0, -0.0, 100.0, 5e-324, np.nextafter(1.0, 2.0), np.nextafter(-1.0, -2.0)]),
+    st.integers(min_value=-5, max_value=150),
+    st.integers(min_value=-(10**400), max_value=10**400),
+    st.booleans(),
+    st.none(),
+    st.text(max_size=4),
+    st.lists(st.integers(), max_size=2),
+    st.dictionaries(st.text(max_size=2), st.integers(), max_size=2),
+)
+_ids = st.one_of(
+    st.integers(min_value=-(2**54), max_value=2**54),
+    st.sampled_from([7.0, 7.5, 2.0**53, 2.0**60, "", "x" * 128, "x" * 129, "a\u0007b", "\u0085", "caf\u00e9",
+                     "\ud800", True, None, [1], {"k": 1}]),
+    st.text(max_size=6),
+)
+
+
+@st.composite
+def _record(draw):
+    record = {}
+    for name in ("a", "b", "c"):
+        if draw(st.integers(0, 9)) > 0:  # mostly present
+            record[name] = draw(_values) if draw(st.booleans()) else draw(st.floats(-1.0, 1.0))
+    if draw(st.integers(0, 3)) == 0:
+        record["id"] = draw(_ids)
+    if draw(st.integers(0, 7)) == 0:
+        record[draw(st.sampled_from(["d", "A", "id ", "\u00e9"]))] = draw(_values)
+    return record
+
+
+def _slow(value):
+    """from_json itself, under another identity: check_records then takes its per-value path."""
+    return from_json(value)
+
+
+def _same(got, want) -> None:
+    assert got.accepted.tolist() == want.accepted.tolist()
+    assert got.values.shape == want.values.shape
+    assert got.values.tobytes() == want.values.tobytes()  # bit for bit, -0.0 included
+    assert got.ids == want.ids
+    assert list(got.problems) == list(want.problems)
+    for index, problems in want.problems.items():
+        assert [repr(problem) for problem in got.problems[index]] == [repr(problem) for problem in problems]
+
+
+@_SETTINGS
+@given(records=st.lists(_record(), min_size=8, max_size=16), ids=st.booleans(), extra=st.booleans())
+def test_column_checks_give_the_per_value_answer(records, ids, extra):
+    # At least 8 records: smaller batches take the per-value path anyway (refusal._COLUMN_MIN_RECORDS).
+    fast = check_records(_FEATURES, records, from_json, ids=ids, allow_extra=extra)
+    _same(fast, check_records(_FEATURES, records, _slow, ids=ids, allow_extra=extra))
+
+
+def test_a_plain_batch_is_accepted_whole_by_the_column_checks():
+    records = [{"a": 0.5, "b": 7, "c": -3.25e300, "id": index} for index in range(50)]
+    checked = check_records(_FEATURES, records, from_json, ids=True)
+    assert checked.accepted.tolist() == list(range(50)) and not checked.problems
+    assert checked.values[:, 1].tolist() == [7.0] * 50  # float(7), as from_json gives it
+
+
+def _strict(data: bytes):
+    """What the strict parser alone says: the document, or the 400 detail."""
+    from model_store.strict_json import StrictJsonError, loads_strict
+
+    try:
+        return "doc", loads_strict(data.decode("utf-8"), max_depth=MAX_DEPTH)
+    except (StrictJsonError, UnicodeDecodeError) as exc:
+        return "error", type(exc).__name__
+
+
+def _parsed(data: bytes):
+    try:
+        return "doc", parse_json(data)
+    except ServiceProblem as problem:
+        return "error", problem.status
+
+
+_json_values = st.recursive(
+    st.one_of(st.none(), st.booleans(), st.integers(min_value=-(10**25), max_value=10**25),
+              st.floats(allow_nan=False, allow_infinity=False), st.text(max_size=5)),
+    lambda children: st.one_of(st.lists(children, max_size=3), st.dictionaries(st.text(max_size=3), children, max_size=3)),
+    max_leaves=12,
+)
+
+# Texts the fast path must hand to the strict parser, each for its own reason.
+_TRICKY = [
+    b'{"a":1,"a":2}', b'{"records":[{"x":1,"x":1}]}', b'{"a":"x:y"}', b'{"a:b":1}',
+    b"[" * (MAX_DEPTH + 1) + b"]" * (MAX_DEPTH + 1), b"[" * MAX_DEPTH + b"]" * MAX_DEPTH,
+    b'{"a":123456789012345678901234567890}', b'{"a":18446744073709551616}', b'{"a":-9223372036854775809}',
+    b'{"a":0.0012345678901234567}', b'{"a":[0.00012345678901234568,-1234567890123456789]}', b'1234567890123456789012',
+    b'{"a":12345678901234567890.5}', b'{"a":1e0000000000000000001}', b'{"a":1e-0000000000000000001}', b'{"a":1e400}', b'{"a":NaN}', b'{"a":Infinity}', b'"\\ud800"', b'{"\\udc00":1}', b'"\\ud83d\\ude00"',
+    b'\xef\xbb\xbf{}', b'{"a":"\xff"}', b'{"a":1}x', b'{"a":01}', b'{"a":-0}', b'{"a":1E2}', b'{"a":1e-400}',
+]
+
+
+@_SETTINGS
+@given(document=_json_values, duplicate=st.booleans())
+def test_fast_parsing_gives_the_strict_parsers_document_or_its_refusal(document, duplicate):
+    text = json.dumps(document, ensure_ascii=bool(duplicate))
+    if duplicate and text.startswith("{") and len(text) > 2:
+        first = text[1:].split(",")[0].rstrip("}")
+        text = "{" + first + "," + text[1:]  # the first member written twice
+    data = text.encode("utf-8")
+    kind, value = _strict(data)
+    got_kind, got = _parsed(data)
+    assert got_kind == kind
+    if kind == "doc":
+        assert json.dumps(got) == json.dumps(value) and _types(got) == _types(value)
+
+
+@pytest.mark.parametrize("data", _TRICKY, ids=lambda data: data[:24].decode("latin-1"))
+def test_tricky_bodies_get_the_strict_parsers_answer(data):
+    kind, value = _strict(data)
+    got_kind, got = _parsed(data)
+    assert got_kind == kind
+    if kind == "doc":
+        assert got == value and _types(got) == _types(value)
+
+
+def _types(value):
+    """The document's shape with every leaf replaced by its type: 1 and 1.0 must not be swapped."""
+    if isinstance(value, dict):
+        return {key: _types(child) for key, child in value.items()}
+    if isinstance(value, list):
+        return [_types(child) for child in value]
+    return type(value).__name__
+
+
+def test_a_body_of_floats_is_taken_from_the_fast_parser():
+    # Floats between 0.001 and 0.01 are written with 19 or more digits after the point; they must
+    # not send a scoring body to the slow parser (the point of the fast path).
+    from service.body import _UNDECIDED, _fast_document
+
+    data = json.dumps({"records": [{"a": 0.0012345678901234567, "b": 0.5}] * 3}).encode()
+    assert _fast_document(data) is not _UNDECIDED
