@@ -113,7 +113,11 @@ class ReadmeSession:
         for inherited in ("RBFGATE_STORE", "RBFGATE_TOKENS", "XDG_DATA_HOME"):  # the reader starts afresh
             self.env.pop(inherited, None)
         self.server: subprocess.Popen | None = None
-        self._server_log = workdir / ".serve.log"
+        # The session's own files live beside the reader's directory, so that what is left in it is
+        # exactly what the README's commands wrote.
+        self._own = workdir.parent / f"{workdir.name}-session"
+        self._own.mkdir(exist_ok=True)
+        self._server_log = self._own / "serve.log"
         self.last_response: httpx.Response | None = None
 
     def run(self, command: str) -> None:
@@ -127,10 +131,10 @@ class ReadmeSession:
             self._bash(command)
 
     def run_python(self, source: str, line: int) -> None:
-        script = self.workdir / f".readme-block-{line}.py"
+        script = self._own / f"readme-block-{line}.py"
         script.write_text(source, encoding="utf-8")
         try:
-            result = subprocess.run([sys.executable, script.name], cwd=self.workdir, env=self.env,
+            result = subprocess.run([sys.executable, str(script)], cwd=self.workdir, env=self.env,
                                     capture_output=True, text=True, timeout=_COMMAND_SECONDS)
         except subprocess.TimeoutExpired as exc:
             raise CommandFailed(f"the python block at README line {line} ran over {_COMMAND_SECONDS} s") from exc
@@ -142,7 +146,7 @@ class ReadmeSession:
         self.server = None
 
     def _bash(self, command: str) -> None:
-        environment_file = self.workdir / ".readme-environment"
+        environment_file = self._own / "environment"
         script = f"set -a -o pipefail\n{command}\nstatus=$?\nenv -0 > {shlex.quote(str(environment_file))}\nexit $status\n"
         try:
             result = subprocess.run(["bash", "-c", script], cwd=self.workdir, env=self.env,

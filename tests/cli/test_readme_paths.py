@@ -10,7 +10,9 @@ stores) are only parsed, by tests/cli/test_readme_commands.py.
 from __future__ import annotations
 
 import json
+import subprocess
 from dataclasses import dataclass
+from pathlib import Path
 
 import pytest
 
@@ -26,6 +28,7 @@ _PATHS = ("Backend teams", "Data scientists", "Operators", "Auditors")
 class _Run:
     failure: str | None  # None when every command ran
     answers: dict[int, object]  # README line of an answer block -> the real answer it shows
+    left: list[str]  # what the paths left in the directory they ran in (top-level names, sorted)
 
 
 def _quick_start_steps() -> list[str]:
@@ -65,10 +68,14 @@ def readme_run(tmp_path_factory) -> _Run:
                     raise CommandFailed("an answer block with no request run just above it")
                 answers[block.line] = session.last_response.json()
     except CommandFailed as failure:
-        return _Run(f"{where}: {failure}", answers)
+        return _Run(f"{where}: {failure}", answers, _left(session.workdir))
     finally:
         session.close()
-    return _Run(None, answers)
+    return _Run(None, answers, _left(session.workdir))
+
+
+def _left(workdir: Path) -> list[str]:
+    return sorted(path.name + ("/" if path.is_dir() else "") for path in workdir.iterdir())
 
 
 def test_every_runnable_block_of_the_readme_runs(readme_run):
@@ -89,6 +96,17 @@ def test_the_answer_the_readme_shows_is_the_real_answer(readme_run):
             pytest.fail(f"README line {block.line}: its request did not run ({readme_run.failure})", pytrace=False)
         written = json.loads(block.text, parse_float=_Shown, parse_int=_Shown)
         assert _differences(written, readme_run.answers[block.line]) == [], f"README line {block.line}"
+
+
+def test_what_the_paths_leave_in_a_clone_is_ignored_by_git(readme_run):
+    # The paths run "in the clone after the quick start": a reader who follows them must not be left
+    # with untracked files in `git status`. `git check-ignore --no-index` applies the repository's
+    # .gitignore to each name as if it were in the clone's root (git-check-ignore(1)).
+    assert readme_run.left, "the paths wrote nothing: the directory listing is wrong"
+    checked = subprocess.run(["git", "check-ignore", "--no-index", "--verbose", "--non-matching", *readme_run.left],
+                             cwd=README.parent, capture_output=True, text=True, check=False)
+    not_ignored = [line.split("\t", 1)[1] for line in checked.stdout.splitlines() if line.startswith("::")]
+    assert not_ignored == [], f"add these to .gitignore, or have the README write them elsewhere: {not_ignored}"
 
 
 class _Shown(str):
