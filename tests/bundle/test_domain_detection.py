@@ -12,8 +12,8 @@ whole policy does: its margin is tuned on the very rows it is then measured on, 
 policy's margin and thresholds never see. On wine (124 reference rows, 13 features) that tuning on
 54 rows is worth more than the domain model adds, and the whole policy catches fewer shifted rows
 than that box; the test says so (strict xfail) rather than tuning the policy to the benchmark.
-What that tuning is worth is measured too: a box tuned so on one half of the 30 % refuses about
-four times as many of the other half's wine rows (exchangeability: k of n rows outside a margin
+What that tuning is worth is measured too: a box tuned so on one half of the 30 % refuses four to
+five times as many of the other half's wine rows as of its own (exchangeability: k of n rows outside a margin
 set for them means about (k + 1) / (n + 1) of new rows outside; Vovk, Gammerman and Shafer 2005).
 
 The like-for-like box ("box-oos") has its margin chosen as the bundle's is, out of sample from the
