@@ -12,6 +12,15 @@ whole policy does: its margin is tuned on the very rows it is then measured on, 
 policy's margin and thresholds never see. On wine (124 reference rows, 13 features) that tuning on
 54 rows is worth more than the domain model adds, and the whole policy catches fewer shifted rows
 than that box; the test says so (strict xfail) rather than tuning the policy to the benchmark.
+What that tuning is worth is measured too: a box tuned so on one half of the 30 % refuses four to
+five times as many of the other half's wine rows as of its own (exchangeability: k of n rows outside a margin
+set for them means about (k + 1) / (n + 1) of new rows outside; Vovk, Gammerman and Shafer 2005).
+
+The like-for-like box ("box-oos") has its margin chosen as the bundle's is, out of sample from the
+reference rows alone, for the whole refuse rate (the bundle's ranges get half of it). It is
+compared at the same target rate, not at the same measured share of the 30 %. On digits (64
+features) the whole policy catches fewer shifted rows than that box: the half of the budget the
+domain model spends buys less there than it would as range margin (strict xfail, README).
 """
 
 from __future__ import annotations
@@ -23,6 +32,8 @@ from tests.benchmarks.domain_detection import DATASETS, detection_case, summaris
 SEEDS = (0, 1, 2)
 _WINE = pytest.mark.xfail(strict=True, reason="a box tuned on wine's 54 measured rows catches more than the whole "
                           "policy, whose margin is chosen without them (README, How rbfgate decides)")
+_DIGITS = pytest.mark.xfail(strict=True, reason="on digits the domain model's half of the budget catches fewer "
+                            "shifted rows than the same budget spent on the box margin (README, How rbfgate decides)")
 
 
 @pytest.fixture(scope="module")
@@ -40,4 +51,23 @@ def test_the_whole_policy_catches_at_least_as_many_shifted_rows_as_a_box_at_the_
 def test_the_whole_policy_catches_more_than_the_box_on_at_least_two_datasets(summary):
     better = [name for name, result in summary.items()
               if result["caught_all_shifts"]["whole"] > result["caught_all_shifts"]["box-same"]]
+    assert len(better) >= 2, {name: result["caught_all_shifts"] for name, result in summary.items()}
+
+
+@pytest.mark.parametrize("dataset", DATASETS)
+def test_a_box_tuned_on_the_measured_rows_refuses_more_of_rows_it_was_not_tuned_on(dataset, summary):
+    halves = summary[dataset]["box_same_halves"]
+    assert halves["other_half"] > halves["tuning_half"], halves
+
+
+@pytest.mark.parametrize("dataset", [pytest.param(name, marks=_DIGITS) if name == "digits" else name
+                                     for name in DATASETS])
+def test_the_whole_policy_catches_at_least_as_many_shifted_rows_as_a_box_chosen_out_of_sample(dataset, summary):
+    caught = summary[dataset]["caught_all_shifts"]
+    assert caught["whole"] >= caught["box-oos"], caught
+
+
+def test_the_whole_policy_catches_more_than_the_out_of_sample_box_on_at_least_two_datasets(summary):
+    better = [name for name, result in summary.items()
+              if result["caught_all_shifts"]["whole"] > result["caught_all_shifts"]["box-oos"]]
     assert len(better) >= 2, {name: result["caught_all_shifts"] for name, result in summary.items()}
