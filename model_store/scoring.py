@@ -161,10 +161,6 @@ class Scorer:
 
     def score(self, raw: np.ndarray) -> Scores:
         """Score ``raw`` (n, f) float64, finite, in manifest feature order and raw units."""
-        if raw.shape[0] == 1:
-            # numpy sends a one-row product to BLAS gemv, whose sums round differently from
-            # gemm's; scoring the row twice keeps single rows on the same path as batches.
-            return _first_row(self.score(raw[[0, 0]]))
         with np.errstate(over="ignore", invalid="ignore"):
             scaled = (raw - self.center) / self.scale
             scaled_sq = np.einsum("ij,ij->i", scaled, scaled)
@@ -218,10 +214,6 @@ class Scorer:
             nearest_percentile=distance_percentile(nearest_distance, self.reference_quantiles),
             range_excess=range_excess(raw, self.allowed_low, self.allowed_high),
         )
-
-
-def _first_row(scores: Scores) -> Scores:
-    return Scores(**{name: None if value is None else value[:1] for name, value in vars(scores).items()})
 
 
 def range_excess(raw: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
