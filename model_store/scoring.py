@@ -135,6 +135,7 @@ class Scorer:
         self.allowed_low = np.asarray(allowed_low, dtype=np.float64)
         self.allowed_high = np.asarray(allowed_high, dtype=np.float64)
         self.reference_quantiles = np.asarray(reference_quantiles, dtype=np.float64)
+        self._quantile_list = self.reference_quantiles.tolist()  # for the few-row percentile path
         self.calibrator = calibrator
         self.break_ties = break_ties
         self.calibrate_pairwise = calibrate_pairwise
@@ -211,27 +212,31 @@ class Scorer:
             nearest_similarity=np.exp(-self.gamma * nearest_distance**2),
             nearest_index=nearest_index,
             nearest_label=self.classes[self.support_class[nearest_index]],
-            nearest_percentile=distance_percentile(nearest_distance, self.reference_quantiles),
+            nearest_percentile=distance_percentile(nearest_distance, self.reference_quantiles, self._quantile_list),
             range_excess=range_excess(raw, self.allowed_low, self.allowed_high),
         )
 
 
 def range_excess(raw: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
-    """(n, f) signed amount outside [low, high]: 0 inside, value - high above, value - low below."""
-    above = np.maximum(raw - high, 0.0)
-    below = np.minimum(raw - low, 0.0)
-    return above + below
+    """(n, f) signed amount outside [low, high] (low <= high): 0 inside, value - high above, value - low below."""
+    # raw - clip(raw): the same subtraction above and below, raw - raw = +0.0 inside; one temporary
+    # instead of four (a 10,000 x 50 batch spent more here than in its percentiles).
+    excess = np.clip(raw, low, high)
+    return np.subtract(raw, excess, out=excess)
 
 
-def distance_percentile(distance: np.ndarray, quantiles: np.ndarray) -> np.ndarray:
+def distance_percentile(distance: np.ndarray, quantiles: np.ndarray, quantile_list: list[float] | None = None
+                        ) -> np.ndarray:
     """Percentile (0-100) of each distance, interpolated in evenly spaced reference quantiles.
 
     Ties in the quantiles (many reference rows at distance 0, say) resolve to
-    the highest quantile that does not exceed the distance.
+    the highest quantile that does not exceed the distance. ``quantile_list`` is
+    ``quantiles.tolist()`` when the caller keeps it (the scorer does, once).
     """
     steps = len(quantiles) - 1
     if len(distance) <= _PYTHON_PERCENTILE_ROWS:
-        return np.array([_percentile(value, quantiles.tolist(), steps) for value in distance.tolist()])
+        listed = quantiles.tolist() if quantile_list is None else quantile_list
+        return np.array([_percentile(value, listed, steps) for value in distance.tolist()])
     upper = np.searchsorted(quantiles, distance, side="right")
     # upper lies in [0, steps + 1], so one bound of each clip is never reached; np.minimum and
     # np.maximum give the same integers without np.clip's per-call overhead (~10 us per row scored).
@@ -245,7 +250,7 @@ def distance_percentile(distance: np.ndarray, quantiles: np.ndarray) -> np.ndarr
 
 
 # Up to this many rows the percentile is computed with Python floats: a dozen numpy calls cost
-# more than the arithmetic (single records, scored as two rows), and the operations are the same
+# more than the arithmetic (single records), and the operations are the same
 # IEEE 754 ones in the same order, so the results are the same bits.
 _PYTHON_PERCENTILE_ROWS = 4
 
