@@ -28,6 +28,7 @@ batch. Otherwise (a near tie, or a far row) the row goes the batch way.
 from __future__ import annotations
 
 import math
+import threading
 from contextlib import nullcontext
 
 import numpy as np
@@ -113,42 +114,41 @@ class KernelExpansion:
             sums, index = self.evaluate(scaled[[0, 0]], scaled_sq[[0, 0]], nearest=nearest)
             return sums[:1], None if index is None else index[:1]
         n_features = scaled.shape[1]
-        augmented = np.empty((n_rows, n_features + 2))
-        augmented[:, :-2] = scaled
-        augmented[:, -1] = 1.0
         # Python floats overflow to inf without a warning: one check decides whether any row is far,
         # so the common case pays for no np.errstate (a few microseconds per call, felt on one row).
         any_far = not math.isfinite(float(scaled_sq.max()) * self.gamma) if n_rows else False
-        if not any_far:
-            np.multiply(scaled_sq, -self.gamma, out=augmented[:, -2])
-        else:
-            with np.errstate(over="ignore", invalid="ignore"):
-                np.multiply(scaled_sq, -self.gamma, out=augmented[:, -2])
-            far = ~np.isfinite(augmented[:, -2])
-            # Make the exponent exactly -inf instead of the inf - inf = NaN the expanded form would give.
-            augmented[far, :-2] = 0.0
-            augmented[far, -2] = -np.inf
         sums = np.empty((n_rows, self.n_outputs))
-        block = np.empty((min(n_rows, self.rows_per_chunk), self.support_per_tile))
-        one_tile = block.shape[1] >= self._support_augmented_t.shape[1]
-        if not nearest and one_tile:  # the domain model: sums only, no argmax and gather per chunk
-            with np.errstate(invalid="ignore") if any_far else nullcontext():  # as in the loop below
-                for start in range(0, n_rows, self.rows_per_chunk):
-                    stop = min(start + self.rows_per_chunk, n_rows)
-                    self._sum_chunk(augmented[start:stop], block[: stop - start], sums[start:stop])
-            return sums, None
         want_nearest = nearest
-        nearest = np.empty(n_rows, dtype=np.int64)
-        if n_rows <= self.rows_per_chunk and not any_far:  # one chunk: most calls, and every single record
-            self._score_chunk(augmented, block[:n_rows], sums, nearest)
-            return sums, nearest if want_nearest else None
+        nearest_index = np.empty(n_rows, dtype=np.int64)
+        chunk_rows = max(1, min(n_rows, self.rows_per_chunk))
+        block, operand = _workspace(chunk_rows, self.support_per_tile, n_features + 2)
+        sums_only = not want_nearest and block.shape[1] >= self._support_augmented_t.shape[1]
         # With a far row, BLAS may multiply its -inf by the zero padding of its kernels and raise
         # the invalid flag; the results are exact (-inf), so silence that one case.
         with np.errstate(invalid="ignore") if any_far else nullcontext():
-            for start in range(0, n_rows, self.rows_per_chunk):
-                stop = min(start + self.rows_per_chunk, n_rows)
-                self._score_chunk(augmented[start:stop], block[: stop - start], sums[start:stop], nearest[start:stop])
-        return sums, nearest if want_nearest else None
+            for start in range(0, n_rows, chunk_rows):
+                stop = min(start + chunk_rows, n_rows)
+                augmented = operand[: stop - start]
+                self._augment(scaled[start:stop], scaled_sq[start:stop], augmented, any_far)
+                if sums_only:  # the domain model: sums only, no argmax and gather per chunk
+                    self._sum_chunk(augmented, block[: stop - start], sums[start:stop])
+                else:
+                    self._score_chunk(augmented, block[: stop - start], sums[start:stop], nearest_index[start:stop])
+        return sums, nearest_index if want_nearest else None
+
+    def _augment(self, scaled, scaled_sq, out, any_far: bool) -> None:
+        """Fill ``out`` (rows, f + 2) with ``[z, -gamma |z|^2, 1]`` for ``scaled`` (rows, f) rows."""
+        out[:, :-2] = scaled
+        out[:, -1] = 1.0
+        if not any_far:
+            np.multiply(scaled_sq, -self.gamma, out=out[:, -2])
+            return
+        with np.errstate(over="ignore", invalid="ignore"):
+            np.multiply(scaled_sq, -self.gamma, out=out[:, -2])
+        far = ~np.isfinite(out[:, -2])
+        # Make the exponent exactly -inf instead of the inf - inf = NaN the expanded form would give.
+        out[far, :-2] = 0.0
+        out[far, -2] = -np.inf
 
     def _evaluate_row(self, scaled_row: np.ndarray, scaled_sq: float, nearest: bool
                       ) -> tuple[np.ndarray, np.ndarray | None] | None:
@@ -211,6 +211,26 @@ class KernelExpansion:
             best[closer] = value[closer]
             _kernel_in_place(part, value)
             sums_out += part @ self.coef[start:stop]
+
+
+_THREAD_WORKSPACE = threading.local()
+
+
+def _workspace(rows: int, columns: int, width: int) -> tuple[np.ndarray, np.ndarray]:
+    """This thread's kernel block (rows, columns) and row operand (rows, width), reused across calls.
+
+    A fresh 4 MB block per call costs page faults whenever glibc has given the memory back
+    (measured: 10,000 rows x 953 x 50 scored in 54 ms with fresh arrays, 46 ms without the faults).
+    Per thread, so concurrent scoring threads never share one; each holds at most one block of
+    KERNEL_BLOCK_BYTES (more only for an expansion built with a larger ``block_bytes``).
+    """
+    held = _THREAD_WORKSPACE.__dict__
+    block, operand = held.get("block"), held.get("operand")
+    if block is None or block.size < rows * columns:
+        block = held["block"] = np.empty(rows * columns)
+    if operand is None or operand.size < rows * width:
+        operand = held["operand"] = np.empty(rows * width)
+    return block[: rows * columns].reshape(rows, columns), operand[: rows * width].reshape(rows, width)
 
 
 def _kernel_in_place(exponent: np.ndarray, row_max: np.ndarray) -> None:
