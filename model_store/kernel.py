@@ -33,7 +33,7 @@ from contextlib import nullcontext
 
 import numpy as np
 
-__all__ = ["KERNEL_BLOCK_BYTES", "MAX_CHUNK_ROWS", "MIN_CHUNK_ROWS", "KernelExpansion"]
+__all__ = ["KERNEL_BLOCK_BYTES", "MAX_CHUNK_ROWS", "MIN_CHUNK_ROWS", "KernelExpansion", "workspace"]
 
 # Small enough that the kernel block stays in the CPU cache between the passes over it
 # (exponent, argmax, clamp, exp, product); at least two rows per chunk.
@@ -121,7 +121,7 @@ class KernelExpansion:
         want_nearest = nearest
         nearest_index = np.empty(n_rows, dtype=np.int64)
         chunk_rows = max(1, min(n_rows, self.rows_per_chunk))
-        block, operand = _workspace(chunk_rows, self.support_per_tile, n_features + 2)
+        block, operand = workspace(chunk_rows, self.support_per_tile, n_features + 2)
         sums_only = not want_nearest and block.shape[1] >= self._support_augmented_t.shape[1]
         # With a far row, BLAS may multiply its -inf by the zero padding of its kernels and raise
         # the invalid flag; the results are exact (-inf), so silence that one case.
@@ -216,7 +216,7 @@ class KernelExpansion:
 _THREAD_WORKSPACE = threading.local()
 
 
-def _workspace(rows: int, columns: int, width: int) -> tuple[np.ndarray, np.ndarray]:
+def workspace(rows: int, columns: int, width: int) -> tuple[np.ndarray, np.ndarray]:
     """This thread's kernel block (rows, columns) and row operand (rows, width), reused across calls.
 
     A fresh 4 MB block per call costs page faults whenever glibc has given the memory back
