@@ -21,8 +21,8 @@ A single row is one matrix-vector product over the augmented support matrix (``_
 gemv streams the matrix once, where a gemm of two rows packs it first (measured 2.6 to 6 times
 slower for 10,000 to 50,000 support vectors). gemv sums each exponent in another order than gemm,
 so its largest exponent is trusted as the nearest support vector only when it beats every other by
-more than twice the rounding bound of either sum; that is then the one gemm picks too, for any
-batch. Otherwise (a near tie, or a far row) the row goes the batch way.
+more than four times the rounding bound of one sum (each of gemv's and gemm's values is within that
+bound of the exact one); that is then the one gemm picks too, for any batch. Otherwise (a near tie, or a far row) the row goes the batch way.
 """
 
 from __future__ import annotations
@@ -155,7 +155,7 @@ class KernelExpansion:
         """``evaluate`` of one row ``scaled_row`` (f,) by one gemv; None when the batch path must decide.
 
         None for a far row (its exponent overflows) and, when ``nearest``, for a row whose largest
-        exponent is not clear of the others by twice the rounding bound (gemm could order them otherwise).
+        exponent is not clear of the others by four rounding bounds (gemm could order them otherwise).
         """
         row_exponent = scaled_sq * -self.gamma  # the batch's np.multiply(scaled_sq, -gamma), same bits
         if not math.isfinite(row_exponent):

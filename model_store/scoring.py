@@ -15,8 +15,9 @@ For a row ``x`` (raw units) the scorer computes, in order:
    (``model_store.domain``), through the same kernel code (``model_store.kernel``).
 
 Rows are processed in chunks so that the kernel block (rows x support vectors
-float64) stays under ``KERNEL_BLOCK_BYTES`` (4 MiB, cache-sized) whatever the
-batch size; bundles with more than 8,192 support vectors are also split into
+float64) stays under ``KERNEL_BLOCK_BYTES`` (4 MiB, cache-sized) and at most
+``MAX_CHUNK_ROWS`` (1,024) rows whatever the batch size; a single row is one
+matrix-vector product (``model_store.kernel``); bundles with more than 8,192 support vectors are also split into
 tiles of support vectors, so that a chunk keeps ``MIN_CHUNK_ROWS`` rows and the
 support matrix is not re-read for every few rows. Nearest support vectors,
 distances, percentiles and range checks came out bit-identical for batch
