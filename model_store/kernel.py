@@ -222,7 +222,9 @@ def workspace(rows: int, columns: int, width: int) -> tuple[np.ndarray, np.ndarr
     A fresh 4 MB block per call costs page faults whenever glibc has given the memory back
     (measured: 10,000 rows x 953 x 50 scored in 54 ms with fresh arrays, 46 ms without the faults).
     Per thread, so concurrent scoring threads never share one; each holds at most one block of
-    KERNEL_BLOCK_BYTES (more only for an expansion built with a larger ``block_bytes``).
+    KERNEL_BLOCK_BYTES (more only for an expansion built with a larger ``block_bytes``) and one row
+    operand of MAX_CHUNK_ROWS x (f + 2) floats for the widest bundle it scored. The scorer also
+    reuses the block for nearest distances once the kernel is done with it.
     """
     held = _THREAD_WORKSPACE.__dict__
     block, operand = held.get("block"), held.get("operand")

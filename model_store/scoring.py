@@ -233,7 +233,7 @@ def _distances(scaled: np.ndarray, support_vectors: np.ndarray, index: np.ndarra
         distance = np.einsum("ij,ij->i", difference, difference)
         return np.sqrt(distance, out=distance)
     distance = np.empty(n_rows)
-    chunk = max(1, min(n_rows, MAX_CHUNK_ROWS))
+    chunk = max(1, min(n_rows, MAX_CHUNK_ROWS, KERNEL_BLOCK_BYTES // (8 * max(1, n_features))))  # buffer <= 4 MiB
     buffer = _workspace(chunk, n_features, 0)[0]  # the kernel's block: the kernel is done with it here
     for start in range(0, n_rows, chunk):
         stop = min(start + chunk, n_rows)
