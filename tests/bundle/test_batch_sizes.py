@@ -131,3 +131,19 @@ def test_empty_batch_gives_empty_results(wine_sigmoid):
     assert scores.decision.shape == (0, 3)
     assert scores.probabilities.shape == (0, 3)
     assert scores.range_excess.shape == (0, X.shape[1])
+
+
+def test_threads_scoring_at_once_get_the_results_of_one_thread(wine_sigmoid):
+    # The kernel reuses one work buffer per thread (model_store.kernel.workspace); the service scores
+    # on several threads at once, and BLAS releases the GIL, so a shared buffer would mix rows.
+    from concurrent.futures import ThreadPoolExecutor
+
+    bundle, _, X = wine_sigmoid
+    scorer = bundle.scorer.kernel
+    batches = [_rows(X, 3 * scorer.rows_per_chunk + 5, seed=20 + index) for index in range(4)]
+    alone = [bundle.score(batch) for batch in batches]
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        for _ in range(5):
+            together = list(pool.map(bundle.score, batches))
+            for index, (got, want) in enumerate(zip(together, alone)):
+                assert_same_scores(got, want, f"batch {index} scored beside others")
