@@ -65,6 +65,8 @@ class Bundle:
         self.digest = sha256_bytes(canonical)
         self._scorer = _build_scorer(manifest, arrays, source)
         self._resident_bytes = self._scorer.resident_bytes + 4 * len(canonical)
+        # Listed once: score() needs the names for every call, the manifest builds a new list each time.
+        self._feature_names = manifest.feature_names
 
     @property
     def name(self) -> str:
@@ -106,7 +108,7 @@ class Bundle:
         by feature name (unused columns ignored); a plain (n, f) array or list of rows must be
         in ``feature_names`` order (``model_store.columns``).
         """
-        raw = feature_matrix(X, self.feature_names)
+        raw = feature_matrix(X, self._feature_names)
         if raw.ndim != 2 or raw.shape[1] != self._scorer.n_features:
             raise InputError(
                 f"expected a 2-D array of shape (n, {self._scorer.n_features}) in the order "

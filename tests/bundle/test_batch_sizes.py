@@ -22,6 +22,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from model_store.kernel import MAX_CHUNK_ROWS
 from model_store.scoring import KERNEL_BLOCK_BYTES
 
 from .reference import assert_close
@@ -95,13 +96,15 @@ def test_tiny_chunks_give_the_same_results_as_one_chunk(wine_sigmoid, monkeypatc
 
 def test_kernel_block_stays_within_the_bound(cancer_standard, wine_sigmoid, iris_raw):
     # README, Exactness, and model_store/scoring.py: the kernel block (rows x support vectors,
-    # float64) stays under 4 MiB whatever the batch size, holding as many rows as fit.
-    assert KERNEL_BLOCK_BYTES == 4 * 1024 * 1024
+    # float64) stays under 4 MiB whatever the batch size, holding as many rows as fit, up to
+    # MAX_CHUNK_ROWS (1,024).
+    assert KERNEL_BLOCK_BYTES == 4 * 1024 * 1024 and MAX_CHUNK_ROWS == 1024
     for bundle, _, _ in (cancer_standard, wine_sigmoid, iris_raw):
         scorer = bundle.scorer.kernel
         block_bytes = scorer.rows_per_chunk * len(scorer.support_vectors) * 8
         assert block_bytes <= KERNEL_BLOCK_BYTES
-        assert block_bytes + len(scorer.support_vectors) * 8 > KERNEL_BLOCK_BYTES  # as many rows as fit
+        as_many_as_fit = block_bytes + len(scorer.support_vectors) * 8 > KERNEL_BLOCK_BYTES
+        assert as_many_as_fit or scorer.rows_per_chunk == MAX_CHUNK_ROWS
 
 
 def test_row_order_does_not_change_any_row(wine_sigmoid):
@@ -128,3 +131,19 @@ def test_empty_batch_gives_empty_results(wine_sigmoid):
     assert scores.decision.shape == (0, 3)
     assert scores.probabilities.shape == (0, 3)
     assert scores.range_excess.shape == (0, X.shape[1])
+
+
+def test_threads_scoring_at_once_get_the_results_of_one_thread(wine_sigmoid):
+    # The kernel reuses one work buffer per thread (model_store.kernel.workspace); the service scores
+    # on several threads at once, and BLAS releases the GIL, so a shared buffer would mix rows.
+    from concurrent.futures import ThreadPoolExecutor
+
+    bundle, _, X = wine_sigmoid
+    scorer = bundle.scorer.kernel
+    batches = [_rows(X, 3 * scorer.rows_per_chunk + 5, seed=20 + index) for index in range(4)]
+    alone = [bundle.score(batch) for batch in batches]
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        for _ in range(5):
+            together = list(pool.map(bundle.score, batches))
+            for index, (got, want) in enumerate(zip(together, alone)):
+                assert_same_scores(got, want, f"batch {index} scored beside others")
