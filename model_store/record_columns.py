@@ -71,7 +71,8 @@ def _all_numbers(names: Sequence[str], records: Sequence[Mapping[str, Any]]) -> 
     if not set(map(type, chain.from_iterable(cells))) <= _NUMBERS:
         return None
     try:
-        return np.array(cells, dtype=np.float64).reshape(len(records), len(names))
+        flat = np.fromiter(chain.from_iterable(cells), dtype=np.float64, count=len(records) * len(names))
+        return flat.reshape(len(records), len(names))
     except OverflowError:  # an int beyond float64
         return None
 
