@@ -31,6 +31,8 @@ import math
 import re
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from itertools import repeat
+from operator import contains
 from typing import Any
 
 import numpy as np
@@ -240,7 +242,7 @@ def _check_json_records(rule: _RecordRule, records: Sequence[Mapping[str, Any]])
     high = np.array([high for _, high in rule.bounds], dtype=np.float64)
     with_id = np.zeros(n_records, dtype=bool)
     if rule.with_ids:
-        with_id = np.fromiter((RECORD_ID in record for record in records), dtype=bool, count=n_records)
+        with_id = np.fromiter(map(contains, records, repeat(RECORD_ID)), dtype=bool, count=n_records)  # C-level loop
     values, plain = plain_rows(rule.names, low, high, records, None if rule.allow_extra else with_id.astype(np.int64))
     record_ids: list[Any] | None = None
     if rule.with_ids:

@@ -36,6 +36,7 @@ from service.problems import install_problem_handlers
 from service.recent import RecentRecords
 from service.registry import ModelRegistry
 from service.request_ids import RequestIdMiddleware
+from service.score_dispatch import ScoreDispatch, score_routes
 from service.score_routes import add_score_routes
 from service.settings import Settings
 from service.view_routes import add_view_routes
@@ -104,6 +105,8 @@ def create_app(
     add_openapi_route(app, settings.max_records)
     _check_every_route_has_a_rule(app)
     install_problem_handlers(app)
+    # Innermost: the score routes skip FastAPI's routing and dependency machinery, and nothing else.
+    app.add_middleware(ScoreDispatch, routes=score_routes(app.routes), authenticator=authenticator)
     app.add_middleware(HeaderSizeLimit)  # inside the access log, so refusals are logged and counted
     app.add_middleware(AccessLogMiddleware, write=write_log, metrics=metrics)
     app.add_middleware(RequestIdMiddleware)  # outermost: every answer the app gives carries X-Request-ID

@@ -35,12 +35,13 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from starlette.requests import Request
+from starlette.types import Scope
 
 from model_store.errors import InputError
 from service.problems import ServiceProblem
 from service.tokens import TokenEntry, read_tokens, token_digest
 
-__all__ = ["ACCESS_RULES", "AccessRule", "Authenticator", "Caller", "access_check"]
+__all__ = ["ACCESS_RULES", "AccessRule", "Authenticator", "Caller", "access_check", "admit"]
 
 _log = logging.getLogger("rbfgate.service")
 
@@ -202,17 +203,34 @@ class Authenticator:
         return found
 
 
+def admit(authenticator: Authenticator, scope: Scope, rules: Mapping[tuple[str, str], AccessRule] = ACCESS_RULES) -> None:
+    """Check the caller of a request against the rule of the route it matched (``scope["route"]``),
+    and keep the caller in the request's state for the log line; raise the 401 or 403 problem.
+
+    The one access check: FastAPI runs it as the app-wide dependency (``access_check``), and the
+    score routes' lean path (``service.score_dispatch``) runs it itself.
+    """
+    rule = rules.get((scope["method"], getattr(scope.get("route"), "path", "")))
+    if rule is None:  # create_app refuses this; stay closed should it ever happen
+        raise ServiceProblem(403, "no-access-rule", "Forbidden", "this route has no access rule, so it is closed")
+    scope.setdefault("state", {})["caller"] = authenticator.check(rule, _authorization(scope))
+
+
 def access_check(authenticator: Authenticator, rules: Mapping[tuple[str, str], AccessRule] = ACCESS_RULES) -> Callable:
-    """The app-wide FastAPI dependency: find the route's rule and check the caller."""
+    """The app-wide FastAPI dependency: ``admit`` for the route FastAPI matched."""
 
     async def check_access(request: Request) -> None:
-        route = request.scope.get("route")
-        rule = rules.get((request.method, getattr(route, "path", "")))
-        if rule is None:  # create_app refuses this; stay closed should it ever happen
-            raise ServiceProblem(403, "no-access-rule", "Forbidden", "this route has no access rule, so it is closed")
-        request.state.caller = authenticator.check(rule, request.headers.get("authorization"))
+        admit(authenticator, request.scope, rules)
 
     return check_access
+
+
+def _authorization(scope: Scope) -> str | None:
+    """The first ``Authorization`` header, as Starlette's ``request.headers`` reads it (latin-1)."""
+    for name, value in scope["headers"]:
+        if name == b"authorization":  # ASGI header names are lower-cased
+            return value.decode("latin-1")
+    return None
 
 
 def _unauthorized(detail: str, *, invalid: bool) -> ServiceProblem:

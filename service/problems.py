@@ -46,6 +46,7 @@ __all__ = [
     "PROBLEM_MEDIA_TYPE",
     "ServiceProblem",
     "install_problem_handlers",
+    "known_problem",
     "problem_for_error",
     "problem_response",
     "validation_problem",
@@ -112,6 +113,20 @@ def problem_for_error(exc: RbfgateError) -> ServiceProblem:
     return ServiceProblem(500, "about:blank", "Internal Server Error", "the service failed; the error was logged")
 
 
+def known_problem(exc: BaseException) -> ServiceProblem | None:
+    """The problem an expected error is answered with (a ``ServiceProblem`` as it is, one of
+    rbfgate's errors through ``problem_for_error``); None for anything else, which is a bug.
+
+    The exception handlers below and the score routes' lean path (``service.score_dispatch``)
+    both answer through this, so an error reads the same whichever path served the route.
+    """
+    if isinstance(exc, ServiceProblem):
+        return exc
+    if isinstance(exc, RbfgateError):
+        return problem_for_error(exc)
+    return None
+
+
 def problem_response(problem: ServiceProblem) -> Response:
     """Render ``problem`` as ``application/problem+json``."""
     content = json.dumps(problem.body(), ensure_ascii=False, allow_nan=False, separators=(",", ":"))
@@ -120,19 +135,15 @@ def problem_response(problem: ServiceProblem) -> Response:
 
 def install_problem_handlers(app: FastAPI) -> None:
     """Register the handlers that turn every kind of error into problem details."""
-    app.add_exception_handler(ServiceProblem, _on_service_problem)
-    app.add_exception_handler(RbfgateError, _on_rbfgate_error)
+    app.add_exception_handler(ServiceProblem, _on_known_error)
+    app.add_exception_handler(RbfgateError, _on_known_error)
     app.add_exception_handler(StarletteHTTPException, _on_http_exception)
     app.add_exception_handler(RequestValidationError, _on_validation_error)
     app.add_exception_handler(Exception, _on_unexpected)
 
 
-async def _on_service_problem(request: Request, exc: ServiceProblem) -> Response:
-    return problem_response(exc)
-
-
-async def _on_rbfgate_error(request: Request, exc: RbfgateError) -> Response:
-    return problem_response(problem_for_error(exc))
+async def _on_known_error(request: Request, exc: ServiceProblem | RbfgateError) -> Response:
+    return problem_response(known_problem(exc))
 
 
 async def _on_http_exception(request: Request, exc: StarletteHTTPException) -> Response:

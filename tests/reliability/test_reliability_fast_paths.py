@@ -171,3 +171,16 @@ def test_a_body_of_floats_is_taken_from_the_fast_parser():
 
     data = json.dumps({"records": [{"a": 0.0012345678901234567, "b": 0.5}] * 3}).encode()
     assert _fast_document(data) is not _UNDECIDED
+
+
+@_SETTINGS
+@given(data=st.lists(st.sampled_from([b"7", b"0" * 18, b"9" * 19, b"1" * 25, b".", b"-", b"e", b"x", b'"', b",", b"["]),
+                     max_size=12).map(b"".join))
+def test_long_integer_runs_are_found_as_the_definition_says(data):
+    # The definition, written as a regular expression: 19 or more digits not preceded by a digit or a "."
+    # (a fraction's digits are a float's either way; an integer part or exponent that long may not fit 64 bits).
+    import re
+
+    from service.body import _long_integer_digits
+
+    assert _long_integer_digits(data) == bool(re.search(rb"(?<![0-9.])[0-9]{19}", data))
