@@ -232,9 +232,10 @@ def _service_limits(service: list[dict], results: dict) -> list[str]:
         if bare:
             extra = (f"; the bare endpoint (FastAPI, no checks, the decision only) {bare['cpu_ms_per_request']:.2f} ms, "
                      f"so {ours['cpu_ms_per_request'] - bare['cpu_ms_per_request']:.2f} ms per request is what rbfgate "
-                     "adds: the access rule (a FastAPI dependency), request-id and log middleware, the range rules, "
+                     "adds: the access rule, the request id, the range rules, "
                      "the scorer's diagnostics (nearest support vector, percentile, domain model), the version "
-                     "headers, the log line and the metrics. The share of the bare endpoint is bound by that "
+                     "headers, the log line and the metrics (the score routes already bypass FastAPI's router, "
+                     "`service/score_dispatch.py`). The share of the bare endpoint is bound by that "
                      "difference, most of it per-call Python and numpy overhead rather than per-record work")
         lines.append(
             f"- Service, one record: rbfgate costs {ours['cpu_ms_per_request']:.2f} ms of server CPU per request and "
