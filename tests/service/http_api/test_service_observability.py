@@ -106,6 +106,24 @@ def test_health_and_metrics_reveal_no_feature_values(make_client, shared_store):
         assert not any(secret in text for secret in _SECRETS), route
 
 
+def test_fastapi_own_opentelemetry_export_stays_off_when_a_provider_is_set_up(make_client, shared_store, monkeypatch):
+    # FastAPI (0.165 and later) instruments every request once a tracer provider is configured in
+    # the process; rbfgate switches that off (service.app), so such a provider is never consulted.
+    otel_trace = pytest.importorskip("opentelemetry.trace")
+    consulted: list[str] = []
+
+    class _ConfiguredProvider(otel_trace.TracerProvider):
+        def get_tracer(self, *args, **kwargs):
+            consulted.append("get_tracer")
+            return otel_trace.NoOpTracer()
+
+    monkeypatch.setattr(otel_trace, "get_tracer_provider", lambda: (consulted.append("provider"), _ConfiguredProvider())[1])
+    client = make_client(shared_store.root)
+    assert client.post("/score/iris", json={"records": [_RECORD]}).status_code == 200
+    assert client.get("/models/iris").status_code == 200
+    assert consulted == []
+
+
 def test_log_lines_are_json_objects_one_per_line():
     import io
 
