@@ -153,7 +153,7 @@ def _check_every_route_has_a_rule(app: FastAPI) -> None:
                 raise RuntimeError(f"{method} {route.path} has no entry in service.auth.ACCESS_RULES")
 
 
-# FastAPI 0.165 and later export OpenTelemetry spans, metrics and logs (exception messages and
+# FastAPI releases with native telemetry (0.165 here) export OpenTelemetry spans, metrics and logs (exception messages and
 # stack traces included) whenever a provider is set up anywhere in the process. rbfgate's
 # telemetry is its own: Prometheus metrics and one JSON log line per request, which carry record
 # values only when operators ask (log_inputs). Switching FastAPI's off leaves no second export

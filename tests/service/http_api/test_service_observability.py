@@ -107,8 +107,9 @@ def test_health_and_metrics_reveal_no_feature_values(make_client, shared_store):
 
 
 def test_fastapi_own_opentelemetry_export_stays_off_when_a_provider_is_set_up(make_client, shared_store, monkeypatch):
-    # FastAPI (0.165 and later) instruments every request once a tracer provider is configured in
-    # the process; rbfgate switches that off (service.app), so such a provider is never consulted.
+    # FastAPI releases with native telemetry (0.165 here) instrument every request once a tracer
+    # provider is configured in the process; rbfgate switches that off (service.app), so such a
+    # provider is never consulted.
     otel_trace = pytest.importorskip("opentelemetry.trace")
     consulted: list[str] = []
 
