@@ -153,12 +153,13 @@ def _check_every_route_has_a_rule(app: FastAPI) -> None:
                 raise RuntimeError(f"{method} {route.path} has no entry in service.auth.ACCESS_RULES")
 
 
-# FastAPI releases with native telemetry (0.165 here) export OpenTelemetry spans, metrics and logs (exception messages and
-# stack traces included) whenever a provider is set up anywhere in the process. rbfgate's
-# telemetry is its own: Prometheus metrics and one JSON log line per request, which carry record
-# values only when operators ask (log_inputs). Switching FastAPI's off leaves no second export
-# path that nobody chose, and no provider lookups on every request (about 4 % of a one-record
-# request's server CPU: py-spy on a real `rbfgate serve` under wrk, 2026-12-03).
+# FastAPI releases with native telemetry (0.165 here) export OpenTelemetry spans, metrics and
+# logs (exception messages and stack traces included) whenever a provider is set up anywhere in
+# the process. rbfgate's telemetry is its own: Prometheus metrics and one JSON log line per
+# request, which carry record values only when operators ask (log_inputs). Switching FastAPI's
+# off leaves no second export path that nobody chose, and no provider lookups on every request
+# (about 4 % of a one-record request's server CPU: py-spy on a real `rbfgate serve` under wrk,
+# 2026-12-03).
 _TELEMETRY_OFF = {"tracing": False, "metrics": False, "logs": False, "operation_spans": False, "auto_configure": False}
 
 

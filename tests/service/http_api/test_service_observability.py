@@ -118,7 +118,11 @@ def test_fastapi_own_opentelemetry_export_stays_off_when_a_provider_is_set_up(ma
             consulted.append("get_tracer")
             return otel_trace.NoOpTracer()
 
-    monkeypatch.setattr(otel_trace, "get_tracer_provider", lambda: (consulted.append("provider"), _ConfiguredProvider())[1])
+    def configured_provider():
+        consulted.append("provider")
+        return _ConfiguredProvider()
+
+    monkeypatch.setattr(otel_trace, "get_tracer_provider", configured_provider)
     client = make_client(shared_store.root)
     assert client.post("/score/iris", json={"records": [_RECORD]}).status_code == 200
     assert client.get("/models/iris").status_code == 200
