@@ -8,6 +8,8 @@ A bundle is a directory (or its single-file tar form) holding
     reference_quantiles.npy  (q,) float64, quantiles of the reference nearest distance
     domain_support_vectors.npy  (n_d, f) float64, the domain model's support vectors (format 2)
     domain_alpha.npy         (n_d,) float64, their one-class SVM coefficients (format 2)
+    domain_whitening.npy     (f, f) float64, the map from scaled rows to the domain model's space
+                             (format 2 bundles whose domain ``space`` is ``whitened``)
 
 Each file is read once, its SHA-256 checked against the manifest, and parsed
 from the same bytes with ``allow_pickle=False``, so what was verified is what
@@ -51,6 +53,7 @@ GOLDEN_TOLERANCE = 1e-9
 
 _ARRAYS = ("support_vectors.npy", "dual_coef.npy", "reference_quantiles.npy")
 _DOMAIN_ARRAYS = ("domain_alpha.npy", "domain_support_vectors.npy")
+_WHITENING_ARRAY = "domain_whitening.npy"
 _NPY_MAGIC = b"\x93NUMPY"
 
 
@@ -160,7 +163,7 @@ def _load(path: Path, contents: dict[str, bytes] | None) -> Bundle:
     else:
         manifest_bytes = _read(path / MANIFEST_FILE, path, MAX_MANIFEST_BYTES, "a manifest may hold at most")
     document, manifest = parse_manifest_bytes(manifest_bytes, source=source)
-    expected_files = sorted(_ARRAYS + (_DOMAIN_ARRAYS if manifest.domain is not None else ()))
+    expected_files = sorted(_ARRAYS + _domain_arrays(manifest))
     if sorted(manifest.files) != expected_files:
         raise BundleFormatError(f"{source}: field files: must list exactly the files {expected_files}")
     if contents is not None:
@@ -307,6 +310,12 @@ def _build_scorer(manifest: Manifest, arrays: dict[str, np.ndarray], source: str
     )
 
 
+def _domain_arrays(manifest: Manifest) -> tuple[str, ...]:
+    if manifest.domain is None:
+        return ()
+    return _DOMAIN_ARRAYS + ((_WHITENING_ARRAY,) if manifest.domain.space == "whitened" else ())
+
+
 def _build_domain(manifest: Manifest, arrays: dict[str, np.ndarray], source: str) -> DomainModel | None:
     spec = manifest.domain
     if spec is None:
@@ -315,12 +324,15 @@ def _build_domain(manifest: Manifest, arrays: dict[str, np.ndarray], source: str
         "domain_support_vectors.npy": (spec.support_vectors, len(manifest.features)),
         "domain_alpha.npy": (spec.support_vectors,),
     }
+    if spec.space == "whitened":
+        expected[_WHITENING_ARRAY] = (len(manifest.features), len(manifest.features))
     for name, shape in expected.items():
         if arrays[name].shape != shape:
             raise BundleFormatError(f"{source}/{name}: expected shape {shape}, got {arrays[name].shape}")
     return DomainModel(
         support_vectors=arrays["domain_support_vectors.npy"],
         alpha=arrays["domain_alpha.npy"],
+        whitening=arrays.get(_WHITENING_ARRAY),
         intercept=spec.intercept,
         gamma=spec.gamma,
         unusual_below=spec.thresholds.unusual_below,

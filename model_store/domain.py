@@ -2,10 +2,11 @@
 
 The domain model is scikit-learn's ``OneClassSVM`` (Schölkopf, Platt, Shawe-Taylor, Smola and
 Williamson, "Estimating the support of a high-dimensional distribution", Neural Computation 13(7),
-2001) fitted at export on the reference rows in the classifier's scaled space. Its score is the
-one-class decision, exactly scikit-learn's ``decision_function``::
+2001) fitted at export on the reference rows in the classifier's scaled space, whitened by the
+bundle's map ``W`` (``model_store.domain_fit``; bundles exported before it have none, ``W`` = I).
+Its score is the one-class decision, exactly scikit-learn's ``decision_function`` of ``w = z W``::
 
-    score(z) = sum_j alpha_j exp(-gamma |z - s_j|^2) + intercept
+    score(z) = sum_j alpha_j exp(-gamma |z W - s_j|^2) + intercept
 
 computed by the same kernel code as the classifier (``model_store.kernel``). Larger is more typical;
 it is positive inside the estimated support and falls towards ``intercept`` (negative) far from
@@ -33,11 +34,18 @@ _BY_POSITION = np.asarray((OUTSIDE, UNUSUAL, TYPICAL), dtype=object)
 
 
 class DomainModel:
-    """support_vectors (n_sv, f) scaled space, alpha (n_sv,) scikit-learn's ``dual_coef_[0]``."""
+    """support_vectors (n_sv, f) in the model's space, alpha (n_sv,) scikit-learn's ``dual_coef_[0]``,
+    whitening (f, f) the map from scaled rows to that space, or None for the scaled space itself."""
 
     def __init__(self, *, support_vectors: np.ndarray, alpha: np.ndarray, intercept: float, gamma: float,
-                 unusual_below: float, outside_below: float, block_bytes: int = KERNEL_BLOCK_BYTES) -> None:
+                 unusual_below: float, outside_below: float, whitening: np.ndarray | None = None,
+                 block_bytes: int = KERNEL_BLOCK_BYTES) -> None:
         self.kernel = KernelExpansion(support_vectors, np.asarray(alpha, np.float64).reshape(-1, 1), gamma, block_bytes)
+        self.whitening = None if whitening is None else np.ascontiguousarray(whitening, dtype=np.float64)
+        # |z W|^2 <= |z|^2 |W|_F^2 (Cauchy-Schwarz, each partial sum of the product too): a Python
+        # float product then says whether any row can overflow, and the common case pays for no
+        # np.errstate and no finiteness pass (microseconds felt on one record).
+        self._whitening_sq = 0.0 if whitening is None else float(np.square(self.whitening).sum())
         self.intercept = float(intercept)
         self.unusual_below = float(unusual_below)
         self.outside_below = float(outside_below)
@@ -49,10 +57,35 @@ class DomainModel:
 
     def decision(self, scaled: np.ndarray, scaled_sq: np.ndarray) -> np.ndarray:
         """(n,) one-class decision of ``scaled`` (n, f) rows with squared norms ``scaled_sq`` (n,)."""
+        if self.whitening is not None:
+            scaled, scaled_sq = self._whitened(scaled, scaled_sq)
         sums, _ = self.kernel.evaluate(scaled, scaled_sq, nearest=False)
         return sums[:, 0] + self.intercept
 
+    def _whitened(self, scaled: np.ndarray, scaled_sq: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(w (n, f), |w|^2 (n,)) for ``w = scaled W``; a row whose product overflows is infinitely far."""
+        if len(scaled_sq) == 1 and float(scaled_sq[0]) * self._whitening_sq < 1e300:
+            row = np.dot(scaled[0], self.whitening)  # one record: vector products, no einsum
+            return row[None, :], np.array([np.dot(row, row)])
+        if len(scaled_sq) == 0 or float(scaled_sq.max()) * self._whitening_sq < 1e300:
+            whitened = scaled @ self.whitening
+            return whitened, np.einsum("ij,ij->i", whitened, whitened)
+        with np.errstate(over="ignore", invalid="ignore"):
+            whitened = scaled @ self.whitening
+            whitened_sq = np.einsum("ij,ij->i", whitened, whitened)
+        far = ~np.isfinite(whitened_sq)
+        if far.any():
+            # inf - inf in the product gives NaN; the kernel code scores a row of squared norm inf
+            # as infinitely far (all kernels 0), which is what an overflowing row is.
+            whitened[far] = 0.0
+            whitened_sq[far] = np.inf
+        return whitened, whitened_sq
+
     def verdicts(self, score: np.ndarray) -> np.ndarray:
         """(n,) object array of ``typical`` / ``unusual`` / ``outside`` for (n,) scores."""
+        if len(score) == 1:  # one record: two float comparisons instead of a search and a gather
+            value = float(score[0])
+            verdict = TYPICAL if value >= self.unusual_below else UNUSUAL if value >= self.outside_below else OUTSIDE
+            return np.array([verdict], dtype=object)
         # side="right": a score equal to a threshold is on its upper side (score >= threshold).
         return _BY_POSITION[np.searchsorted(self._thresholds, score, side="right")]

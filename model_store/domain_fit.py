@@ -1,20 +1,37 @@
 """Fit the domain model at export: the one-class SVM of the bundle and its cross-fitted scores.
 
 scikit-learn's ``OneClassSVM`` (Schölkopf et al. 2001, "Estimating the support of a
-high-dimensional distribution") is fitted on the reference rows in the classifier's scaled space,
-with ``nu`` = ``NU`` and scikit-learn's ``gamma='scale'`` rule, ``1 / (f * variance of the scaled
-rows)``, fixed as a number so that the bundle records it. References larger than
-``MAX_FIT_ROWS`` are subsampled without replacement by a generator seeded from the reference
-file's SHA-256; the seed and the row count go into the manifest.
+high-dimensional distribution") is fitted on the reference rows in the classifier's scaled space
+after a whitening map ``W`` (f, f): ``w = z W`` with ``W = C^(-1/2)`` for ``C`` the Ledoit-Wolf
+shrunk covariance of the scaled rows (Ledoit and Wolf 2004, "A well-conditioned estimator for
+large-dimensional covariance matrices", J. Multivariate Analysis 88; scikit-learn's
+``LedoitWolf``). In the scaled space every feature has unit variance but correlated features stay
+correlated, so an isotropic kernel sees a row that breaks a correlation (one feature moved, two
+swapped, features drawn independently) as hardly further from the reference than one that follows
+it; after whitening the directions the reference rows hardly vary in count as much as the ones
+they vary in most, and such a row is far. The shrinkage keeps ``C`` invertible and ``W`` bounded
+when features are constant or as many as the rows; a reference without variance is not whitened
+(``W`` = identity). The kernel width is the median heuristic on the whitened rows: ``gamma = 1 /
+(2 sigma^2)`` with ``sigma^2`` the median squared distance between two of them (common practice in
+kernel methods; e.g. Gretton et al. 2012, "A kernel two-sample test", JMLR 13). scikit-learn's
+``gamma='scale'`` rule, ``1 / (f * variance)``, gives a width ``1 / sqrt(2 gamma)`` about half as
+large there: whitening gives held-out rows coordinates along directions of little reference
+variance that the fitted rows do not share, and with it 1.9 % of breast cancer's held-out rows (30
+features) kept no kernel mass and were refused (``model_store.policy_fit.NO_MASS``), at the bound of
+twice the 1 % refuse rate (tests/benchmarks/domain_detection.py, seeds 0-4; the median heuristic:
+0.9 %). ``gamma`` is fixed as a number so that the bundle
+records it. References larger than ``MAX_FIT_ROWS`` are subsampled without replacement by a
+generator seeded from the reference file's SHA-256; the seed and the row count go into the
+manifest.
 
 The thresholds of its verdicts are chosen with the range margin in ``model_store.policy_fit``, on
 scores of rows the scoring model was not fitted on: a holdout row is scored by the bundle's model
-itself; a reference row by a model fitted with the same settings on the other cross-fitting folds
-of the reference. Such a fold model saw fewer rows than the bundle's, and libsvm's one-class
-coefficients sum to ``nu`` x rows, so its decision is on a smaller scale: each fold's scores are
-multiplied by the ratio of the bundle model's coefficient sum to the fold model's, which puts them
-on the bundle model's scale (tests/bundle/test_policy_fit.py checks it where in-sample and
-out-of-sample scores agree, at the median row).
+itself; a reference row by a model fitted with the same settings (its own whitening, the same gamma
+and nu) on the other cross-fitting folds of the reference. Such a fold model saw fewer rows than the
+bundle's, and libsvm's one-class coefficients sum to ``nu`` x rows, so its decision is on a smaller
+scale: each fold's scores are multiplied by the ratio of the bundle model's coefficient sum to the
+fold model's, which puts them on the bundle model's scale (tests/bundle/test_policy_fit.py checks it
+where in-sample and out-of-sample scores agree, at the median row).
 
 This module imports scikit-learn; the serving path never imports it.
 """
@@ -25,10 +42,12 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from scipy.spatial.distance import pdist
+from sklearn.covariance import LedoitWolf
 from sklearn.svm import OneClassSVM
 
-__all__ = ["DEFAULT_REFUSE_RATE", "MAX_FIT_ROWS", "NU", "UNUSUAL_RATE", "FittedDomain", "cross_fitted_scores",
-           "domain_spec", "fit_one_class"]
+__all__ = ["DEFAULT_REFUSE_RATE", "MAX_FIT_ROWS", "NU", "UNUSUAL_RATE", "FittedDomain", "OneClassFit",
+           "cross_fitted_scores", "domain_spec", "fit_one_class", "whitening_map"]
 
 DEFAULT_REFUSE_RATE = 0.01
 UNUSUAL_RATE = 0.10
@@ -37,50 +56,84 @@ MAX_FIT_ROWS = 2000  # libsvm's one-class fit grows with the square of the rows
 
 
 @dataclass(frozen=True)
-class FittedDomain:
-    """The manifest's ``domain`` section, its arrays, and the fitted estimator (the reference)."""
-
-    spec: dict[str, Any]
-    arrays: dict[str, np.ndarray]
-    estimator: OneClassSVM
-
-
-@dataclass(frozen=True)
 class OneClassFit:
-    """The bundle's one-class SVM before its thresholds are known."""
+    """The bundle's one-class SVM before its thresholds are known: ``estimator`` is fitted on ``rows @ whitening``."""
 
     estimator: OneClassSVM
+    whitening: np.ndarray  # (f, f) symmetric, the map from the scaled space to the model's space
+    shrinkage: float | None  # Ledoit-Wolf's shrinkage, None when the rows had no variance to whiten
     gamma: float
     fit_rows: int
     reference_rows: int
     subsample_seed: int | None
 
+    def decision(self, scaled: np.ndarray) -> np.ndarray:
+        """(n,) scikit-learn's ``decision_function`` of ``scaled`` (n, f) rows, whitened first."""
+        return self.estimator.decision_function(scaled @ self.whitening)
+
+
+@dataclass(frozen=True)
+class FittedDomain:
+    """The manifest's ``domain`` section, its arrays, and the fitted model (the reference)."""
+
+    spec: dict[str, Any]
+    arrays: dict[str, np.ndarray]
+    fit: OneClassFit
+
+    def decision(self, scaled: np.ndarray) -> np.ndarray:
+        """(n,) the domain score of ``scaled`` (n, f) rows by scikit-learn, the bundle's reference value."""
+        return self.fit.decision(scaled)
+
+
+def whitening_map(rows: np.ndarray) -> tuple[np.ndarray, float | None]:
+    """(W (f, f), shrinkage): ``W = C^(-1/2)`` for the Ledoit-Wolf covariance ``C`` of ``rows`` (n, f).
+
+    Identity and None when the rows have no variance (a single row, or all rows equal): there is
+    then no covariance to invert.
+    """
+    features = rows.shape[1]
+    if len(rows) < 2 or not float(rows.var(axis=0).max()) > 0:
+        return np.eye(features), None
+    estimate = LedoitWolf().fit(rows)
+    eigenvalues, eigenvectors = np.linalg.eigh(estimate.covariance_)
+    # Shrinkage makes every eigenvalue at least shrinkage x mean variance > 0; the floor only guards
+    # against rounding when that product is tiny.
+    eigenvalues = np.maximum(eigenvalues, 1e-12 * float(eigenvalues.max()))
+    whitening = (eigenvectors * eigenvalues ** -0.5) @ eigenvectors.T
+    return 0.5 * (whitening + whitening.T), float(estimate.shrinkage_)
+
 
 def fit_one_class(reference: np.ndarray, seed: int) -> OneClassFit:
-    """Fit on ``reference`` (n, f) scaled rows (a seeded subsample of ``MAX_FIT_ROWS`` when larger)."""
+    """Fit on ``reference`` (n, f) scaled rows (a seeded subsample of ``MAX_FIT_ROWS`` when larger), whitened."""
     fit_rows, subsample_seed = _subsample(reference, seed)
-    variance = float(fit_rows.var())
-    gamma = 1.0 / (reference.shape[1] * variance) if variance > 0 else 1.0
-    estimator = OneClassSVM(kernel="rbf", gamma=gamma, nu=NU).fit(fit_rows)
-    return OneClassFit(estimator, gamma, len(fit_rows), len(reference), subsample_seed)
+    whitening, shrinkage = whitening_map(fit_rows)
+    whitened = fit_rows @ whitening
+    distances = pdist(whitened, "sqeuclidean") if len(whitened) > 1 else np.zeros(1)
+    median = float(np.median(distances))
+    gamma = 1.0 / (2.0 * median) if median > 0 else 1.0
+    estimator = OneClassSVM(kernel="rbf", gamma=gamma, nu=NU).fit(whitened)
+    return OneClassFit(estimator, whitening, shrinkage, gamma, len(fit_rows), len(reference), subsample_seed)
 
 
 def cross_fitted_scores(reference: np.ndarray, folds: list[np.ndarray], full: OneClassFit, seed: int) -> np.ndarray:
     """(n,) score of each ``reference`` (n, f) row by a model fitted on the other ``folds``, on ``full``'s scale.
 
-    ``folds`` partition ``range(n)``; each fold model is fitted like ``full`` (same gamma and nu,
-    the same subsample bound) on the rows outside its fold. A fold that leaves fewer than 2 rows to
-    fit on (a reference of 2 or 3 rows) keeps ``full``'s own, in-sample scores.
+    ``folds`` partition ``range(n)``; each fold model is fitted like ``full`` (its own whitening of
+    the rows it is fitted on, the same gamma and nu, the same subsample bound) on the rows outside
+    its fold. A fold that leaves fewer than 2 rows to fit on (a reference of 2 or 3 rows) keeps
+    ``full``'s own, in-sample scores.
     """
-    scores = full.estimator.decision_function(reference)  # kept only where a fold leaves under 2 rows to fit
+    scores = full.decision(reference)  # kept only where a fold leaves under 2 rows to fit
     full_mass = float(full.estimator.dual_coef_.sum())
     for index, held in enumerate(folds):
         others = np.setdiff1d(np.arange(len(reference)), held, assume_unique=True)
         if len(held) == 0 or len(others) < 2:
             continue
         rows, _ = _subsample(reference[others], seed + index + 1)
-        model = OneClassSVM(kernel="rbf", gamma=full.gamma, nu=NU).fit(rows)
-        scores[held] = model.decision_function(reference[held]) * (full_mass / float(model.dual_coef_.sum()))
+        whitening, _ = whitening_map(rows)
+        model = OneClassSVM(kernel="rbf", gamma=full.gamma, nu=NU).fit(rows @ whitening)
+        fold_scores = model.decision_function(reference[held] @ whitening)
+        scores[held] = fold_scores * (full_mass / float(model.dual_coef_.sum()))
     return scores
 
 
@@ -89,7 +142,8 @@ def domain_spec(fit: OneClassFit, thresholds: dict[str, float], calibration: dic
     estimator = fit.estimator
     spec = {
         "method": "one-class-svm",
-        "space": "scaled",
+        "space": "whitened",
+        "whitening": {"method": "ledoit-wolf", "shrinkage": fit.shrinkage},
         "gamma": float(fit.gamma),
         "nu": NU,
         "intercept": float(estimator.intercept_[0]),
@@ -104,8 +158,9 @@ def domain_spec(fit: OneClassFit, thresholds: dict[str, float], calibration: dic
     arrays = {
         "domain_support_vectors.npy": estimator.support_vectors_,
         "domain_alpha.npy": estimator.dual_coef_[0],
+        "domain_whitening.npy": fit.whitening,
     }
-    return FittedDomain(spec, arrays, estimator)
+    return FittedDomain(spec, arrays, fit)
 
 
 def _subsample(reference: np.ndarray, seed: int) -> tuple[np.ndarray, int | None]:

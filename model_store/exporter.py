@@ -180,7 +180,7 @@ def _refusal_report(request: ExportRequest, ranges, domain: FittedDomain, policy
     for key, rows in (("reference", request.reference), ("holdout", request.holdout)):
         if rows is None:
             continue
-        score = domain.estimator.decision_function(_scaled(request.parts, rows))
+        score = domain.decision(_scaled(request.parts, rows))
         report[key] = refusal_shares(_in_range(rows, ranges), score, thresholds["unusual_below"],
                                      thresholds["outside_below"])
     return report
@@ -189,7 +189,7 @@ def _refusal_report(request: ExportRequest, ranges, domain: FittedDomain, policy
 def _check_domain(bundle: Bundle, domain: FittedDomain, golden_inputs: np.ndarray, parts: ModelParts) -> None:
     """The bundle's one-class decision on the golden inputs must be scikit-learn's."""
     ours = bundle.score(golden_inputs).domain_score
-    want = domain.estimator.decision_function(_scaled(parts, golden_inputs))
+    want = domain.decision(_scaled(parts, golden_inputs))
     within = np.abs(ours - want) <= GOLDEN_TOLERANCE * np.maximum(1.0, np.abs(want))
     if not within.all():
         row = int(np.argmin(within))

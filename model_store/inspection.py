@@ -109,7 +109,7 @@ def _domain_lines(domain: dict[str, Any] | None) -> list[str]:
                  else "")
     return [
         f"  domain       one-class SVM (scikit-learn OneClassSVM, Schölkopf et al. 2001) on {domain['fit_rows']} of "
-        f"{domain['reference_rows']} reference rows{subsample}, scaled space; gamma {domain['gamma']:.6g}, "
+        f"{domain['reference_rows']} reference rows{subsample}, {_space(domain)}; gamma {domain['gamma']:.6g}, "
         f"nu {domain['nu']:g}, {domain['support_vectors']} support vectors",
         f"    score        the one-class decision: larger is more typical, below 0 outside the estimated support",
         f"    typical      score >= {thresholds['unusual_below']:.6g}",
@@ -119,6 +119,15 @@ def _domain_lines(domain: dict[str, Any] | None) -> list[str]:
         f"chose to flag only; {_outside_share(calibration)})",
         f"    thresholds   chosen on {calibration['rows']} {_SOURCES[calibration['source']]}",
     ]
+
+
+def _space(domain: dict[str, Any]) -> str:
+    whitening = domain.get("whitening")
+    if whitening is None:
+        return "scaled space"
+    if whitening["shrinkage"] is None:
+        return "scaled space (no variance to whiten)"
+    return f"scaled space whitened (Ledoit-Wolf covariance, shrinkage {whitening['shrinkage']:.3g})"
 
 
 def _outside_share(calibration: dict[str, Any]) -> str:

@@ -31,6 +31,7 @@ __all__ = [
     "ClassifierSpec",
     "DomainSpec",
     "DomainThresholds",
+    "DomainWhitening",
     "FeatureSpec",
     "FileEntry",
     "GoldenVectors",
@@ -210,16 +211,31 @@ class DomainCalibration(_Strict):
     unusual_rate: float = Field(ge=0, le=1)
 
 
+class DomainWhitening(_Strict):
+    """The map ``W`` (f, f) from the scaled space to the domain model's, ``domain_whitening.npy``.
+
+    ``ledoit-wolf``: ``W = C^(-1/2)`` for the Ledoit-Wolf shrunk covariance ``C`` of the rows the
+    model is fitted on (``model_store.domain_fit``); ``shrinkage`` is its weight on the scaled
+    identity, None when those rows had no variance and ``W`` is the identity.
+    """
+
+    method: Literal["ledoit-wolf"] = "ledoit-wolf"
+    shrinkage: float | None = Field(default=None, ge=0, le=1)
+
+
 class DomainSpec(_Strict):
-    """scikit-learn OneClassSVM (Schölkopf et al. 2001) in the classifier's scaled space.
+    """scikit-learn OneClassSVM (Schölkopf et al. 2001) on the classifier's scaled rows, whitened.
 
     Its support vectors and coefficients are ``domain_support_vectors.npy`` (n, f) and
-    ``domain_alpha.npy`` (n,); the score is ``sum_j alpha_j exp(-gamma |z - s_j|^2) + intercept``,
-    scikit-learn's ``decision_function``.
+    ``domain_alpha.npy`` (n,); the score is ``sum_j alpha_j exp(-gamma |w - s_j|^2) + intercept``,
+    scikit-learn's ``decision_function`` of ``w``. ``space`` ``whitened``: ``w = z W`` for the
+    scaled row ``z`` and ``W`` in ``domain_whitening.npy``; ``scaled`` (bundles exported before
+    the whitening): ``w = z``.
     """
 
     method: Literal["one-class-svm"] = "one-class-svm"
-    space: Literal["scaled"] = "scaled"
+    space: Literal["scaled", "whitened"] = "scaled"
+    whitening: DomainWhitening | None = None
     gamma: float = Field(gt=0)
     nu: float = Field(gt=0, le=1)
     intercept: float
@@ -229,6 +245,13 @@ class DomainSpec(_Strict):
     subsample_seed: int | None = None
     thresholds: DomainThresholds
     calibration: DomainCalibration
+
+    @model_validator(mode="after")
+    def _whitening_matches_space(self) -> "DomainSpec":
+        if (self.space == "whitened") != (self.whitening is not None):
+            raise ValueError(f"space {self.space!r} with whitening {self.whitening!r}: a whitened domain model "
+                             "needs its whitening section, a scaled one has none")
+        return self
 
 
 class RuleShares(_Strict):

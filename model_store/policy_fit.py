@@ -26,6 +26,13 @@ extreme values beyond the most extreme one (an extrapolation: a 1 % tail cannot 
 fewer than 100 rows); a fraction of a row interpolates between the two whole counts around it. A
 ``--margin`` given by the user is kept, and the domain gets what its range refusals leave.
 
+Whatever the budget, the outside threshold is at least the score of a row holding ``NO_MASS`` of
+the model's kernel mass (``intercept + NO_MASS x sum(alpha)``): a row whose every kernel has
+vanished gets the intercept, the score that says nothing about it, and is outside. Without the
+floor, real rows scored out of sample at that level (rows far from the fold model's rows) pulled
+the budget's threshold below the intercept itself, where no row can score, and the domain model
+refused nothing at all (breast cancer, tests/benchmarks/domain_detection.py).
+
 Choosing a threshold on the same values it is then measured on is optimistic again, so the
 refusal estimate is nested: for each fold, the policy is chosen on the other folds' out-of-sample
 values and measured on that fold's (no model is refitted); the estimate is the share of all rows
@@ -48,10 +55,11 @@ from sklearn.model_selection import KFold
 from model_store.domain_fit import UNUSUAL_RATE, OneClassFit, cross_fitted_scores
 from model_store.reference_rows import margin_needed
 
-__all__ = ["FOLDS", "RANGE_SHARE", "ChosenPolicy", "choose", "choose_policy", "lower_threshold", "upper_threshold"]
+__all__ = ["FOLDS", "NO_MASS", "RANGE_SHARE", "ChosenPolicy", "choose", "choose_policy", "lower_threshold", "upper_threshold"]
 
 FOLDS = 10
 RANGE_SHARE = 0.5
+NO_MASS = 1e-3
 
 
 @dataclass(frozen=True)
@@ -88,8 +96,9 @@ def choose_policy(
     reference_folds = [held[held < n_reference] for held in folds]
     score = cross_fitted_scores(scaled_reference, reference_folds, domain, seed)
     if scaled_holdout is not None and len(scaled_holdout):
-        score = np.concatenate([score, domain.estimator.decision_function(scaled_holdout)])
-    chosen_margin, unusual, outside = choose(need, score, refuse_rate, margin)
+        score = np.concatenate([score, domain.decision(scaled_holdout)])
+    floor = _no_mass_floor(domain)
+    chosen_margin, unusual, outside = choose(need, score, refuse_rate, margin, floor)
     record = {
         "method": f"ranges leave-one-out, domain {len(folds)}-fold cross-fitting",
         "folds": len(folds),
@@ -98,7 +107,7 @@ def choose_policy(
         "range_share": RANGE_SHARE,
         "margin": float(chosen_margin),
         "margin_source": "chosen" if margin is None else "given",
-        "estimate": _nested_estimate(need, score, folds, refuse_rate, margin),
+        "estimate": _nested_estimate(need, score, folds, refuse_rate, margin, floor),
     }
     return ChosenPolicy(float(chosen_margin), unusual, outside, record)
 
@@ -118,20 +127,27 @@ def leave_one_out_needs(names: list[str], raw: np.ndarray, feature_info: dict[st
     return need
 
 
+def _no_mass_floor(domain: OneClassFit) -> float:
+    """The score below which a row holds less than ``NO_MASS`` of the model's kernel mass."""
+    estimator = domain.estimator
+    return float(estimator.intercept_[0]) + NO_MASS * float(estimator.dual_coef_.sum())
+
+
 def _folds(rows: int, seed: int) -> list[np.ndarray]:
     splitter = KFold(n_splits=min(FOLDS, rows), shuffle=True, random_state=seed % 2**32)
     return [held for _, held in splitter.split(np.zeros((rows, 1)))]
 
 
 def choose(need: np.ndarray, score: np.ndarray, refuse_rate: float,
-           margin: float | None) -> tuple[float, float, float]:
+           margin: float | None, floor: float = -np.inf) -> tuple[float, float, float]:
     """(margin, unusual_below, outside_below) for out-of-sample values of ``n`` rows.
 
     ``need`` (n,) is each row's margin needed, ``score`` (n,) its one-class score. The budget is
     ``refuse_rate x n`` rows: a ``margin`` of None is chosen to refuse ``RANGE_SHARE`` of it (rows
     no margin lets in count first), and the outside threshold refuses what is left of the budget
     among the rows the ranges accept. Budgets are fractions of rows: a threshold for 0.6 rows lies
-    0.6 of the way from the one for 0 rows to the one for 1 row.
+    0.6 of the way from the one for 0 rows to the one for 1 row. The outside threshold is at least
+    ``floor``, whatever the budget.
     """
     rows = len(need)
     budget = refuse_rate * rows
@@ -144,17 +160,17 @@ def choose(need: np.ndarray, score: np.ndarray, refuse_rate: float,
     else:
         domain_budget = budget - int((need > margin).sum())
     eligible = np.sort(score[~(need > margin)])
-    outside = lower_threshold(eligible, max(0.0, domain_budget))
+    outside = max(floor, lower_threshold(eligible, max(0.0, domain_budget)))
     unusual = max(outside, lower_threshold(eligible, UNUSUAL_RATE * rows))
     return float(margin), unusual, outside
 
 
 def _nested_estimate(need: np.ndarray, score: np.ndarray, folds: list[np.ndarray], refuse_rate: float,
-                     margin: float | None) -> dict[str, float]:
+                     margin: float | None, floor: float) -> dict[str, float]:
     """Shares of the rows refused by a policy chosen without them (fold by fold), per rule and in total."""
     refused_range = refused_domain = 0
     for held in folds:
-        fold_margin, _, fold_outside = choose(np.delete(need, held), np.delete(score, held), refuse_rate, margin)
+        fold_margin, _, fold_outside = choose(np.delete(need, held), np.delete(score, held), refuse_rate, margin, floor)
         out_of_range = need[held] > fold_margin
         refused_range += int(out_of_range.sum())
         refused_domain += int((~out_of_range & (score[held] < fold_outside)).sum())

@@ -46,7 +46,7 @@ if TYPE_CHECKING:
 __all__ = ["REFUSE_RATES_BASIS", "compare_domain"]
 
 REFUSE_RATES_BASIS = "refuse rates"
-_DOMAIN_FILES = ("domain_alpha.npy", "domain_support_vectors.npy")
+_DOMAIN_FILES = ("domain_alpha.npy", "domain_support_vectors.npy", "domain_whitening.npy")
 
 
 def compare_domain(
@@ -127,8 +127,10 @@ def _accepted(bundle: "Bundle", recent, convert, *, keep_outside: bool) -> set[i
 def _same_model(active: Manifest, candidate: Manifest) -> bool:
     """The same one-class model, thresholds and refuse rate (the arrays compared by their SHA-256)."""
     old, new = active.domain, candidate.domain
+    # A file both lack (the whitening of a bundle exported before it) is the same; one side's alone is not.
     same_arrays = all(
-        name in active.files and name in candidate.files and active.files[name].sha256 == candidate.files[name].sha256
+        (name in active.files) == (name in candidate.files)
+        and (name not in active.files or active.files[name].sha256 == candidate.files[name].sha256)
         for name in _DOMAIN_FILES
     )
     return same_arrays and (old.gamma, old.intercept, old.thresholds, old.calibration.refuse_rate) == (

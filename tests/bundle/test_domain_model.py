@@ -2,7 +2,9 @@
 
 Reference: scikit-learn's ``OneClassSVM`` (Schölkopf et al., "Estimating the support of a
 high-dimensional distribution", Neural Computation 13(7), 2001), refitted here independently of
-rbfgate on the pipeline scaler's ``transform`` of the reference rows with the gamma and nu the
+rbfgate on the pipeline scaler's ``transform`` of the reference rows, whitened by the inverse square
+root of scikit-learn's ``LedoitWolf`` covariance of those rows (Ledoit and Wolf 2004, taken with
+scipy's ``fractional_matrix_power``, not rbfgate's eigendecomposition), with the gamma and nu the
 manifest records; its ``decision_function`` is the reference score. Datasets shipped with
 scikit-learn: iris (Fisher 1936), wine (Forina et al. 1988), breast cancer (Street, Wolberg and
 Mangasarian 1993) and digits (Alpaydin and Kaynak 1998), all on the UCI repository.
@@ -15,17 +17,21 @@ from pathlib import Path
 import numpy as np
 import pytest
 from conftest import export_model  # tests/conftest.py
+from scipy.linalg import fractional_matrix_power
+from sklearn.covariance import LedoitWolf
 from sklearn.model_selection import train_test_split
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from sklearn.svm import SVC, OneClassSVM
 
 from model_store import load_bundle
+from model_store.domain import DomainModel
 from model_store.refusal import check_records
 
 from .reference import assert_close, dataset, probe_rows
 
 FORMAT_1_BUNDLE = Path(__file__).parent / "data" / "format1-iris"
+SCALED_SPACE_BUNDLE = Path(__file__).parent / "data" / "format2-scaled-iris"
 
 
 def _exported(name: str, tmp_path: Path, *, with_holdout: bool = True):
@@ -43,12 +49,37 @@ def test_domain_score_is_scikit_learns_one_class_decision(name, tmp_path):
     bundle, model, reference, holdout = _exported(name, tmp_path)
     spec = bundle.manifest.domain
     scaler = model[0]
-    reference_model = OneClassSVM(kernel="rbf", gamma=spec.gamma, nu=spec.nu).fit(scaler.transform(reference))
+    scaled = scaler.transform(reference)
+    whitening = np.real(fractional_matrix_power(LedoitWolf().fit(scaled).covariance_, -0.5))
+    reference_model = OneClassSVM(kernel="rbf", gamma=spec.gamma, nu=spec.nu).fit(scaled @ whitening)
     rows = probe_rows(np.vstack([reference, holdout]), seed=4)
     ours = bundle.score(rows).domain_score
     # |ours - scikit-learn| <= 1e-9 x max(1, |scikit-learn|): relative, absolute near 0.
-    assert_close(ours, reference_model.decision_function(scaler.transform(rows)), f"{name} one-class decision")
-    assert spec.support_vectors == len(reference_model.support_vectors_)
+    assert_close(ours, reference_model.decision_function(scaler.transform(rows) @ whitening),
+                 f"{name} one-class decision")
+    assert spec.space == "whitened" and spec.support_vectors == len(reference_model.support_vectors_)
+
+
+def test_the_whitening_turns_the_ledoit_wolf_covariance_into_the_identity(tmp_path):
+    # W C W = I for W = C^(-1/2) (a symmetric positive definite C): the whitened rows have the
+    # shrunk covariance's inverse as metric, every direction of C counting alike.
+    bundle, model, reference, _ = _exported("wine", tmp_path)
+    covariance = LedoitWolf().fit(model[0].transform(reference)).covariance_
+    whitening = np.load(Path(bundle.source) / "domain_whitening.npy", allow_pickle=False)
+    assert_close(whitening @ covariance @ whitening, np.eye(len(covariance)), "W C W", tolerance=1e-9)
+    assert bundle.manifest.domain.whitening.shrinkage == pytest.approx(LedoitWolf().fit(model[0].transform(reference)).shrinkage_)
+
+
+def test_gamma_is_the_median_heuristic_on_the_whitened_reference_rows(tmp_path):
+    # gamma = 1 / (2 sigma^2), sigma^2 the median squared distance between two reference rows
+    # (common practice: Gretton et al. 2012, "A kernel two-sample test", JMLR 13), recomputed here
+    # with numpy over every pair.
+    bundle, model, reference, _ = _exported("iris", tmp_path)
+    scaled = model[0].transform(reference)
+    whitened = scaled @ np.real(fractional_matrix_power(LedoitWolf().fit(scaled).covariance_, -0.5))
+    squared = ((whitened[:, None, :] - whitened[None, :, :]) ** 2).sum(axis=2)
+    pairs = squared[np.triu_indices(len(whitened), k=1)]
+    assert bundle.manifest.domain.gamma == pytest.approx(1.0 / (2.0 * np.median(pairs)), rel=1e-9)
 
 
 def test_single_rows_score_the_same_domain_as_batches(tmp_path):
@@ -66,7 +97,20 @@ def test_verdicts_follow_the_manifest_thresholds(tmp_path):
     expected = np.where(scores.domain_score < thresholds.outside_below, "outside",
                         np.where(scores.domain_score < thresholds.unusual_below, "unusual", "typical"))
     assert scores.domain_verdict.tolist() == expected.tolist()
-    assert scores.domain_verdict[-1] == "outside"
+    assert set(expected[:-1]) >= {"typical", "unusual"}
+
+
+def test_a_row_without_kernel_mass_is_outside_even_with_no_refusal_budget(tmp_path):
+    # --refuse-rate 0 puts the budget's threshold below every real row's score, and a row far from
+    # every reference row scores the intercept (all its kernels underflow to 0): the no-mass floor
+    # (model_store.policy_fit.NO_MASS of the coefficients' sum above the intercept) still refuses it.
+    X, y = dataset("cancer")
+    model = make_pipeline(StandardScaler(), SVC()).fit(X, y)
+    bundle = export_model(model, X, tmp_path / "cancer", y=y, margin=None, refuse_rate=0.0)
+    far = X.mean(axis=0) + 50.0 * X.std(axis=0)
+    scores = bundle.score(far[None, :])
+    assert scores.domain_score[0] == pytest.approx(bundle.manifest.domain.intercept, abs=1e-12)
+    assert scores.domain_verdict.tolist() == ["outside"]
 
 
 def test_thresholds_are_chosen_on_the_reference_and_holdout_rows_together(tmp_path):
@@ -129,3 +173,55 @@ def test_a_format_1_bundle_still_loads_scores_and_has_no_domain():
     scores = bundle.score(np.asarray(bundle.manifest.golden.inputs))
     assert scores.domain_score is None and scores.domain_verdict is None
     assert scores.labels.tolist() == bundle.manifest.golden.labels
+
+
+def test_a_scaled_space_domain_model_of_format_2_still_loads_and_scores_as_exported():
+    # Recomputed with numpy from the bundle's own arrays: sum_j alpha_j exp(-gamma |z - s_j|^2) +
+    # intercept on the scaled row z itself (no whitening), scikit-learn's one-class decision.
+    bundle = load_bundle(SCALED_SPACE_BUNDLE)
+    spec = bundle.manifest.domain
+    assert spec.space == "scaled" and spec.whitening is None
+    bundle.self_test()
+    inputs = np.asarray(bundle.manifest.golden.inputs)
+    scaled = (inputs - np.asarray(bundle.manifest.scaler.center)) / np.asarray(bundle.manifest.scaler.scale)
+    support = np.load(SCALED_SPACE_BUNDLE / "domain_support_vectors.npy", allow_pickle=False)
+    alpha = np.load(SCALED_SPACE_BUNDLE / "domain_alpha.npy", allow_pickle=False)
+    squared = ((scaled[:, None, :] - support[None, :, :]) ** 2).sum(axis=2)
+    expected = np.exp(-spec.gamma * squared) @ alpha + spec.intercept
+    assert_close(bundle.score(inputs).domain_score, expected, "scaled-space one-class decision")
+
+
+def _whitened_model(features: int = 3) -> "DomainModel":
+    rng = np.random.default_rng(5)
+    mixing = rng.normal(size=(features, features))
+    return DomainModel(support_vectors=rng.normal(size=(6, features)), alpha=np.full(6, 0.5), intercept=-1.25,
+                       gamma=0.3, unusual_below=-0.5, outside_below=-1.0, whitening=mixing @ mixing.T + np.eye(features))
+
+
+def test_a_row_whose_whitened_norm_overflows_scores_the_intercept_without_a_warning():
+    # |z W|^2 overflows float64 (1e200 squared): the row is infinitely far from every support
+    # vector, so every kernel is 0 and the decision is the intercept (libsvm's answer for such a row).
+    model = _whitened_model()
+    rows = np.array([[1e200, -1e200, 1e200], [0.1, 0.2, -0.3]])
+    squared = np.einsum("ij,ij->i", rows, rows)
+    with np.errstate(all="raise"):
+        score = model.decision(rows, squared)
+        single = model.decision(rows[:1], squared[:1])
+    assert score[0] == -1.25 and single[0] == -1.25
+    assert model.verdicts(score).tolist()[0] == "outside" and np.isfinite(score[1])
+
+
+def test_one_score_gets_the_verdict_a_batch_gives_it_at_and_around_each_threshold():
+    model = _whitened_model()
+    scores = np.array([-2.0, -1.0, np.nextafter(-1.0, -2.0), -0.75, -0.5, np.nextafter(-0.5, -1.0), 3.0])
+    batch = model.verdicts(scores).tolist()
+    assert batch == ["outside", "unusual", "outside", "unusual", "typical", "unusual", "typical"]
+    assert [model.verdicts(scores[index:index + 1]).tolist()[0] for index in range(len(scores))] == batch
+
+
+def test_whitened_single_rows_score_what_the_batch_scores():
+    model = _whitened_model(5)
+    rows = np.random.default_rng(8).normal(size=(40, 5))
+    squared = np.einsum("ij,ij->i", rows, rows)
+    singles = np.concatenate([model.decision(rows[index:index + 1], squared[index:index + 1]) for index in range(40)])
+    assert_close(singles, model.decision(rows, squared), "one row at a time vs one batch", tolerance=1e-12)

@@ -94,6 +94,11 @@ MANIFEST_CASES = {
     ),
     "file-size-not-a-number": (lambda d: d["files"]["dual_coef.npy"].__setitem__("bytes", "many"),
                                     "field files.dual_coef.npy.bytes"),
+    "whitened-domain-without-whitening": (_set(None, "domain", "whitening"), "a whitened domain model needs"),
+    "scaled-domain-with-whitening": (_set("scaled", "domain", "space"), "a whitened domain model needs"),
+    "whitening-shrinkage-above-1": (_set(1.5, "domain", "whitening", "shrinkage"), "field domain.whitening.shrinkage"),
+    "whitened-domain-without-its-array": (lambda d: d["files"].pop("domain_whitening.npy"),
+                                          "field files: must list exactly the files"),
     "file-list-extra-name": (lambda d: d["files"].__setitem__("extra.npy", d["files"]["dual_coef.npy"]),
                              "field files: must list exactly the files"),
 }
@@ -168,6 +173,13 @@ def test_support_vectors_of_the_wrong_shape_are_refused_naming_the_file(iris_raw
     narrow = np.ascontiguousarray(model.support_vectors_[:, :3])  # 3 columns for 4 features
     copy = _replace_array(bundle, tmp_path, "support_vectors.npy", narrow)
     with pytest.raises(BundleFormatError, match=r"support_vectors.npy: expected shape \(\d+, 4\)"):
+        load_bundle(copy)
+
+
+def test_a_whitening_of_the_wrong_shape_is_refused_naming_the_file(iris_raw, tmp_path):
+    bundle, _, _ = iris_raw
+    copy = _replace_array(bundle, tmp_path, "domain_whitening.npy", np.eye(3))  # 3 x 3 for 4 features
+    with pytest.raises(BundleFormatError, match=r"domain_whitening.npy: expected shape \(4, 4\)"):
         load_bundle(copy)
 
 

@@ -74,14 +74,20 @@ def test_a_given_margin_is_kept_and_the_domain_gets_what_it_leaves():
 def test_cross_fitted_scores_are_on_the_scale_of_the_model_fitted_on_all_rows():
     # libsvm's one-class coefficients sum to nu x rows, so a model fitted on 9/10 of the rows scores
     # about 10 % lower everywhere. At the median row, inside the support, in-sample and
-    # out-of-sample scores agree, so only the scale can differ: rescaled, the medians agree within 4 %.
+    # out-of-sample scores nearly agree (each fold model whitens with the covariance of its own rows,
+    # which puts a held-out row a little further out: measured 4 % lower on digits), so what is left
+    # is the scale: rescaled, the medians agree within 5 %; left on the fold models' scale, they
+    # would be 10 % apart and more.
     X, _ = load_digits(return_X_y=True)
     scaled = StandardScaler().fit_transform(X)
     full = fit_one_class(scaled, seed=0)
     folds = [held for _, held in KFold(10, shuffle=True, random_state=0).split(scaled)]
     cross_fitted = cross_fitted_scores(scaled, folds, full, seed=0)
-    in_sample = full.estimator.decision_function(scaled)
-    assert np.median(cross_fitted) == pytest.approx(np.median(in_sample), rel=0.04)
+    in_sample = full.decision(scaled)
+    assert np.median(cross_fitted) == pytest.approx(np.median(in_sample), rel=0.05)
+    fold_rows = len(scaled) - np.mean([len(held) for held in folds])
+    unscaled = np.median(cross_fitted) * fold_rows / len(scaled)  # coefficient sums are nu x rows
+    assert unscaled != pytest.approx(np.median(in_sample), rel=0.10)
 
 
 def test_the_manifest_records_the_seeded_choice_and_the_same_rows_give_the_same_policy(tmp_path):
@@ -103,3 +109,14 @@ def test_the_bundle_ranges_are_widened_by_the_chosen_margin(tmp_path):
     names = bundle.feature_names
     expected = [allowed for allowed, _ in feature_ranges(names, X, margin, {})]
     assert [list(feature.allowed) for feature in bundle.manifest.features] == expected
+
+
+def test_the_outside_threshold_never_falls_below_the_floor():
+    # 400 rows, a 1 % budget of which the ranges take none (need 0): 4 rows' worth for the domain,
+    # so the budget's threshold lies between the 4th and 5th lowest scores; a floor above them wins.
+    score = np.arange(400, dtype=float)
+    need = np.zeros(400)
+    _, _, by_budget = choose(need, score, 0.01, 0.0)
+    _, unusual, floored = choose(need, score, 0.01, 0.0, floor=10.0)
+    assert by_budget == pytest.approx(3.5)
+    assert floored == 10.0 and unusual >= floored

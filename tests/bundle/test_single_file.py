@@ -24,8 +24,8 @@ from model_store.archive import pack_directory, read_archive
 
 from .reference import probe_rows
 
-ARRAYS = ("domain_alpha.npy", "domain_support_vectors.npy", "dual_coef.npy", "reference_quantiles.npy",
-          "support_vectors.npy")
+ARRAYS = ("domain_alpha.npy", "domain_support_vectors.npy", "domain_whitening.npy", "dual_coef.npy",
+          "reference_quantiles.npy", "support_vectors.npy")
 
 
 @pytest.fixture
