@@ -88,4 +88,8 @@ class DomainModel:
             verdict = TYPICAL if value >= self.unusual_below else UNUSUAL if value >= self.outside_below else OUTSIDE
             return np.array([verdict], dtype=object)
         # side="right": a score equal to a threshold is on its upper side (score >= threshold).
-        return _BY_POSITION[np.searchsorted(self._thresholds, score, side="right")]
+        position = np.searchsorted(self._thresholds, score, side="right")
+        # searchsorted puts NaN above everything; like the comparisons above, call it outside. The
+        # kernel never returns NaN for finite rows; this keeps the two paths one rule regardless.
+        position[np.isnan(score)] = 0
+        return _BY_POSITION[position]

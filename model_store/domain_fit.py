@@ -2,17 +2,26 @@
 
 scikit-learn's ``OneClassSVM`` (Schölkopf et al. 2001, "Estimating the support of a
 high-dimensional distribution") is fitted on the reference rows in the classifier's scaled space
-after a whitening map ``W`` (f, f): ``w = z W`` with ``W = C^(-1/2)`` for ``C`` the Ledoit-Wolf
-shrunk covariance of the scaled rows (Ledoit and Wolf 2004, "A well-conditioned estimator for
-large-dimensional covariance matrices", J. Multivariate Analysis 88; scikit-learn's
-``LedoitWolf``). In the scaled space every feature has unit variance but correlated features stay
-correlated, so an isotropic kernel sees a row that breaks a correlation (one feature moved, two
-swapped, features drawn independently) as hardly further from the reference than one that follows
-it; after whitening the directions the reference rows hardly vary in count as much as the ones
-they vary in most, and such a row is far. The shrinkage keeps ``C`` invertible and ``W`` bounded
-when features are constant or as many as the rows; a reference without variance is not whitened
+after a whitening map ``W`` (f, f): ``w = z W`` with ``W = D^-1 R^(-1/2)``, ``D`` the diagonal of
+the fit rows' standard deviations (1 for a constant feature) and ``R`` the Ledoit-Wolf shrunk covariance of the rows divided
+by them (Ledoit and Wolf 2004, "A well-conditioned estimator for large-dimensional covariance
+matrices", J. Multivariate Analysis 88; scikit-learn's ``LedoitWolf``), so that ``W^T (D R D) W``
+is the identity. Even with unit variances (a StandardScaler) correlated features stay correlated,
+and an isotropic kernel sees a row that breaks a correlation (one feature moved, two swapped,
+features drawn independently) as hardly further from the reference than one that follows it;
+after whitening every direction of ``D R D`` counts alike and such a row is far. The other side of
+it: a row far out along the direction the reference rows vary most (every feature of breast
+cancer 3 standard deviations up) is nearer than it looks in the scaled space, and is left to the
+ranges. The division by ``D`` first keeps the whitening independent of the features' units
+(Ledoit-Wolf shrinks towards a multiple of the identity, which would otherwise drown a feature of
+small variance beside large ones, as with no scaler); after a StandardScaler fitted on the same
+rows ``D`` is the identity. Fold models of cross-fitting whiten with the same ``D`` and their own
+``R``. The
+eigenvalues of ``R`` are floored at ``EIGENVALUE_FLOOR`` x their mean, so that no direction is
+magnified more than about 30 times the average one (shrinkage usually keeps them far above it, but
+it is 0 for a handful of rows); fewer than 3 rows, or rows without variance, are not whitened
 (``W`` = identity). The kernel width is the median heuristic on the whitened rows: ``gamma = 1 /
-(2 sigma^2)`` with ``sigma^2`` the median squared distance between two of them (common practice in
+(2 sigma^2)`` with ``sigma^2`` the median squared distance between two distinct ones (common practice in
 kernel methods; e.g. Gretton et al. 2012, "A kernel two-sample test", JMLR 13). scikit-learn's
 ``gamma='scale'`` rule, ``1 / (f * variance)``, gives a width ``1 / sqrt(2 gamma)`` about half as
 large there: whitening gives held-out rows coordinates along directions of little reference
@@ -46,13 +55,14 @@ from scipy.spatial.distance import pdist
 from sklearn.covariance import LedoitWolf
 from sklearn.svm import OneClassSVM
 
-__all__ = ["DEFAULT_REFUSE_RATE", "MAX_FIT_ROWS", "NU", "UNUSUAL_RATE", "FittedDomain", "OneClassFit",
-           "cross_fitted_scores", "domain_spec", "fit_one_class", "whitening_map"]
+__all__ = ["DEFAULT_REFUSE_RATE", "EIGENVALUE_FLOOR", "MAX_FIT_ROWS", "NU", "UNUSUAL_RATE", "FittedDomain", "OneClassFit",
+           "cross_fitted_scores", "domain_spec", "feature_deviation", "fit_one_class", "whitening_map"]
 
 DEFAULT_REFUSE_RATE = 0.01
 UNUSUAL_RATE = 0.10
 NU = 0.05
 MAX_FIT_ROWS = 2000  # libsvm's one-class fit grows with the square of the rows
+EIGENVALUE_FLOOR = 1e-3  # of the mean eigenvalue: a direction is magnified at most ~30x the average
 
 
 @dataclass(frozen=True)
@@ -60,7 +70,8 @@ class OneClassFit:
     """The bundle's one-class SVM before its thresholds are known: ``estimator`` is fitted on ``rows @ whitening``."""
 
     estimator: OneClassSVM
-    whitening: np.ndarray  # (f, f) symmetric, the map from the scaled space to the model's space
+    whitening: np.ndarray  # (f, f) the map from the scaled space to the model's space: w = z W
+    deviation: np.ndarray  # (f,) the fit rows' feature deviations, D of the whitening
     shrinkage: float | None  # Ledoit-Wolf's shrinkage, None when the rows had no variance to whiten
     gamma: float
     fit_rows: int
@@ -85,34 +96,43 @@ class FittedDomain:
         return self.fit.decision(scaled)
 
 
-def whitening_map(rows: np.ndarray) -> tuple[np.ndarray, float | None]:
-    """(W (f, f), shrinkage): ``W = C^(-1/2)`` for the Ledoit-Wolf covariance ``C`` of ``rows`` (n, f).
+def feature_deviation(rows: np.ndarray) -> np.ndarray:
+    """(f,) each feature's standard deviation over ``rows`` (n, f), 1 where it is constant."""
+    deviation = rows.std(axis=0)
+    deviation[deviation == 0] = 1.0  # a constant feature: nothing to divide, its column stays 0
+    return deviation
 
-    Identity and None when the rows have no variance (a single row, or all rows equal): there is
-    then no covariance to invert.
+
+def whitening_map(rows: np.ndarray, deviation: np.ndarray) -> tuple[np.ndarray, float | None]:
+    """(W (f, f), shrinkage): ``W = D^-1 R^(-1/2)`` for ``rows`` (n, f) and ``D = diag(deviation)``.
+
+    ``deviation`` (f,) is ``feature_deviation`` of the bundle model's fit rows, also for the fold
+    models of cross-fitting: a fold's own deviation of a feature that is almost constant (a pixel
+    dark in all but a few images) can be tiny and would magnify it without bound. Identity and
+    None for fewer than 3 rows or rows without variance: there is then no covariance worth
+    inverting.
     """
     features = rows.shape[1]
-    if len(rows) < 2 or not float(rows.var(axis=0).max()) > 0:
+    if len(rows) < 3 or not float(rows.std(axis=0).max()) > 0:
         return np.eye(features), None
-    estimate = LedoitWolf().fit(rows)
+    estimate = LedoitWolf().fit(rows / deviation)
     eigenvalues, eigenvectors = np.linalg.eigh(estimate.covariance_)
-    # Shrinkage makes every eigenvalue at least shrinkage x mean variance > 0; the floor only guards
-    # against rounding when that product is tiny.
-    eigenvalues = np.maximum(eigenvalues, 1e-12 * float(eigenvalues.max()))
-    whitening = (eigenvectors * eigenvalues ** -0.5) @ eigenvectors.T
-    return 0.5 * (whitening + whitening.T), float(estimate.shrinkage_)
+    eigenvalues = np.maximum(eigenvalues, EIGENVALUE_FLOOR * float(eigenvalues.mean()))
+    inverse_root = (eigenvectors * eigenvalues ** -0.5) @ eigenvectors.T
+    return inverse_root / deviation[:, None], float(estimate.shrinkage_)
 
 
 def fit_one_class(reference: np.ndarray, seed: int) -> OneClassFit:
     """Fit on ``reference`` (n, f) scaled rows (a seeded subsample of ``MAX_FIT_ROWS`` when larger), whitened."""
     fit_rows, subsample_seed = _subsample(reference, seed)
-    whitening, shrinkage = whitening_map(fit_rows)
+    deviation = feature_deviation(fit_rows)
+    whitening, shrinkage = whitening_map(fit_rows, deviation)
     whitened = fit_rows @ whitening
-    distances = pdist(whitened, "sqeuclidean") if len(whitened) > 1 else np.zeros(1)
-    median = float(np.median(distances))
-    gamma = 1.0 / (2.0 * median) if median > 0 else 1.0
+    distances = pdist(whitened, "sqeuclidean") if len(whitened) > 1 else np.zeros(0)
+    distances = distances[distances > 0]  # duplicate rows would pull the median to 0
+    gamma = 1.0 / (2.0 * float(np.median(distances))) if len(distances) else 1.0
     estimator = OneClassSVM(kernel="rbf", gamma=gamma, nu=NU).fit(whitened)
-    return OneClassFit(estimator, whitening, shrinkage, gamma, len(fit_rows), len(reference), subsample_seed)
+    return OneClassFit(estimator, whitening, deviation, shrinkage, gamma, len(fit_rows), len(reference), subsample_seed)
 
 
 def cross_fitted_scores(reference: np.ndarray, folds: list[np.ndarray], full: OneClassFit, seed: int) -> np.ndarray:
@@ -130,7 +150,7 @@ def cross_fitted_scores(reference: np.ndarray, folds: list[np.ndarray], full: On
         if len(held) == 0 or len(others) < 2:
             continue
         rows, _ = _subsample(reference[others], seed + index + 1)
-        whitening, _ = whitening_map(rows)
+        whitening, _ = whitening_map(rows, full.deviation)
         model = OneClassSVM(kernel="rbf", gamma=full.gamma, nu=NU).fit(rows @ whitening)
         fold_scores = model.decision_function(reference[held] @ whitening)
         scores[held] = fold_scores * (full_mass / float(model.dual_coef_.sum()))

@@ -29,9 +29,10 @@ def apply_outside_policy(checked: CheckedBatch, scores: Scores | None, action: s
     """
     if scores is None or scores.domain_verdict is None or action == "flag":
         return np.zeros(len(checked.accepted), dtype=bool)
-    outside = scores.domain_verdict == "outside"
-    if len(outside) == 1 and not outside[0]:  # one record inside the domain: nothing to refuse
-        return outside
+    verdicts = scores.domain_verdict
+    if len(verdicts) == 1 and verdicts[0] != "outside":  # one record inside the domain: nothing to refuse
+        return np.zeros(1, dtype=bool)
+    outside = verdicts == "outside"
     for position in np.flatnonzero(outside).tolist():
         checked.problems[int(checked.accepted[position])] = [
             Problem(None, float(scores.domain_score[position]), "outside_domain", None)

@@ -169,9 +169,9 @@ class KernelExpansion:
             # Either sum is within bound of the exact one: a lead over 4 bounds is a lead in gemm too.
             if np.count_nonzero(exponent >= top - 4.0 * bound) > 1:
                 return None
-        else:
-            top = float(exponent.max())
-        if top > 0:
+            if top > 0:
+                np.minimum(exponent, 0.0, out=exponent)
+        else:  # no largest exponent at hand: one clamp is cheaper than finding it (the same values)
             np.minimum(exponent, 0.0, out=exponent)
         np.exp(exponent, out=exponent)
         sums = (exponent @ self.coef).reshape(1, -1)

@@ -148,6 +148,7 @@ def _shown(spec: DomainSpec) -> str:
 
 
 def _changed(old: DomainSpec, new: DomainSpec) -> str:
-    return (f"outside below {old.thresholds.outside_below:.4g} -> {new.thresholds.outside_below:.4g}, "
+    space = f"space {old.space} -> {new.space}, " if old.space != new.space else ""
+    return (f"{space}outside below {old.thresholds.outside_below:.4g} -> {new.thresholds.outside_below:.4g}, "
             f"unusual below {old.thresholds.unusual_below:.4g} -> {new.thresholds.unusual_below:.4g}, "
             f"refuse rate {100.0 * old.calibration.refuse_rate:g}% -> {100.0 * new.calibration.refuse_rate:g}%")

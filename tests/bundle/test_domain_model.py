@@ -26,6 +26,7 @@ from sklearn.svm import SVC, OneClassSVM
 
 from model_store import load_bundle
 from model_store.domain import DomainModel
+from model_store.domain_fit import EIGENVALUE_FLOOR, feature_deviation, fit_one_class, whitening_map
 from model_store.refusal import check_records
 
 from .reference import assert_close, dataset, probe_rows
@@ -44,13 +45,21 @@ def _exported(name: str, tmp_path: Path, *, with_holdout: bool = True):
     return bundle, model, reference, holdout
 
 
+def _reference_whitening(scaled: np.ndarray) -> np.ndarray:
+    """W = D^-1 R^(-1/2): D the rows' deviations (1 if constant), R scikit-learn's LedoitWolf of rows / D."""
+    deviation = scaled.std(axis=0)
+    deviation[deviation == 0] = 1.0
+    root = np.real(fractional_matrix_power(LedoitWolf().fit(scaled / deviation).covariance_, -0.5))
+    return np.diag(1.0 / deviation) @ root
+
+
 @pytest.mark.parametrize("name", ["iris", "wine", "cancer", "digits"])
 def test_domain_score_is_scikit_learns_one_class_decision(name, tmp_path):
     bundle, model, reference, holdout = _exported(name, tmp_path)
     spec = bundle.manifest.domain
     scaler = model[0]
     scaled = scaler.transform(reference)
-    whitening = np.real(fractional_matrix_power(LedoitWolf().fit(scaled).covariance_, -0.5))
+    whitening = _reference_whitening(scaled)
     reference_model = OneClassSVM(kernel="rbf", gamma=spec.gamma, nu=spec.nu).fit(scaled @ whitening)
     rows = probe_rows(np.vstack([reference, holdout]), seed=4)
     ours = bundle.score(rows).domain_score
@@ -60,26 +69,75 @@ def test_domain_score_is_scikit_learns_one_class_decision(name, tmp_path):
     assert spec.space == "whitened" and spec.support_vectors == len(reference_model.support_vectors_)
 
 
-def test_the_whitening_turns_the_ledoit_wolf_covariance_into_the_identity(tmp_path):
-    # W C W = I for W = C^(-1/2) (a symmetric positive definite C): the whitened rows have the
-    # shrunk covariance's inverse as metric, every direction of C counting alike.
+def test_the_whitening_turns_the_shrunk_covariance_into_the_identity(tmp_path):
+    # W^T (D R D) W = I for W = D^-1 R^(-1/2), R symmetric positive definite: the whitened rows
+    # have the shrunk covariance's inverse as metric, every direction of it counting alike.
     bundle, model, reference, _ = _exported("wine", tmp_path)
-    covariance = LedoitWolf().fit(model[0].transform(reference)).covariance_
+    scaled = model[0].transform(reference)
+    deviation = scaled.std(axis=0)
+    estimate = LedoitWolf().fit(scaled / deviation)
+    covariance = deviation[:, None] * estimate.covariance_ * deviation[None, :]
     whitening = np.load(Path(bundle.source) / "domain_whitening.npy", allow_pickle=False)
-    assert_close(whitening @ covariance @ whitening, np.eye(len(covariance)), "W C W", tolerance=1e-9)
-    assert bundle.manifest.domain.whitening.shrinkage == pytest.approx(LedoitWolf().fit(model[0].transform(reference)).shrinkage_)
+    assert_close(whitening.T @ covariance @ whitening, np.eye(len(covariance)), "W^T C W", tolerance=1e-9)
+    assert bundle.manifest.domain.whitening.shrinkage == pytest.approx(estimate.shrinkage_)
+
+
+def test_the_whitening_does_not_depend_on_the_features_units(tmp_path):
+    # No scaler: features in units 1,000 and 0.001 apart. Dividing by each feature's deviation
+    # before the Ledoit-Wolf fit (whose target is a multiple of the identity) makes a move by 8
+    # standard deviations count the same in either feature; without it the small feature drowned.
+    rng = np.random.default_rng(3)
+    latent = rng.normal(size=(300, 3))
+    X = latent * np.array([1e3, 1.0, 1e-3])
+    y = (latent[:, 0] + latent[:, 2] > 0).astype(int)
+    bundle = export_model(SVC(gamma=1e-6).fit(X, y), X, tmp_path / "units", y=y, margin=None)
+    assert bundle.manifest.scaler.kind == "none"
+    centre = X.mean(axis=0)
+    moved = np.array([centre + 8.0 * X.std(axis=0)[feature] * np.eye(3)[feature] for feature in range(3)])
+    assert bundle.score(moved).domain_verdict.tolist() == ["outside", "outside", "outside"]
+    assert bundle.score(centre[None, :]).domain_verdict.tolist() == ["typical"]
 
 
 def test_gamma_is_the_median_heuristic_on_the_whitened_reference_rows(tmp_path):
-    # gamma = 1 / (2 sigma^2), sigma^2 the median squared distance between two reference rows
-    # (common practice: Gretton et al. 2012, "A kernel two-sample test", JMLR 13), recomputed here
-    # with numpy over every pair.
+    # gamma = 1 / (2 sigma^2), sigma^2 the median squared distance between two distinct reference
+    # rows (common practice: Gretton et al. 2012, "A kernel two-sample test", JMLR 13), recomputed
+    # here with numpy over every pair. Iris repeats some rows: their distance 0 is left out.
     bundle, model, reference, _ = _exported("iris", tmp_path)
     scaled = model[0].transform(reference)
-    whitened = scaled @ np.real(fractional_matrix_power(LedoitWolf().fit(scaled).covariance_, -0.5))
+    whitened = scaled @ _reference_whitening(scaled)
     squared = ((whitened[:, None, :] - whitened[None, :, :]) ** 2).sum(axis=2)
     pairs = squared[np.triu_indices(len(whitened), k=1)]
-    assert bundle.manifest.domain.gamma == pytest.approx(1.0 / (2.0 * np.median(pairs)), rel=1e-9)
+    assert bundle.manifest.domain.gamma == pytest.approx(1.0 / (2.0 * np.median(pairs[pairs > 0])), rel=1e-9)
+
+
+def test_mostly_repeated_rows_still_get_a_kernel_width_from_the_distinct_ones():
+    # 90 copies of one row and 10 others: most pairwise distances are 0, whose median would give
+    # no width at all; the median over distinct pairs does.
+    rng = np.random.default_rng(4)
+    rows = np.vstack([np.repeat(rng.normal(size=(1, 3)), 90, axis=0), rng.normal(size=(10, 3))])
+    fit = fit_one_class(rows, seed=0)
+    whitened = rows @ fit.whitening
+    squared = ((whitened[:, None, :] - whitened[None, :, :]) ** 2).sum(axis=2)[np.triu_indices(100, k=1)]
+    assert fit.gamma == pytest.approx(1.0 / (2.0 * np.median(squared[squared > 1e-20])), rel=1e-9)
+
+
+@pytest.mark.parametrize("rows", [1, 2])
+def test_fewer_than_three_rows_are_not_whitened(rows):
+    # Ledoit-Wolf's shrinkage is 0 for two rows, and a covariance of rank 1 has nothing to invert.
+    points = np.random.default_rng(rows).normal(size=(rows, 4))
+    whitening, shrinkage = whitening_map(points, feature_deviation(points))
+    assert np.array_equal(whitening, np.eye(4)) and shrinkage is None
+
+
+def test_no_direction_is_magnified_more_than_the_eigenvalue_floor_allows():
+    # Three rows in four dimensions: the covariance has rank 2 and Ledoit-Wolf may shrink it little;
+    # W's largest singular value is at most 1 / sqrt(EIGENVALUE_FLOOR x mean eigenvalue of R).
+    points = np.random.default_rng(9).normal(size=(3, 4))
+    deviation = feature_deviation(points)
+    whitening, _ = whitening_map(points, deviation)
+    mean_eigenvalue = float(np.trace(LedoitWolf().fit(points / deviation).covariance_)) / 4
+    largest = np.linalg.norm(whitening * deviation[:, None], 2)
+    assert largest <= (EIGENVALUE_FLOOR * mean_eigenvalue) ** -0.5 * (1 + 1e-9)
 
 
 def test_single_rows_score_the_same_domain_as_batches(tmp_path):
@@ -98,6 +156,15 @@ def test_verdicts_follow_the_manifest_thresholds(tmp_path):
                         np.where(scores.domain_score < thresholds.unusual_below, "unusual", "typical"))
     assert scores.domain_verdict.tolist() == expected.tolist()
     assert set(expected[:-1]) >= {"typical", "unusual"}
+
+
+def test_a_row_far_beyond_every_reference_row_is_outside(tmp_path):
+    # 20 standard deviations up on every breast-cancer feature: along the direction the reference
+    # rows vary most, which whitening shrinks, and still every kernel vanishes. (At 3 and 6
+    # standard deviations such a row is only unusual; the ranges refuse it from about 6 on.)
+    bundle, _, reference, _ = _exported("cancer", tmp_path)
+    far = reference.mean(axis=0) + 20.0 * reference.std(axis=0)
+    assert bundle.score(far[None, :]).domain_verdict.tolist() == ["outside"]
 
 
 def test_a_row_without_kernel_mass_is_outside_even_with_no_refusal_budget(tmp_path):
@@ -201,13 +268,16 @@ def _whitened_model(features: int = 3) -> "DomainModel":
 def test_a_row_whose_whitened_norm_overflows_scores_the_intercept_without_a_warning():
     # |z W|^2 overflows float64 (1e200 squared): the row is infinitely far from every support
     # vector, so every kernel is 0 and the decision is the intercept (libsvm's answer for such a row).
+    # The 1e153 row has a finite |z|^2 (3e306) but |z|^2 |W|_F^2 beyond the guard's 1e300.
     model = _whitened_model()
-    rows = np.array([[1e200, -1e200, 1e200], [0.1, 0.2, -0.3]])
+    rows = np.array([[1e200, -1e200, 1e200], [0.1, 0.2, -0.3], [1e153, 1e153, -1e153]])
     squared = np.einsum("ij,ij->i", rows, rows)
-    with np.errstate(all="raise"):
+    with np.errstate(over="raise", invalid="raise", divide="raise"):  # exp's underflow to 0 is the answer
         score = model.decision(rows, squared)
         single = model.decision(rows[:1], squared[:1])
-    assert score[0] == -1.25 and single[0] == -1.25
+        guarded = model.decision(rows[2:], squared[2:])
+    assert np.isfinite(squared[2])
+    assert score[0] == -1.25 and single[0] == -1.25 and score[2] == -1.25 and guarded[0] == -1.25
     assert model.verdicts(score).tolist()[0] == "outside" and np.isfinite(score[1])
 
 
@@ -225,3 +295,25 @@ def test_whitened_single_rows_score_what_the_batch_scores():
     squared = np.einsum("ij,ij->i", rows, rows)
     singles = np.concatenate([model.decision(rows[index:index + 1], squared[index:index + 1]) for index in range(40)])
     assert_close(singles, model.decision(rows, squared), "one row at a time vs one batch", tolerance=1e-12)
+
+
+def test_a_scaled_space_bundle_is_inspected_described_and_compared_with_a_whitened_one(tmp_path):
+    # The version before and after the whitening, side by side: inspect says which space, the record
+    # schema's annotation too, and the contract comparison lists the change of space.
+    from sklearn.datasets import load_iris
+
+    from model_store.inspection import describe, render_description
+    from model_store.store.contract_domain import compare_domain
+    from service.schema import record_schema
+
+    old = load_bundle(SCALED_SPACE_BUNDLE)
+    X, y = load_iris(return_X_y=True)
+    model = make_pipeline(StandardScaler(), SVC(C=1.0, gamma=0.25)).fit(X[::3], y[::3])
+    new = export_model(model, X[::3], tmp_path / "new", y=y[::3], name="iris", version="2", margin=None,
+                       features=old.feature_names)
+    assert ", scaled space; gamma" in render_description(describe(old))
+    assert "scaled space whitened (Ledoit-Wolf covariance, shrinkage" in render_description(describe(new))
+    assert "whitened" not in record_schema(old.manifest, old.digest)["x-rbfgate-domain"]["model"]
+    assert "whitened" in record_schema(new.manifest, new.digest)["x-rbfgate-domain"]["model"]
+    [change] = compare_domain(old.manifest, new.manifest, [], lambda value: value)
+    assert change.kind == "domain_changed" and "space scaled -> whitened" in change.detail
