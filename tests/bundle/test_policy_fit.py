@@ -71,17 +71,22 @@ def test_a_given_margin_is_kept_and_the_domain_gets_what_it_leaves():
     assert (~out_of_range & (score < outside)).sum() == max(0, 20 - out_of_range.sum())
 
 
+def _cross_fitted(loader):
+    """(scaled rows, the model fitted on all of them, ten folds, the cross-fitted scores) for a dataset."""
+    X, _ = loader(return_X_y=True)
+    scaled = StandardScaler().fit_transform(X)
+    full = fit_one_class(scaled, seed=0)
+    folds = [held for _, held in KFold(10, shuffle=True, random_state=0).split(scaled)]
+    return scaled, full, folds, cross_fitted_scores(scaled, folds, full, seed=0)
+
+
 def test_cross_fitted_scores_are_on_the_scale_of_the_model_fitted_on_all_rows():
     # libsvm's one-class coefficients sum to nu x rows, so a model fitted on 9/10 of the rows scores
     # about 10 % lower everywhere. At the median row, inside the support, in-sample and
     # out-of-sample scores nearly agree (each fold model whitens with the covariance of its own rows,
     # which puts a held-out row a little further out: measured 4 % lower on digits), so what is left
     # is the scale: rescaled, the medians agree within 5 %.
-    X, _ = load_digits(return_X_y=True)
-    scaled = StandardScaler().fit_transform(X)
-    full = fit_one_class(scaled, seed=0)
-    folds = [held for _, held in KFold(10, shuffle=True, random_state=0).split(scaled)]
-    cross_fitted = cross_fitted_scores(scaled, folds, full, seed=0)
+    scaled, full, _, cross_fitted = _cross_fitted(load_digits)
     assert np.median(cross_fitted) == pytest.approx(np.median(full.decision(scaled)), rel=0.05)
 
 
@@ -90,11 +95,7 @@ def test_a_fold_score_is_its_own_model_s_decision_times_the_ratio_of_coefficient
     # gamma and nu on the other folds' rows, whitened by their own Ledoit-Wolf map (the bundle
     # model's feature deviations), its decision on the fold's rows, times sum(alpha_full) /
     # sum(alpha_fold).
-    X, _ = load_iris(return_X_y=True)
-    scaled = StandardScaler().fit_transform(X)
-    full = fit_one_class(scaled, seed=0)
-    folds = [held for _, held in KFold(10, shuffle=True, random_state=0).split(scaled)]
-    cross_fitted = cross_fitted_scores(scaled, folds, full, seed=0)
+    scaled, full, folds, cross_fitted = _cross_fitted(load_iris)
     held = folds[3]
     others = np.setdiff1d(np.arange(len(scaled)), held)
     whitening, _ = whitening_map(scaled[others], full.deviation)
