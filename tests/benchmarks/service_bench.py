@@ -123,13 +123,16 @@ def bench_service(model: CachedModel, workdir: Path, *, workers_list: list[int],
 
 
 def _write_bodies(workdir: Path, bundle, reference: np.ndarray, batch_sizes: list[int]) -> dict[int, Path]:
-    """One body per batch size, from the model's own training rows (inside the allowed ranges)."""
-    low = np.array([feature.allowed[0] for feature in bundle.manifest.features])
-    high = np.array([feature.allowed[1] for feature in bundle.manifest.features])
-    rows = reference[np.all((reference >= low) & (reference <= high), axis=1)]
+    """One body per batch size, from the model's own training rows that it answers for: inside the
+    allowed ranges and not outside the domain (of 1,000 standard-normal rows in 10 features, the
+    domain model puts 2 outside), so that every record is scored and compared with the reference;
+    rows repeat from the first when a body wants more than there are."""
+    scores = bundle.score(reference)
+    answered = scores.in_range if scores.domain_verdict is None else scores.in_range & (scores.domain_verdict != "outside")
+    rows = reference[answered]
     bodies = {}
     for size in batch_sizes:
-        records = [dict(zip(bundle.feature_names, row)) for row in rows[:size].tolist()]
+        records = [dict(zip(bundle.feature_names, row)) for row in rows[np.arange(size) % len(rows)].tolist()]
         path = workdir / f"body-{size}.json"
         path.write_text(json.dumps({"records": records}))
         bodies[size] = path
