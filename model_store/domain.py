@@ -21,6 +21,8 @@ the range margin (``model_store.policy_fit``), turn it into a verdict::
 
 from __future__ import annotations
 
+from contextlib import nullcontext
+
 import numpy as np
 
 from model_store.kernel import KERNEL_BLOCK_BYTES, KernelExpansion
@@ -64,17 +66,15 @@ class DomainModel:
 
     def _whitened(self, scaled: np.ndarray, scaled_sq: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(w (n, f), |w|^2 (n,)) for ``w = scaled W``; a row whose product overflows is infinitely far."""
-        if len(scaled_sq) == 1 and float(scaled_sq[0]) * self._whitening_sq < 1e300:
+        bounded = len(scaled_sq) == 0 or float(scaled_sq.max()) * self._whitening_sq < 1e300
+        if bounded and len(scaled_sq) == 1:
             row = np.dot(scaled[0], self.whitening)  # one record: vector products, no einsum
             return row[None, :], np.array([np.dot(row, row)])
-        if len(scaled_sq) == 0 or float(scaled_sq.max()) * self._whitening_sq < 1e300:
-            whitened = scaled @ self.whitening
-            return whitened, np.einsum("ij,ij->i", whitened, whitened)
-        with np.errstate(over="ignore", invalid="ignore"):
+        with nullcontext() if bounded else np.errstate(over="ignore", invalid="ignore"):
             whitened = scaled @ self.whitening
             whitened_sq = np.einsum("ij,ij->i", whitened, whitened)
-        far = ~np.isfinite(whitened_sq)
-        if far.any():
+        if not bounded:
+            far = ~np.isfinite(whitened_sq)
             # inf - inf in the product gives NaN; the kernel code scores a row of squared norm inf
             # as infinitely far (all kernels 0), which is what an overflowing row is.
             whitened[far] = 0.0

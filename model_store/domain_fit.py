@@ -3,35 +3,34 @@
 scikit-learn's ``OneClassSVM`` (Schölkopf et al. 2001, "Estimating the support of a
 high-dimensional distribution") is fitted on the reference rows in the classifier's scaled space
 after a whitening map ``W`` (f, f): ``w = z W`` with ``W = D^-1 R^(-1/2)``, ``D`` the diagonal of
-the fit rows' standard deviations (1 for a constant feature) and ``R`` the Ledoit-Wolf shrunk covariance of the rows divided
-by them (Ledoit and Wolf 2004, "A well-conditioned estimator for large-dimensional covariance
-matrices", J. Multivariate Analysis 88; scikit-learn's ``LedoitWolf``), so that ``W^T (D R D) W``
-is the identity. Even with unit variances (a StandardScaler) correlated features stay correlated,
-and an isotropic kernel sees a row that breaks a correlation (one feature moved, two swapped,
-features drawn independently) as hardly further from the reference than one that follows it;
-after whitening every direction of ``D R D`` counts alike and such a row is far. The other side of
-it: a row far out along the direction the reference rows vary most (every feature of breast
-cancer 3 standard deviations up) is nearer than it looks in the scaled space, and is left to the
-ranges. The division by ``D`` first keeps the whitening independent of the features' units
-(Ledoit-Wolf shrinks towards a multiple of the identity, which would otherwise drown a feature of
-small variance beside large ones, as with no scaler); after a StandardScaler fitted on the same
-rows ``D`` is the identity. Fold models of cross-fitting whiten with the same ``D`` and their own
-``R``. The
-eigenvalues of ``R`` are floored at ``EIGENVALUE_FLOOR`` x their mean, so that no direction is
-magnified more than about 30 times the average one (shrinkage usually keeps them far above it, but
-it is 0 for a handful of rows); fewer than 3 rows, or rows without variance, are not whitened
-(``W`` = identity). The kernel width is the median heuristic on the whitened rows: ``gamma = 1 /
-(2 sigma^2)`` with ``sigma^2`` the median squared distance between two distinct ones (common practice in
-kernel methods; e.g. Gretton et al. 2012, "A kernel two-sample test", JMLR 13). scikit-learn's
-``gamma='scale'`` rule, ``1 / (f * variance)``, gives a width ``1 / sqrt(2 gamma)`` about half as
-large there: whitening gives held-out rows coordinates along directions of little reference
-variance that the fitted rows do not share, and with it 1.9 % of breast cancer's held-out rows (30
-features) kept no kernel mass and were refused (``model_store.policy_fit.NO_MASS``), at the bound of
-twice the 1 % refuse rate (tests/benchmarks/domain_detection.py, seeds 0-4; the median heuristic:
-0.9 %). ``gamma`` is fixed as a number so that the bundle
-records it. References larger than ``MAX_FIT_ROWS`` are subsampled without replacement by a
-generator seeded from the reference file's SHA-256; the seed and the row count go into the
-manifest.
+the fit rows' standard deviations (1 for a constant feature) and ``R`` the Ledoit-Wolf shrunk
+covariance of the rows divided by them (Ledoit and Wolf 2004, "A well-conditioned estimator for
+large-dimensional covariance matrices", J. Multivariate Analysis 88; scikit-learn's
+``LedoitWolf``), so that ``W^T (D R D) W`` is the identity. Even with unit variances (a
+StandardScaler) correlated features stay correlated, and an isotropic kernel sees a row that breaks
+a correlation (one feature moved, two swapped, features drawn independently) as hardly further from
+the reference than one that follows it; after whitening every direction of ``D R D`` counts alike
+and such a row is far. The other side of it: a row far out along the direction the reference rows
+vary most (every feature of breast cancer 3 standard deviations up) is nearer than it looks in the
+scaled space, and is left to the ranges. The division by ``D`` first keeps the whitening
+independent of the features' units (Ledoit-Wolf shrinks towards a multiple of the identity, which
+would otherwise drown a feature of small variance beside large ones, as with no scaler); after a
+StandardScaler fitted on the same rows ``D`` is the identity. Fold models of cross-fitting whiten
+with the same ``D`` and their own ``R``. The eigenvalues of ``R`` are floored at
+``EIGENVALUE_FLOOR`` x their mean, so that no direction is magnified more than about 30 times the
+average one (shrinkage usually keeps them far above it, but it is 0 for a handful of rows); fewer
+than 3 rows, or rows without variance, are not whitened (``W`` = identity). The kernel width is the
+median heuristic on the whitened rows: ``gamma = 1 / (2 sigma^2)`` with ``sigma^2`` the median
+squared distance between two distinct ones (common practice in kernel methods; e.g. Gretton et al.
+2012, "A kernel two-sample test", JMLR 13). scikit-learn's ``gamma='scale'`` rule, ``1 / (f *
+variance)``, gives a width ``1 / sqrt(2 gamma)`` about half as large there: whitening gives
+held-out rows coordinates along directions of little reference variance that the fitted rows do not
+share, and with it 1.9 % of breast cancer's held-out rows (30 features) kept no kernel mass and
+were refused (``model_store.policy_fit.NO_MASS``), at the bound of twice the 1 % refuse rate
+(tests/benchmarks/domain_detection.py, seeds 0-4; the median heuristic: 0.9 %). ``gamma`` is fixed
+as a number so that the bundle records it. References larger than ``MAX_FIT_ROWS`` are subsampled
+without replacement by a generator seeded from the reference file's SHA-256; the seed and the row
+count go into the manifest.
 
 The thresholds of its verdicts are chosen with the range margin in ``model_store.policy_fit``, on
 scores of rows the scoring model was not fitted on: a holdout row is scored by the bundle's model
@@ -126,13 +125,24 @@ def fit_one_class(reference: np.ndarray, seed: int) -> OneClassFit:
     """Fit on ``reference`` (n, f) scaled rows (a seeded subsample of ``MAX_FIT_ROWS`` when larger), whitened."""
     fit_rows, subsample_seed = _subsample(reference, seed)
     deviation = feature_deviation(fit_rows)
-    whitening, shrinkage = whitening_map(fit_rows, deviation)
-    whitened = fit_rows @ whitening
-    distances = pdist(whitened, "sqeuclidean") if len(whitened) > 1 else np.zeros(0)
-    distances = distances[distances > 0]  # duplicate rows would pull the median to 0
-    gamma = 1.0 / (2.0 * float(np.median(distances))) if len(distances) else 1.0
-    estimator = OneClassSVM(kernel="rbf", gamma=gamma, nu=NU).fit(whitened)
-    return OneClassFit(estimator, whitening, deviation, shrinkage, gamma, len(fit_rows), len(reference), subsample_seed)
+    estimator, whitening, shrinkage = _fit_whitened(fit_rows, deviation, gamma=None)
+    return OneClassFit(estimator, whitening, deviation, shrinkage, float(estimator.gamma), len(fit_rows),
+                       len(reference), subsample_seed)
+
+
+def _fit_whitened(rows: np.ndarray, deviation: np.ndarray, gamma: float | None
+                  ) -> tuple[OneClassSVM, np.ndarray, float | None]:
+    """(estimator, W, shrinkage): a one-class SVM on ``rows`` (n, f) whitened by their own map.
+
+    ``gamma`` None takes the median heuristic over the distinct whitened rows (module docstring).
+    """
+    whitening, shrinkage = whitening_map(rows, deviation)
+    whitened = rows @ whitening
+    if gamma is None:
+        distances = pdist(whitened, "sqeuclidean") if len(whitened) > 1 else np.zeros(0)
+        distances = distances[distances > 0]  # duplicate rows would pull the median to 0
+        gamma = 1.0 / (2.0 * float(np.median(distances))) if len(distances) else 1.0
+    return OneClassSVM(kernel="rbf", gamma=gamma, nu=NU).fit(whitened), whitening, shrinkage
 
 
 def cross_fitted_scores(reference: np.ndarray, folds: list[np.ndarray], full: OneClassFit, seed: int) -> np.ndarray:
@@ -150,8 +160,7 @@ def cross_fitted_scores(reference: np.ndarray, folds: list[np.ndarray], full: On
         if len(held) == 0 or len(others) < 2:
             continue
         rows, _ = _subsample(reference[others], seed + index + 1)
-        whitening, _ = whitening_map(rows, full.deviation)
-        model = OneClassSVM(kernel="rbf", gamma=full.gamma, nu=NU).fit(rows @ whitening)
+        model, whitening, _ = _fit_whitened(rows, full.deviation, full.gamma)
         fold_scores = model.decision_function(reference[held] @ whitening)
         scores[held] = fold_scores * (full_mass / float(model.dual_coef_.sum()))
     return scores

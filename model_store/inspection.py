@@ -126,7 +126,7 @@ def _space(domain: dict[str, Any]) -> str:
     if whitening is None:
         return "scaled space"
     if whitening["shrinkage"] is None:
-        return "scaled space (no variance to whiten)"
+        return "scaled space (too few rows or no variance to whiten)"
     return f"scaled space whitened (Ledoit-Wolf covariance, shrinkage {whitening['shrinkage']:.3g})"
 
 

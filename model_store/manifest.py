@@ -214,9 +214,10 @@ class DomainCalibration(_Strict):
 class DomainWhitening(_Strict):
     """The map ``W`` (f, f) from the scaled space to the domain model's, ``domain_whitening.npy``.
 
-    ``ledoit-wolf``: ``W = C^(-1/2)`` for the Ledoit-Wolf shrunk covariance ``C`` of the rows the
-    model is fitted on (``model_store.domain_fit``); ``shrinkage`` is its weight on the scaled
-    identity, None when those rows had no variance and ``W`` is the identity.
+    ``ledoit-wolf``: ``W = D^-1 R^(-1/2)`` for ``D`` the standard deviations of the rows the model
+    is fitted on and ``R`` the Ledoit-Wolf shrunk covariance of those rows divided by them
+    (``model_store.domain_fit``); ``shrinkage`` is its weight on the scaled identity, None when
+    there were fewer than 3 rows or no variance and ``W`` is the identity.
     """
 
     method: Literal["ledoit-wolf"] = "ledoit-wolf"

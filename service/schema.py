@@ -48,9 +48,8 @@ def _domain_annotation(manifest: Manifest) -> dict[str, Any] | None:
     if domain is None:
         return None
     return {
-        "model": ("one-class SVM over the reference rows in the model's scaled space, whitened by the reference rows' "
-                  "Ledoit-Wolf covariance" if domain.space == "whitened" else
-                  "one-class SVM over the reference rows in the model's scaled space"),
+        "model": "one-class SVM over the reference rows in the model's scaled space"
+                 + (", whitened by the reference rows' Ledoit-Wolf covariance" if domain.space == "whitened" else ""),
         "verdicts": "typical when score >= unusual_below, unusual when outside_below <= score < unusual_below, "
                     "outside (refused as outside_domain unless the model only flags) when score < outside_below",
         "unusual_below": domain.thresholds.unusual_below,
