@@ -130,14 +130,18 @@ def test_fewer_than_three_rows_are_not_whitened(rows):
 
 
 def test_no_direction_is_magnified_more_than_the_eigenvalue_floor_allows():
-    # Three rows in four dimensions: the covariance has rank 2 and Ledoit-Wolf may shrink it little;
-    # W's largest singular value is at most 1 / sqrt(EIGENVALUE_FLOOR x mean eigenvalue of R).
-    points = np.random.default_rng(9).normal(size=(3, 4))
+    # A fourth feature that is the sum of the other three: the sample covariance is singular, and
+    # with 20,000 rows Ledoit-Wolf shrinks so little (about 5.5e-4) that its smallest eigenvalue is
+    # under EIGENVALUE_FLOOR x the mean. W's largest singular value (in units of D) is then held at
+    # 1 / sqrt(EIGENVALUE_FLOOR x mean eigenvalue of R), not 1 / sqrt(the smallest eigenvalue).
+    first = np.random.default_rng(9).normal(size=(20_000, 3))
+    points = np.column_stack([first, first.sum(axis=1)])
     deviation = feature_deviation(points)
+    eigenvalues = np.linalg.eigvalsh(LedoitWolf().fit(points / deviation).covariance_)
+    bound = (EIGENVALUE_FLOOR * float(eigenvalues.mean())) ** -0.5
+    assert eigenvalues.min() ** -0.5 > bound  # the floor has something to do here
     whitening, _ = whitening_map(points, deviation)
-    mean_eigenvalue = float(np.trace(LedoitWolf().fit(points / deviation).covariance_)) / 4
-    largest = np.linalg.norm(whitening * deviation[:, None], 2)
-    assert largest <= (EIGENVALUE_FLOOR * mean_eigenvalue) ** -0.5 * (1 + 1e-9)
+    assert np.linalg.norm(whitening * deviation[:, None], 2) == pytest.approx(bound, rel=1e-9)
 
 
 def test_single_rows_score_the_same_domain_as_batches(tmp_path):
