@@ -64,6 +64,20 @@ class DomainModel:
         sums, _ = self.kernel.evaluate(scaled, scaled_sq, nearest=False)
         return sums[:, 0] + self.intercept
 
+    def decision_row(self, scaled_row: np.ndarray, scaled_sq: float) -> float:
+        """``decision`` of one row ``scaled_row`` (f,) with squared norm ``scaled_sq``, as a float."""
+        if self.whitening is not None:
+            if not scaled_sq * self._whitening_sq < 1e300:  # the product may overflow: the batch way
+                return float(self.decision(scaled_row[None, :], np.array([scaled_sq]))[0])
+            scaled_row = np.dot(scaled_row, self.whitening)  # vector products, as _whitened for one row
+            scaled_sq = float(np.dot(scaled_row, scaled_row))
+        sums, _ = self.kernel.evaluate_row(scaled_row, scaled_sq, nearest=False)
+        return float(sums[0]) + self.intercept
+
+    def verdict(self, score: float) -> str:
+        """The verdict of one score: two float comparisons (NaN is outside, as in ``verdicts``)."""
+        return TYPICAL if score >= self.unusual_below else UNUSUAL if score >= self.outside_below else OUTSIDE
+
     def _whitened(self, scaled: np.ndarray, scaled_sq: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(w (n, f), |w|^2 (n,)) for ``w = scaled W``; a row whose product overflows is infinitely far."""
         bounded = len(scaled_sq) == 0 or float(scaled_sq.max()) * self._whitening_sq < 1e300
@@ -84,9 +98,7 @@ class DomainModel:
     def verdicts(self, score: np.ndarray) -> np.ndarray:
         """(n,) object array of ``typical`` / ``unusual`` / ``outside`` for (n,) scores."""
         if len(score) == 1:  # one record: two float comparisons instead of a search and a gather
-            value = float(score[0])
-            verdict = TYPICAL if value >= self.unusual_below else UNUSUAL if value >= self.outside_below else OUTSIDE
-            return np.array([verdict], dtype=object)
+            return np.array([self.verdict(float(score[0]))], dtype=object)
         # side="right": a score equal to a threshold is on its upper side (score >= threshold).
         position = np.searchsorted(self._thresholds, score, side="right")
         # searchsorted puts NaN above everything; like the comparisons above, call it outside. The

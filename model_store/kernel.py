@@ -17,7 +17,7 @@ more than ``block_bytes / (8 MIN_CHUNK_ROWS)`` support vectors are split into ti
 vectors, so a chunk keeps ``MIN_CHUNK_ROWS`` rows and the support matrix is not re-read for every
 few rows. The nearest support vector is the first one at the largest exponent, across tiles too.
 
-A single row is one matrix-vector product over the augmented support matrix (``_evaluate_row``):
+A single row is one matrix-vector product over the augmented support matrix (``evaluate_row``):
 gemv streams the matrix once, where a gemm of two rows packs it first (measured 2.6 to 6 times
 slower for 10,000 to 50,000 support vectors). gemv sums each exponent in another order than gemm,
 so its largest exponent is trusted as the nearest support vector only when it beats every other by
@@ -106,13 +106,9 @@ class KernelExpansion:
         kernel is 0, so its sums are exactly 0 (libsvm's answer) and its nearest index is 0.
         """
         n_rows = len(scaled)
-        if n_rows == 1 and self._support_augmented_t.shape[1]:
-            one = self._evaluate_row(scaled[0], float(scaled_sq[0]), nearest)
-            if one is not None:
-                return one
-            # A near tie or a far row: scored as two equal rows, the batch arithmetic.
-            sums, index = self.evaluate(scaled[[0, 0]], scaled_sq[[0, 0]], nearest=nearest)
-            return sums[:1], None if index is None else index[:1]
+        if n_rows == 1:
+            sums, index = self.evaluate_row(scaled[0], float(scaled_sq[0]), nearest=nearest)
+            return sums.reshape(1, -1), None if index is None else np.array([index], dtype=np.int64)
         n_features = scaled.shape[1]
         # Python floats overflow to inf without a warning: one check decides whether any row is far,
         # so the common case pays for no np.errstate (a few microseconds per call, felt on one row).
@@ -150,9 +146,22 @@ class KernelExpansion:
         out[far, :-2] = 0.0
         out[far, -2] = -np.inf
 
+    def evaluate_row(self, scaled_row: np.ndarray, scaled_sq: float, *, nearest: bool = True
+                     ) -> tuple[np.ndarray, int | None]:
+        """(sums (m,), nearest index or None) of one row ``scaled_row`` (f,) with squared norm ``scaled_sq``:
+        ``evaluate`` of that row alone, by one gemv when it can decide, else the batch arithmetic."""
+        if self._support_augmented_t.shape[1]:
+            one = self._evaluate_row(scaled_row, scaled_sq, nearest)
+            if one is not None:
+                return one
+        # A near tie, a far row or no support vectors: scored as two equal rows, the batch arithmetic.
+        sums, index = self.evaluate(np.stack((scaled_row, scaled_row)), np.array([scaled_sq, scaled_sq]),
+                                    nearest=nearest)
+        return sums[0], None if index is None else int(index[0])
+
     def _evaluate_row(self, scaled_row: np.ndarray, scaled_sq: float, nearest: bool
-                      ) -> tuple[np.ndarray, np.ndarray | None] | None:
-        """``evaluate`` of one row ``scaled_row`` (f,) by one gemv; None when the batch path must decide.
+                      ) -> tuple[np.ndarray, int | None] | None:
+        """``evaluate_row`` by one gemv; None when the batch path must decide.
 
         None for a far row (its exponent overflows) and, when ``nearest``, for a row whose largest
         exponent is not clear of the others by four rounding bounds (gemm could order them otherwise).
@@ -162,20 +171,24 @@ class KernelExpansion:
             return None
         augmented = np.concatenate((scaled_row, (row_exponent, 1.0)))
         exponent = augmented @ self._support_augmented_t  # -gamma d2, (n_sv,): the matrix read once
+        index = None
         if nearest:
             index = int(exponent.argmax())
             top = float(exponent[index])
             bound = self._dot_error_per_unit * (math.sqrt(scaled_sq) + self._largest_support_norm) ** 2
             # Either sum is within bound of the exact one: a lead over 4 bounds is a lead in gemm too.
-            if np.count_nonzero(exponent >= top - 4.0 * bound) > 1:
+            # The runner-up is the largest exponent once the top one is set aside (a max, not a
+            # compare and count: one pass without a temporary).
+            exponent[index] = -np.inf
+            if float(exponent.max()) >= top - 4.0 * bound:
                 return None
-            if top > 0:
-                np.minimum(exponent, 0.0, out=exponent)
+            # The exact exponent is <= 0, so top <= bound, and every other one is below top - 4
+            # bounds < 0: only the top one can need the clamp (one store, not a pass over n_sv).
+            exponent[index] = min(top, 0.0)
         else:  # no largest exponent at hand: one clamp is cheaper than finding it (the same values)
             np.minimum(exponent, 0.0, out=exponent)
         np.exp(exponent, out=exponent)
-        sums = (exponent @ self.coef).reshape(1, -1)
-        return sums, np.array([index], dtype=np.int64) if nearest else None
+        return exponent @ self.coef, index
 
     def _sum_chunk(self, augmented, block, sums_out) -> None:
         np.matmul(augmented, self._support_augmented_t, out=block)  # -gamma d2
