@@ -10,6 +10,7 @@ this path imports scikit-learn, joblib or pickle-based loading.
 
 from __future__ import annotations
 
+import gc
 import inspect
 import os
 from collections.abc import Callable, Mapping
@@ -53,9 +54,12 @@ def create_app(
     store: Any | None = None,
     environ: Mapping[str, str] | None = None,
     write_log: Callable[[dict[str, Any]], None] | None = None,
+    freeze_startup: bool = False,
 ) -> FastAPI:
     """Build the app. ``store`` defaults to ``Store(settings.store_root)``; ``environ`` (default
-    ``os.environ``) is read only for prometheus-client's multiprocess directory."""
+    ``os.environ``) is read only for prometheus-client's multiprocess directory.
+    ``freeze_startup`` (what ``rbfgate serve`` asks for; off for apps built in tests, where one
+    process builds many) keeps start-up's objects out of later garbage collections."""
     environ = os.environ if environ is None else environ
     write_log = write_log or JsonLines()
     metrics = ServiceMetrics(environ.get(_MULTIPROCESS_ENVIRON_KEY) or None)
@@ -81,6 +85,8 @@ def create_app(
     @asynccontextmanager
     async def lifespan(app: FastAPI):
         await run_in_threadpool(registry.refresh_all)
+        if freeze_startup:
+            _freeze_startup_objects()
         for poller in pollers:
             poller.start()
         try:
@@ -129,7 +135,7 @@ def poll_deadline(poll_seconds: float) -> float:
 def create_app_from_environ() -> FastAPI:
     """The uvicorn factory: settings from the environment ``rbfgate serve`` prepared."""
     _one_blas_thread()
-    return create_app(Settings.from_environ(os.environ))
+    return create_app(Settings.from_environ(os.environ), freeze_startup=True)
 
 
 def _one_blas_thread() -> None:
@@ -142,6 +148,21 @@ def _one_blas_thread() -> None:
     from threadpoolctl import threadpool_limits
 
     threadpool_limits(limits=1, user_api="blas")  # process-wide, kept for the worker's life
+
+
+def _freeze_startup_objects() -> None:
+    """Leave what start-up built (modules, the app, the loaded bundles) out of every later collection.
+
+    The cyclic collector's oldest generation walks every tracked object; in a worker that is
+    ~180,000 objects from start-up, and a 1,000-record request allocates enough containers (one
+    dict per record) to set off such a full collection every few hundred requests. Measured
+    in process (the app under asyncio, 1,500 requests of 1,000 records): two full collections
+    of 110 and 130 ms, each stalling every request in flight, against seven of at most 0.4 ms once
+    start-up's objects are frozen (``gc.freeze``, Python 3.7+; garbage is collected first so
+    that none of it is kept for good). Objects made later are collected as before.
+    """
+    gc.collect()
+    gc.freeze()
 
 
 def _check_every_route_has_a_rule(app: FastAPI) -> None:
