@@ -175,7 +175,8 @@ class KernelExpansion:
         if nearest:
             index = int(exponent.argmax())
             top = float(exponent[index])
-            bound = self._dot_error_per_unit * (math.sqrt(scaled_sq) + self._largest_support_norm) ** 2
+            reach = math.sqrt(scaled_sq) + self._largest_support_norm
+            bound = self._dot_error_per_unit * reach * reach  # a Python float ** 2 raises on overflow; * gives inf
             # Either sum is within bound of the exact one: a lead over 4 bounds is a lead in gemm too.
             # The runner-up is the largest exponent once the top one is set aside (a max, not a
             # compare and count: one pass without a temporary).
