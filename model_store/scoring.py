@@ -211,9 +211,10 @@ class Scorer:
             label_index = int(decision[0] >= 0)  # libsvm votes class 0 when -decision > 0
             calibration_input, pairwise_decision = decision, None
         else:
-            decision = _ovr_decision(pairwise, self.pairs, self.n_classes)
-            label_index = int(np.argmax(decision[0]) if self.break_ties
-                              else _libsvm_vote(pairwise, self.pairs, self.n_classes)[0])
+            pair_values = pairwise[0].tolist()
+            decision = np.array([_ovr_decision_one(pair_values, self.pairs, self.n_classes)])
+            label_index = (int(np.argmax(decision[0])) if self.break_ties
+                           else _libsvm_vote_one(pair_values, self.pairs, self.n_classes))
             calibration_input = pairwise if self.calibrate_pairwise else decision
             pairwise_decision = pairwise
         probabilities = None
@@ -374,6 +375,36 @@ def _libsvm_vote(pairwise: np.ndarray, pairs, n_classes: int) -> np.ndarray:
         votes[:, i] += wins_i
         votes[:, j] += ~wins_i
     return np.argmax(votes, axis=1)  # first maximum: libsvm gives ties to the lowest index
+
+
+# One row's vote and ovr-shaped decision in Python floats: the same IEEE operations, per class in
+# the same pair order, as the numpy loops below, which make a few numpy calls per pair of classes
+# (digits, 10 classes and 45 pairs, one BLAS thread: a single row took 878 us before, 89 us now).
+
+
+def _libsvm_vote_one(pairwise: list[float], pairs, n_classes: int) -> int:
+    """``_libsvm_vote`` of one row, its pairwise decisions as floats."""
+    votes = [0] * n_classes
+    for (i, j), value in zip(pairs, pairwise):
+        if value > 0:
+            votes[i] += 1
+        else:
+            votes[j] += 1
+    return votes.index(max(votes))  # the first maximum, as np.argmax
+
+
+def _ovr_decision_one(pairwise: list[float], pairs, n_classes: int) -> list[float]:
+    """``_ovr_decision`` of one row, its pairwise decisions as floats."""
+    votes = [0.0] * n_classes
+    confidence = [0.0] * n_classes
+    for (i, j), value in zip(pairs, pairwise):
+        confidence[i] += value
+        confidence[j] -= value
+        if value >= 0:
+            votes[i] += 1
+        else:
+            votes[j] += 1
+    return [vote + total / (3 * (abs(total) + 1)) for vote, total in zip(votes, confidence)]
 
 
 def _ovr_decision(pairwise: np.ndarray, pairs, n_classes: int) -> np.ndarray:

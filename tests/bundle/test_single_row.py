@@ -144,3 +144,23 @@ def test_one_row_on_a_support_vector_matches_scikit_learn(cancer_standard):
         decision, _ = sklearn_decisions(model, row)
         assert_close(scores.decision, decision, f"support vector {index}")
         assert scores.nearest_index[0] == index
+
+
+@pytest.mark.parametrize("n_classes", [3, 4, 10])
+def test_one_row_vote_and_ovr_decision_are_the_batch_functions_bit_for_bit(n_classes):
+    # The batch functions follow scikit-learn's _ovr_decision_function and libsvm's vote
+    # (tests/bundle/test_sklearn_matrix.py); the one-row versions must give the same bits,
+    # ties (zeros, equal votes) and NaN included.
+    from model_store.scoring import _libsvm_vote, _libsvm_vote_one, _ovr_decision, _ovr_decision_one
+
+    pairs = [(i, j) for i in range(n_classes) for j in range(i + 1, n_classes)]
+    rng = np.random.default_rng(n_classes)
+    rows = rng.normal(size=(400, len(pairs)))
+    rows[::4] = np.round(rows[::4])  # exact zeros: decisions on the boundary
+    rows[1::4] = np.where(rng.random((100, len(pairs))) < 0.5, 1.0, -1.0)  # many equal votes
+    rows[2, 0] = np.nan
+    decisions = _ovr_decision(rows, pairs, n_classes)
+    votes = _libsvm_vote(rows, pairs, n_classes)
+    for row, decision, vote in zip(rows, decisions, votes):
+        assert np.array_equal(_ovr_decision_one(row.tolist(), pairs, n_classes), decision, equal_nan=True)
+        assert _libsvm_vote_one(row.tolist(), pairs, n_classes) == vote
