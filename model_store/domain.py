@@ -69,7 +69,7 @@ class DomainModel:
         if self.whitening is not None:
             if not scaled_sq * self._whitening_sq < 1e300:  # the product may overflow: the batch way
                 return float(self.decision(scaled_row[None, :], np.array([scaled_sq]))[0])
-            scaled_row = np.dot(scaled_row, self.whitening)  # vector products, as _whitened for one row
+            scaled_row = np.dot(scaled_row, self.whitening)  # vector products: no einsum for one row
             scaled_sq = float(np.dot(scaled_row, scaled_row))
         sums, _ = self.kernel.evaluate_row(scaled_row, scaled_sq, nearest=False)
         return float(sums[0]) + self.intercept
@@ -81,9 +81,6 @@ class DomainModel:
     def _whitened(self, scaled: np.ndarray, scaled_sq: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(w (n, f), |w|^2 (n,)) for ``w = scaled W``; a row whose product overflows is infinitely far."""
         bounded = len(scaled_sq) == 0 or float(scaled_sq.max()) * self._whitening_sq < 1e300
-        if bounded and len(scaled_sq) == 1:
-            row = np.dot(scaled[0], self.whitening)  # one record: vector products, no einsum
-            return row[None, :], np.array([np.dot(row, row)])
         with nullcontext() if bounded else np.errstate(over="ignore", invalid="ignore"):
             whitened = scaled @ self.whitening
             whitened_sq = np.einsum("ij,ij->i", whitened, whitened)
@@ -97,11 +94,9 @@ class DomainModel:
 
     def verdicts(self, score: np.ndarray) -> np.ndarray:
         """(n,) object array of ``typical`` / ``unusual`` / ``outside`` for (n,) scores."""
-        if len(score) == 1:  # one record: two float comparisons instead of a search and a gather
-            return np.array([self.verdict(float(score[0]))], dtype=object)
         # side="right": a score equal to a threshold is on its upper side (score >= threshold).
         position = np.searchsorted(self._thresholds, score, side="right")
-        # searchsorted puts NaN above everything; like the comparisons above, call it outside. The
-        # kernel never returns NaN for finite rows; this keeps the two paths one rule regardless.
+        # searchsorted puts NaN above everything; like the comparisons of ``verdict``, call it
+        # outside. The kernel never returns NaN for finite rows; this keeps the two one rule regardless.
         position[np.isnan(score)] = 0
         return _BY_POSITION[position]

@@ -72,10 +72,13 @@ class OneClassFit:
     whitening: np.ndarray  # (f, f) the map from the scaled space to the model's space: w = z W
     deviation: np.ndarray  # (f,) the fit rows' feature deviations, D of the whitening
     shrinkage: float | None  # Ledoit-Wolf's shrinkage, None when the rows had no variance to whiten
-    gamma: float
     fit_rows: int
     reference_rows: int
     subsample_seed: int | None
+
+    @property
+    def gamma(self) -> float:
+        return float(self.estimator.gamma)
 
     def decision(self, scaled: np.ndarray) -> np.ndarray:
         """(n,) scikit-learn's ``decision_function`` of ``scaled`` (n, f) rows, whitened first."""
@@ -126,8 +129,7 @@ def fit_one_class(reference: np.ndarray, seed: int) -> OneClassFit:
     fit_rows, subsample_seed = _subsample(reference, seed)
     deviation = feature_deviation(fit_rows)
     estimator, whitening, shrinkage = _fit_whitened(fit_rows, deviation, gamma=None)
-    return OneClassFit(estimator, whitening, deviation, shrinkage, float(estimator.gamma), len(fit_rows),
-                       len(reference), subsample_seed)
+    return OneClassFit(estimator, whitening, deviation, shrinkage, len(fit_rows), len(reference), subsample_seed)
 
 
 def _fit_whitened(rows: np.ndarray, deviation: np.ndarray, gamma: float | None

@@ -288,11 +288,6 @@ def _distances(scaled: np.ndarray, support_vectors: np.ndarray, index: np.ndarra
     cost more in page faults than in arithmetic. Each row's operations are the same whatever the chunk.
     """
     n_rows, n_features = scaled.shape
-    if n_rows == 1:  # a single record: the same three operations on one row, without the buffer
-        difference = support_vectors[index]
-        np.subtract(scaled, difference, out=difference)
-        distance = np.einsum("ij,ij->i", difference, difference)
-        return np.sqrt(distance, out=distance)
     distance = np.empty(n_rows)
     chunk = max(1, min(n_rows, MAX_CHUNK_ROWS, KERNEL_BLOCK_BYTES // (8 * max(1, n_features))))  # buffer <= 4 MiB
     buffer = _workspace(chunk, n_features, 0)[0]  # the kernel's block: the kernel is done with it here
