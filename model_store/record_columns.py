@@ -26,7 +26,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["plain_rows"]
+__all__ = ["allowed_rows", "column_values", "plain_rows"]
 
 _MISSING = object()
 _NUMBERS = frozenset({int, float})
@@ -47,12 +47,17 @@ def plain_rows(
         values, plain = _column_by_column(names, records)
     else:
         plain = np.ones(n_rows, dtype=bool)
-    with np.errstate(invalid="ignore"):
-        plain &= (np.isfinite(values) & (values >= low) & (values <= high)).all(axis=1)  # NaN fails too
+    plain &= allowed_rows(values, low, high)
     if extra_members is not None:
         plain &= np.fromiter(map(len, records), dtype=np.int64, count=n_rows) == len(names) + extra_members
     values[~plain] = np.nan
     return values, plain
+
+
+def allowed_rows(values: np.ndarray, low: np.ndarray, high: np.ndarray) -> np.ndarray:
+    """(n,) bool: the rows of ``values`` (n, f) whose every value is finite and inside [low, high] (f,)."""
+    with np.errstate(invalid="ignore"):
+        return (np.isfinite(values) & (values >= low) & (values <= high)).all(axis=1)  # NaN fails too
 
 
 def _all_numbers(names: Sequence[str], records: Sequence[Mapping[str, Any]]) -> np.ndarray | None:
@@ -84,19 +89,24 @@ def _column_by_column(names: Sequence[str], records: Sequence[Mapping[str, Any]]
     values = np.empty((n_rows, len(names)))
     plain = np.ones(n_rows, dtype=bool)
     for column, name in enumerate(names):
-        cells = [record.get(name, _MISSING) for record in records]
-        kinds = set(map(type, cells))
-        if kinds <= _NUMBERS:
-            try:
-                values[:, column] = cells
-                continue
-            except OverflowError:  # an int beyond float64: only those records are not plain
-                pass
-        numbers = np.fromiter(map(_is_number, cells), dtype=bool, count=n_rows)
+        values[:, column], numbers = column_values([record.get(name, _MISSING) for record in records])
         plain &= numbers
-        values[:, column] = np.nan
-        values[numbers, column] = [cell for cell, number in zip(cells, numbers.tolist()) if number]
     return values, plain
+
+
+def column_values(cells: Sequence[Any]) -> tuple[np.ndarray, np.ndarray]:
+    """(values, numbers) of one column of JSON values (n,): each cell that is an int or a float
+    fitting float64, as ``float(cell)`` makes it, and NaN where ``numbers`` is False."""
+    n_rows = len(cells)
+    if set(map(type, cells)) <= _NUMBERS:
+        try:
+            return np.fromiter(cells, dtype=np.float64, count=n_rows), np.ones(n_rows, dtype=bool)
+        except OverflowError:  # an int beyond float64: only those cells are not numbers
+            pass
+    numbers = np.fromiter(map(_is_number, cells), dtype=bool, count=n_rows)
+    values = np.full(n_rows, np.nan)
+    values[numbers] = [cell for cell, number in zip(cells, numbers.tolist()) if number]
+    return values, numbers
 
 
 def _is_number(cell: Any) -> bool:

@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 
 from model_store.manifest import FeatureSpec
-from model_store.record_columns import plain_rows
+from model_store.record_columns import allowed_rows, column_values, plain_rows
 
 __all__ = [
     "ID_CONTROL_RANGES",
@@ -50,6 +50,7 @@ __all__ = [
     "CheckedBatch",
     "Converter",
     "Problem",
+    "check_columns",
     "check_records",
     "from_json",
     "from_text",
@@ -233,29 +234,88 @@ class _RecordRule:
             )
         return row, found, record_id
 
+    def limits(self) -> tuple[np.ndarray, np.ndarray]:
+        """(low, high), each (f,) float64: the allowed range of each feature."""
+        return (np.array([low for low, _ in self.bounds], dtype=np.float64),
+                np.array([high for _, high in self.bounds], dtype=np.float64))
+
 
 def _check_json_records(rule: _RecordRule, records: Sequence[Mapping[str, Any]]) -> CheckedBatch:
     """``check_records`` for JSON values: plain records a column at a time (``model_store.record_columns``),
     every other record, and every record whose id is not plainly valid, through ``_RecordRule.check``."""
     n_records = len(records)
-    low = np.array([low for low, _ in rule.bounds], dtype=np.float64)
-    high = np.array([high for _, high in rule.bounds], dtype=np.float64)
     with_id = np.zeros(n_records, dtype=bool)
     if rule.with_ids:
         with_id = np.fromiter(map(contains, records, repeat(RECORD_ID)), dtype=bool, count=n_records)  # C-level loop
+    low, high = rule.limits()
     values, plain = plain_rows(rule.names, low, high, records, None if rule.allow_extra else with_id.astype(np.int64))
     record_ids: list[Any] | None = None
     if rule.with_ids:
         record_ids = [None] * n_records
         for index in np.flatnonzero(with_id & plain).tolist():
-            record_id = records[index][RECORD_ID]
-            if _plainly_valid_id(record_id):
-                record_ids[index] = record_id
-            else:
-                plain[index] = False
+            _take_id(records[index][RECORD_ID], index, record_ids, plain)
+    return _settle(rule, values, plain, record_ids, records.__getitem__)
+
+
+def check_columns(
+    features: Sequence[FeatureSpec], columns: Mapping[str, Sequence[Any]], ids: Sequence[Any] | None, n_rows: int
+) -> CheckedBatch:
+    """``check_records(features, records, from_json, ids=True)`` for the records that ``columns``
+    (name -> n_rows JSON values) and ``ids`` (n_rows ids or None, or None as a whole) spell: row i
+    is ``{name: columns[name][i], ...}`` plus ``RECORD_ID: ids[i]`` when that id is not None.
+
+    ``ids`` must be None when a feature is named ``RECORD_ID`` (a bundle from before record ids).
+    Plain rows are decided a column at a time; every other row is built as its record and goes
+    through ``_RecordRule.check``, so both forms give the same values, problems and ids.
+    """
+    names = [feature.name for feature in features]
+    with_ids = RECORD_ID not in names
+    known = set(names) | ({RECORD_ID} if with_ids else set())
+    rule = _RecordRule(names, [feature.allowed for feature in features], known, from_json, with_ids, False)
+    low, high = rule.limits()
+    values = np.full((n_rows, len(names)), np.nan)
+    plain = np.ones(n_rows, dtype=bool)
+    if not set(columns) <= set(names):
+        plain[:] = False  # a column that is no feature refuses every row (unknown_feature)
+    for position, name in enumerate(names):
+        if name not in columns:
+            continue  # its NaN refuses every row (missing), below
+        values[:, position], _ = column_values(columns[name])  # NaN where a cell is no number
+    plain &= allowed_rows(values, low, high)
+    record_ids: list[Any] | None = None
+    if with_ids:
+        record_ids = [None] * n_rows
+        if ids is not None:
+            for index in np.flatnonzero(plain).tolist():
+                if ids[index] is not None:
+                    _take_id(ids[index], index, record_ids, plain)
+
+    def record(index: int) -> dict[str, Any]:
+        row = {name: cells[index] for name, cells in columns.items()}
+        if ids is not None and ids[index] is not None:
+            row[RECORD_ID] = ids[index]
+        return row
+
+    return _settle(rule, values, plain, record_ids, record)
+
+
+def _take_id(record_id: Any, index: int, record_ids: list[Any], plain: np.ndarray) -> None:
+    """Keep a plain row's id when it is plainly valid; otherwise the row goes to the per-value rules."""
+    if _plainly_valid_id(record_id):
+        record_ids[index] = record_id
+    else:
+        plain[index] = False
+
+
+def _settle(
+    rule: _RecordRule, values: np.ndarray, plain: np.ndarray, record_ids: list[Any] | None,
+    record: Callable[[int], Mapping[str, Any]],
+) -> CheckedBatch:
+    """Run every row that is not plain through the per-value rules (``record(i)`` is row i as a
+    record); fill ``values`` of the ones they accept and collect the others' problems."""
     problems: dict[int, list[Problem]] = {}
     for index in np.flatnonzero(~plain).tolist():
-        row, found, record_id = rule.check(records[index])
+        row, found, record_id = rule.check(record(index))
         if record_ids is not None:
             record_ids[index] = record_id
         if found:

@@ -28,7 +28,8 @@ from service.body import parse_json, read_body
 from service.context import Services, version_headers
 from service.problems import ServiceProblem, problem_response
 from service.registry import LoadedModel
-from service.scoring import ScoredBatch, read_records, score_records
+from service.score_body import ColumnBody, read_request
+from service.scoring import ScoredBatch, score_records
 
 __all__ = ["active_model", "add_score_routes"]
 
@@ -54,7 +55,7 @@ def add_score_routes(app: FastAPI, services: Services) -> None:
         body = await read_body(request, limit)
         loaded = services.registry.serving(model)
         if loaded is not None and len(body) <= _INLINE_BODY_BYTES:
-            records = read_records(parse_json(body), services.settings.max_records)
+            records = read_request(parse_json(body), services.settings.max_records)
             if _work(records, len(loaded.bundle.feature_names)) <= _INLINE_WORK:
                 return _score(services, request, records, loaded)
             return await gate.run(lambda: _score(services, request, records, loaded))
@@ -78,16 +79,20 @@ def add_score_routes(app: FastAPI, services: Services) -> None:
         return await gate.run(work)
 
 
-def _work(records: list[dict[str, Any]], n_features: int) -> int:
+def _work(records: list[dict[str, Any]] | ColumnBody, n_features: int) -> int:
     """Cells the refusal policy visits: each feature of each record, and each member it holds."""
+    if isinstance(records, ColumnBody):
+        return records.n_rows * (n_features + len(records.columns))
     return len(records) * n_features + sum(map(len, records))
 
 
-def _parsed(services: Services, body: bytes) -> list[dict[str, Any]]:
-    return read_records(parse_json(body), services.settings.max_records)
+def _parsed(services: Services, body: bytes) -> list[dict[str, Any]] | ColumnBody:
+    return read_request(parse_json(body), services.settings.max_records)
 
 
-def _score(services: Services, request: Request, records: list[dict[str, Any]], model: LoadedModel) -> Response:
+def _score(
+    services: Services, request: Request, records: list[dict[str, Any]] | ColumnBody, model: LoadedModel
+) -> Response:
     """Score ``records`` with ``model`` (read once: this request finishes on this version)."""
     note = request_note(request)
     note.update(model=model.name, version=model.version)
@@ -103,13 +108,13 @@ def _score(services: Services, request: Request, records: list[dict[str, Any]], 
             422,
             "records-refused",
             "Every record was refused",
-            f"all {len(records)} record(s) were refused by {model.name} {model.version}; "
+            f"all {batch.rows} record(s) were refused by {model.name} {model.version}; "
             "each result lists the features to fix (see the schema route for the allowed ranges)",
             extra={**head, "results": batch.results, "problems": batch.refusals.detailed},
             headers=headers,
         ))
-    # The head as orjson writes it, its closing brace replaced by the results array.
-    content = orjson.dumps(head)[:-1] + b',"results":' + batch.results_json + b"}"
+    # The head as orjson writes it, its closing brace replaced by the results (or the columns).
+    content = orjson.dumps(head)[:-1] + b"," + batch.answer_json + b"}"
     return Response(content, media_type="application/json", headers=headers)
 
 
@@ -169,6 +174,6 @@ def _account(services: Services, model: LoadedModel, batch: ScoredBatch, note: d
     )
     services.recent.add(model.name, feature_names, batch.checked.values)
     reasons = Counter(reason for _, reason in batch.problem_pairs(set()))
-    note.update(records=len(records), scored=batch.scored, refused=batch.refused, refusals=dict(sorted(reasons.items())))
+    note.update(records=batch.rows, scored=batch.scored, refused=batch.refused, refusals=dict(sorted(reasons.items())))
     if services.settings.log_inputs:
-        note["inputs"] = records
+        note["inputs"] = records.as_document() if isinstance(records, ColumnBody) else records

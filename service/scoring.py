@@ -1,6 +1,8 @@
-"""Scoring a request body: shape checks, the refusal policy, the scorer, the response.
+"""Scoring a request body: the refusal policy, the scorer, the response.
 
-    body      {"records": [{feature: number, ..., "id"?: str | int}, ...]}     1 to max_records records
+    body      {"records": [{feature: number, ..., "id"?: str | int}, ...]}     1 to max_records records,
+              or the same rows as columns (``service.score_body``), answered as columns
+              (``service.column_answer``)
     results   one per record, in request order, each led by the record's "id" when it sent one:
               {"status": "scored", "label", "decision", "probability", "nearest_support", "domain"}
               {"status": "refused", "problem_count", "problems": [{"feature", "value", "reason", "allowed"}] or null}
@@ -34,30 +36,34 @@ import numpy as np
 import orjson
 
 from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION, apply_outside_policy, domain_answer
-from model_store.refusal import CheckedBatch, check_records, from_json
+from model_store.refusal import CheckedBatch, check_columns, check_records, from_json
 from model_store.scoring import Scores
-from service.problems import ServiceProblem
+from service.column_answer import encode_columns
 from service.refusal_answer import RefusalAnswer, summarise_refusals
 from service.registry import LoadedModel
 from service.result_encoding import encode_results
+from service.score_body import ColumnBody, check_column_names
 
-__all__ = ["ScoredBatch", "read_records", "score_records"]
+__all__ = ["ScoredBatch", "score_records"]
 
 
 @dataclass(frozen=True)
 class ScoredBatch:
-    """The outcome of one request: ``results_json`` (the results array, in request order, as JSON
-    text) plus what metrics and logs need."""
+    """The outcome of one request: ``answer_json`` (the answer's members after its head, as JSON
+    text) and ``results_json`` (the record form's results array; None for a column-form answer
+    that scored some row), plus what metrics and logs need."""
 
-    results_json: bytes
+    answer_json: bytes
+    results_json: bytes | None
     checked: CheckedBatch
     scores: Scores | None  # of every row that passed the range rules, outside_domain refusals included
     refusals: RefusalAnswer
     scored: int
+    rows: int
 
     @property
     def results(self) -> list[dict[str, Any]]:
-        """The results as Python values (the pages' try route, the all-refused answer)."""
+        """The results as Python values, in the record form (the pages' try route, the all-refused answer)."""
         return orjson.loads(self.results_json)
 
     @property
@@ -74,43 +80,28 @@ class ScoredBatch:
         ]
 
 
-def read_records(document: Any, max_records: int) -> list[dict[str, Any]]:
-    """The records of a parsed body; 422 for a wrong shape, 413 for too many records."""
-    if not isinstance(document, dict):
-        raise _shape("/", f"the body must be a JSON object {{\"records\": [...]}}, not {_kind(document)}")
-    unknown = sorted(set(document) - {"records"})
-    if unknown:
-        raise _shape(f"/{unknown[0][:64]}", "unknown member; the body holds only \"records\"")
-    if "records" not in document:
-        raise _shape("/records", "missing; send {\"records\": [{feature: number, ...}]}")
-    records = document["records"]
-    if not isinstance(records, list):
-        raise _shape("/records", f"must be a list of records, not {_kind(records)}")
-    if not records:
-        raise _shape("/records", "is empty; send at least one record")
-    if len(records) > max_records:
-        raise ServiceProblem(
-            413,
-            "too-many-records",
-            "Too many records in one request",
-            f"the request holds {len(records)} records; the limit is {max_records}; split it into smaller requests",
-            extra={"limit_records": max_records},
-        )
-    for index, record in enumerate(records):
-        if not isinstance(record, dict):
-            raise _shape(f"/records/{index}", f"each record must be an object {{feature: number}}, not {_kind(record)}")
-    return records
-
-
 def score_records(
-    model: LoadedModel, records: list[dict[str, Any]], outside_action: str = DEFAULT_OUTSIDE_ACTION
+    model: LoadedModel, body: list[dict[str, Any]] | ColumnBody, outside_action: str = DEFAULT_OUTSIDE_ACTION,
+    *, record_answer: bool = False,
 ) -> ScoredBatch:
-    """Check ``records`` against the model's features, score the accepted ones, write the results."""
+    """Check the body's rows against the model's features, score the accepted ones, write the results:
+    in the body's own form, or in the record form whatever the body's form with ``record_answer``."""
     bundle = model.bundle
-    checked = check_records(bundle.manifest.features, records, from_json, ids=True)
+    if isinstance(body, ColumnBody):
+        check_column_names(bundle.feature_names, body)
+        checked = check_columns(bundle.manifest.features, body.columns, body.ids, body.n_rows)
+        n_rows = body.n_rows
+    else:
+        checked = check_records(bundle.manifest.features, body, from_json, ids=True)
+        n_rows = len(body)
     scores = bundle.score(checked.values) if len(checked.accepted) else None
     outside = apply_outside_policy(checked, scores, outside_action)
     refusals = summarise_refusals(checked.problems, checked.ids)
+    scored = len(checked.accepted) - int(outside.sum())
+    if isinstance(body, ColumnBody) and scored and not record_answer:
+        answer = encode_columns(n_rows, scores, bundle.classes, checked.accepted, ~outside, refusals.results,
+                                None if body.ids is None else checked.ids)
+        return ScoredBatch(answer, None, checked, scores, refusals, scored, n_rows)
     refused = dict(refusals.results)
     scored_at = checked.accepted
     if outside.any():
@@ -118,24 +109,5 @@ def score_records(
         for row in np.flatnonzero(outside).tolist():
             index = int(checked.accepted[row])
             refused[index] = {**refused[index], "domain": domain_answer(scores, row)}
-    results = encode_results(len(records), scores, bundle.classes, scored_at, refused, checked.ids)
-    return ScoredBatch(results, checked, scores, refusals, scored=len(checked.accepted) - int(outside.sum()))
-
-
-def _shape(pointer: str, detail: str) -> ServiceProblem:
-    return ServiceProblem(
-        422,
-        "invalid-request",
-        "The request body is not what the route takes",
-        f"{pointer}: {detail}",
-        extra={"problems": [{"pointer": pointer, "detail": detail}]},
-    )
-
-
-def _kind(value: Any) -> str:
-    if value is None:
-        return "null"
-    if isinstance(value, bool):
-        return "a boolean"
-    kinds = {dict: "an object", list: "a list", str: "a string", int: "a number", float: "a number"}
-    return kinds.get(type(value), "a value")
+    results = encode_results(n_rows, scores, bundle.classes, scored_at, refused, checked.ids)
+    return ScoredBatch(b'"results":' + results, results, checked, scores, refusals, scored, n_rows)

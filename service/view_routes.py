@@ -48,7 +48,8 @@ from service.model_routes import history_document
 from service.operation_routes import preview_body, preview_document
 from service.problems import ServiceProblem
 from service.score_routes import active_model
-from service.scoring import read_records, score_records
+from service.score_body import read_request
+from service.scoring import score_records
 
 __all__ = ["PAGE_SECURITY_HEADERS", "add_view_routes"]
 
@@ -165,8 +166,8 @@ def add_view_routes(app: FastAPI, services: Services) -> None:
 
         def run() -> Response:
             loaded = active_model(services, model)
-            records = read_records(parse_json(body), services.settings.max_records)
-            batch = score_records(loaded, records)
+            records = read_request(parse_json(body), services.settings.max_records)
+            batch = score_records(loaded, records, record_answer=True)
             document = {"model": loaded.name, "version": loaded.version, "bundle_sha256": loaded.digest,
                         "results": batch.results}
             content = json.dumps(document, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
