@@ -15,7 +15,10 @@ for one version. Unlike the service-wide document, the types here are this bundl
   calibrated, ``null`` otherwise), the nearest-support diagnostics and the ``domain`` verdict
   (``Domain``, with this version's thresholds as ``x-thresholds``; ``null`` for a bundle without
   a domain model);
-- ``RefusedResult`` and ``RecordsRefused``, the 422 body when every record was refused.
+- ``RefusedResult`` and ``RecordsRefused``, the 422 body when every record was refused;
+- the column form of the body and the answer (``ScoreColumnsRequest``, ``ScoreColumnsResponse``):
+  the same types a column at a time, derived from these in ``model_store.api_columns``. The
+  request body is ``oneOf`` the two forms, and so is the 200 answer (it takes the body's form).
 
 The result's members are built from one description, ``RESULT_FIELDS``: a new member of
 every scored result (say a domain verdict) is one more ``ResultField`` there (and its
@@ -31,6 +34,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
+from model_store.api_columns import column_schemas
 from model_store.manifest import Manifest
 from model_store.refusal import ID_CONTROL_RANGES, MAX_ID_INTEGER, MAX_ID_LENGTH, REASONS, RECORD_ID
 
@@ -158,14 +162,16 @@ def _score_operation(operation_id: str, summary: str) -> dict[str, Any]:
         "404": "no such model or version",
         "408": "the request did not arrive completely in time",
         "409": "the stored bundle failed a check",
-        "413": "the body or the number of records is over the limit",
+        "413": "the body or the number of records (rows) is over the limit",
         "503": "the store is busy, the model cannot be served yet, or the worker's scoring queue is full "
                "(Retry-After)",
     }
     responses: dict[str, Any] = {
-        "200": {"description": "at least one record scored; results in request order",
-                "headers": versioned, "content": {_JSON: {"schema": _ref("ScoreResponse")}}},
-        "422": {"description": "every record was refused (RecordsRefused), or the body has the wrong shape (Problem)",
+        "200": {"description": "at least one record scored; results in request order, in the body's form",
+                "headers": versioned,
+                "content": {_JSON: {"schema": {"oneOf": [_ref("ScoreResponse"), _ref("ScoreColumnsResponse")]}}}},
+        "422": {"description": "every record was refused (RecordsRefused, whichever form the body took), or the "
+                               "body has the wrong shape (Problem)",
                 "headers": request_id,
                 "content": {PROBLEM_MEDIA_TYPE: {"schema": {"anyOf": [_ref("RecordsRefused"), _ref("Problem")]}}}},
     }
@@ -174,7 +180,8 @@ def _score_operation(operation_id: str, summary: str) -> dict[str, Any]:
     return {
         "operationId": operation_id,
         "summary": summary,
-        "requestBody": {"required": True, "content": {_JSON: {"schema": _ref("ScoreRequest")}}},
+        "requestBody": {"required": True, "content": {_JSON: {"schema": {
+            "oneOf": [_ref("ScoreRequest"), _ref("ScoreColumnsRequest")]}}}},
         "responses": dict(sorted(responses.items())),
     }
 
@@ -300,6 +307,7 @@ def _components(manifest: Manifest, digest: str, max_records: int) -> dict[str, 
             f"calibrated probability per class ({manifest.calibration.method}); they sum to 1",
         )
     schemas["ScoreRequest"]["description"] = f"1 to {max_records} records for bundle sha256 {digest}"
+    schemas.update(column_schemas(schemas, manifest, digest, max_records))
     return schemas
 
 

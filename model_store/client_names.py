@@ -17,7 +17,8 @@ What openapi-python-client 0.29 does with them (read from its source, ``strings.
 - properties (features): it snake-cases each name; when two collide it retries with the names'
   case kept and only letters, digits and "_" left. "a-b"/"a_b" and "ID"/"id" survive that retry
   (as ``ab``/``a_b`` and ``ID``/``id``); "a-b"/"a.b" and "x%"/"x" do not, and it then leaves
-  ``Record`` out, with ``ScoreRequest`` and both score operations.
+  ``Record`` out, with ``ScoreRequest`` and both score operations (and the column form's
+  ``Columns``, whose properties are the features too, with ``ScoreColumnsRequest``).
 - enum members (string labels): a label starting with a letter is upper-cased and snake-cased,
   others become ``VALUE_<position>``; two labels with one member name make it stop ("Duplicate
   key") or keep only one of them, so the client rejects the other label.

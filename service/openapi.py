@@ -37,6 +37,8 @@ from service.openapi_models import (
     Readiness,
     RecordsRefusedProblem,
     RollbackRequest,
+    ScoreColumnsRequest,
+    ScoreColumnsResponse,
     ScoreRequest,
     ScoreResponse,
     Switched,
@@ -66,19 +68,22 @@ _BODY_STATUSES = (400, 408, 413, 422)
 
 class _Operation(NamedTuple):
     """operation_id: explicit and stable, so generated clients get short method names (``score``,
-    ``listModels``) that do not change when a handler is renamed; body: the request body model."""
+    ``listModels``) that do not change when a handler is renamed; body: the request body model (a
+    tuple of models: exactly one of them, ``oneOf``)."""
 
     operation_id: str
-    body: type[BaseModel] | None
+    body: type[BaseModel] | tuple[type[BaseModel], ...] | None
     successes: dict[int, tuple[str, str | tuple[str, ...], Any]]  # status -> (description, media type(s), schema)
 
 
 _JSON = "application/json"
 _OBJECT = {"type": "object"}
-_SCORED = {200: ("results in request order", _JSON, ScoreResponse)}
+# The records form or the column form; the answer takes the form of the body.
+_SCORE_BODY = (ScoreRequest, ScoreColumnsRequest)
+_SCORED = {200: ("results in request order, in the body's form", _JSON, (ScoreResponse, ScoreColumnsResponse))}
 _OPERATIONS: dict[tuple[str, str], _Operation] = {
-    ("POST", "/score/{model}"): _Operation("score", ScoreRequest, _SCORED),
-    ("POST", "/score/{model}/versions/{version}"): _Operation("scoreVersion", ScoreRequest, _SCORED),
+    ("POST", "/score/{model}"): _Operation("score", _SCORE_BODY, _SCORED),
+    ("POST", "/score/{model}/versions/{version}"): _Operation("scoreVersion", _SCORE_BODY, _SCORED),
     ("GET", "/models"): _Operation("listModels", None, {200: ("every model and its active version", _JSON, ModelList)}),
     ("GET", "/models/{model}"): _Operation("getModel", None, {200: ("the published versions", _JSON, ModelDetail)}),
     ("GET", "/models/{model}/versions/{version}"): _Operation(
@@ -135,6 +140,8 @@ def build_document(app: FastAPI, max_records: int) -> dict[str, Any]:
     _, definitions = models_json_schema([(model, "serialization") for model in DOCUMENTED_MODELS], ref_template=_REF)
     schemas = definitions["$defs"]
     schemas["ScoreRequest"]["properties"]["records"]["maxItems"] = max_records
+    columns = schemas["ScoreColumnsRequest"]["properties"]
+    columns["columns"]["additionalProperties"]["maxItems"] = columns["ids"]["maxItems"] = max_records
     document["components"] = {
         "schemas": schemas,
         "headers": {"RequestId": {
@@ -164,17 +171,14 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
     request_id = {REQUEST_ID_HEADER: {"$ref": "#/components/headers/RequestId"}}
     responses: dict[str, Any] = {}
     for status, (description, media_type, schema) in described.successes.items():
-        if isinstance(schema, type):
-            schema = {"$ref": _REF.format(model=schema.__name__)}
+        if isinstance(schema, type | tuple):
+            schema = _model_schema(schema)
         media_types = (media_type,) if isinstance(media_type, str) else media_type
         responses[str(status)] = {"description": description, "headers": request_id,
                                   "content": {media: {"schema": schema} for media in media_types}}
     statuses = set() if rule.public else {401, 403, 404, 503}
     if described.body is not None:
-        operation["requestBody"] = {
-            "required": True,
-            "content": {_JSON: {"schema": {"$ref": _REF.format(model=described.body.__name__)}}},
-        }
+        operation["requestBody"] = {"required": True, "content": {_JSON: {"schema": _model_schema(described.body)}}}
         statuses |= set(_BODY_STATUSES)
     if path.endswith(("/activate", "/rollback", "/preview", "/bundle", "/outside-domain", "/history")) or \
             path.startswith("/score/"):
@@ -202,3 +206,10 @@ def _describe(operation: dict[str, Any], method: str, path: str) -> None:
     operation["responses"] = responses
     # RFC 6750 bearer tokens when the service runs with a tokens file; health routes are always open.
     operation["security"] = [] if rule.public else [{"bearer": []}]
+
+
+def _model_schema(models: type[BaseModel] | tuple[type[BaseModel], ...]) -> dict[str, Any]:
+    """A reference to the model's component, or ``oneOf`` the models' (their members tell them apart)."""
+    if isinstance(models, tuple):
+        return {"oneOf": [_model_schema(model) for model in models]}
+    return {"$ref": _REF.format(model=models.__name__)}

@@ -8,7 +8,7 @@ fuzzing tests (tests/reliability) check the running service against them.
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
@@ -20,7 +20,8 @@ __all__ = [
     "ActivateRequest", "Alive", "BreakingChangesProblem", "DOCUMENTED_MODELS", "History", "LiveAt", "ModelDetail",
     "ModelList", "NAME_PATTERN",
     "OutsideDomainChoice", "OutsideDomainRequest", "Preview", "PreviewRequest", "Problem", "Readiness",
-    "RecordsRefusedProblem", "RollbackRequest", "ScoreRequest", "ScoreResponse", "Switched", "VersionDetail",
+    "RecordsRefusedProblem", "RollbackRequest", "ScoreColumnsRequest", "ScoreColumnsResponse", "ScoreRequest",
+    "ScoreResponse", "Switched", "VersionDetail",
 ]
 
 # model_store.naming.check_name; its "no '..'" rule is not expressed (a name with '..' is a 404).
@@ -131,15 +132,83 @@ class ScoreRequest(_Doc):
     records: list[dict[str, Any]] = Field(min_length=1, description="records: feature name -> number")
 
 
-class ScoreResponse(_Doc):
+class _AnswerHead(_Doc):
+    """What both forms of a scoring answer begin with."""
+
     model: str
     version: str
     bundle_sha256: str
     refusals: list[RefusalGroup] | None = Field(
         None, description="present when a record was refused: each distinct problem once, with its records")
     summarised: bool | None = Field(
-        None, description="present with refusals: true when some refused result has problems null")
+        None, description="present with refusals: true when some refused record has problems null")
+
+
+class ScoreResponse(_AnswerHead):
     results: list[ScoredResult | RefusedResult]
+
+
+RowId = str | int | None  # a record id, or null for none
+Cell = list[float | None]  # one value per row; null on a refused row
+
+
+def _no_default(schema: dict[str, Any]) -> None:
+    """An optional member without a ``default`` in the document (its absence is not a null)."""
+    schema.pop("default", None)
+
+
+class ScoreColumnsRequest(_Doc):
+    """The column form: row i is scored as the record {name: columns[name][i]} with the id ids[i]."""
+
+    columns: dict[str, Annotated[list[Any], Field(min_length=1)]] = Field(
+        description="feature name -> one value per row; every array (and ids) has the same length")
+    ids: list[RowId] = Field(
+        None, min_length=1, json_schema_extra=_no_default,
+        description="one per row: its record id (as in a record's id), or null for none")
+
+
+class ColumnNearestSupport(_Doc):
+    """NearestSupport's members, one entry per row; null on a refused row."""
+
+    distance: list[Annotated[float, Field(ge=0)] | None]
+    similarity: list[Annotated[float, Field(ge=0, le=1)] | None]
+    label: list[Label | None]
+    index: list[Annotated[int, Field(ge=0)] | None]
+    percentile: list[Annotated[float, Field(ge=0, le=100)] | None]
+
+
+class ColumnDomain(_Doc):
+    """Each row's domain verdict and score; null on a refused row, except one refused as outside_domain."""
+
+    verdict: list[Literal["typical", "unusual", "outside"] | None]
+    score: Cell
+
+
+class ColumnResults(_Doc):
+    """One array per member of a scored result, one entry per row; null on a refused row."""
+
+    status: list[Literal["scored", "refused"]]
+    label: list[Label | None]
+    decision: Cell | dict[str, Cell] = Field(description="an array for a binary model, class -> array otherwise")
+    probability: dict[str, Cell] | None = Field(description="class -> array; null when uncalibrated")
+    nearest_support: ColumnNearestSupport
+    domain: ColumnDomain | None = Field(description="null for a bundle without a domain model (format 1)")
+
+
+class RefusedRow(_Doc):
+    row: int = Field(ge=0, description="index of the row in the request")
+    problem_count: int = Field(ge=1)
+    problems: list[RecordProblem] | None = Field(
+        min_length=1, description="every problem of the row, or null when the answer summarises it (see refusals)")
+
+
+class ScoreColumnsResponse(_AnswerHead):
+    """The answer to the column form: the same values as the record form, a column at a time."""
+
+    ids: list[RowId] | None = Field(
+        None, description="present when the request sent ids: each row's id, null when it had none or it was refused")
+    columns: ColumnResults
+    refused: list[RefusedRow] = Field(description="the refused rows in row order; empty when none")
 
 
 class ServedVersion(_Doc):
@@ -367,7 +436,8 @@ class Readiness(_Doc):
 
 
 DOCUMENTED_MODELS = [
-    Problem, RecordsRefusedProblem, BreakingChangesProblem, ScoreRequest, ScoreResponse, ModelList, ModelDetail, VersionDetail, History, LiveAt,
+    Problem, RecordsRefusedProblem, BreakingChangesProblem, ScoreRequest, ScoreResponse, ScoreColumnsRequest,
+    ScoreColumnsResponse, ModelList, ModelDetail, VersionDetail, History, LiveAt,
     ActivateRequest, RollbackRequest, PreviewRequest, Switched, Preview, Alive, Readiness, OutsideDomainRequest,
     OutsideDomainChoice,
 ]

@@ -1,13 +1,15 @@
 """Where a real ``rbfgate serve`` worker spends its time under load: py-spy samples while wrk sends one body.
 
     python3 -m tests.benchmarks.profile_service --records 1000 --seconds 8    # needs py-spy and wrk
+    python3 -m tests.benchmarks.profile_service --records 1000 --form columns  # the column-form body
 
 Publishes the service benchmark's model (989 support vectors x 10 features, fitted once and cached
 under tests/benchmarks/results/cache like the benchmark's), starts ``rbfgate serve`` with one
 worker, warms it with wrk, then samples the worker with py-spy (``--nonblocking``, so the worker is
 never paused; 200 Hz; every thread) while wrk keeps 8 connections busy with a body of ``--records``
-records. It prints each thread's share of the samples, rbfgate's own frames with the largest
-inclusive shares, and the frames that are most often the innermost Python frame, and keeps py-spy's raw output (``--out``) for a flame
+records (``--form``: the record form ``{"records": [...]}`` or, for more than one record, the
+column form ``{"columns": {...}}`` of the same rows). It prints each thread's share of the
+samples, rbfgate's own frames with the largest inclusive shares, and the frames that are most often the innermost Python frame, and keeps py-spy's raw output (``--out``) for a flame
 graph. Native work shows up under the Python frame that called it: "Runner.run" as the innermost
 frame is the event loop's own C work (socket reads and writes, HTTP parsing). py-spy is a sampling
 profiler from outside the process (https://github.com/benfred/py-spy); install it with
@@ -80,9 +82,13 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--records", type=int, default=1000, help="records per request (default 1000)")
     parser.add_argument("--seconds", type=float, default=8.0, help="seconds of sampling (default 8)")
+    parser.add_argument("--form", choices=("records", "columns"), default="records",
+                        help="the body's form (default records; columns needs --records above 1)")
     parser.add_argument("--out", type=Path, default=Path("profile-raw.txt"), help="py-spy's raw output")
     parser.add_argument("--top", type=int, default=30, help="frames to print in each list")
     args = parser.parse_args(argv)
+    if args.form == "columns" and args.records < 2:
+        parser.error("--form columns: the column-form body is written for --records above 1")
 
     from model_store.bundle import load_bundle
 
@@ -96,7 +102,7 @@ def main(argv: list[str] | None = None) -> int:
     with tempfile.TemporaryDirectory(prefix="rbfgate-profile-") as folder:
         workdir = Path(folder)
         name, _ = publish_model(workdir / "store", model.bundle_path)
-        body = _write_bodies(workdir, load_bundle(model.bundle_path), model.reference, [args.records])[args.records]
+        body = _write_bodies(workdir, load_bundle(model.bundle_path), model.reference, [args.records])[args.records][args.form]
         wrk = ensure_wrk(print)
         with rbfgate_server(workdir / "store", 1, workdir) as server:
             url = f"{server.url}/score/{name}"
@@ -107,7 +113,7 @@ def main(argv: list[str] | None = None) -> int:
             load = run_wrk(wrk, url, body, connections=8, seconds=args.seconds + 1.0)
             if sampler.wait(timeout=args.seconds + 60) != 0:
                 raise SystemExit(f"py-spy failed (exit {sampler.returncode}); it needs ptrace rights on the worker")
-    print(f"{load.requests} requests of {args.records} record(s), {load.requests / load.seconds:.0f} req/s while sampled")
+    print(f"{load.requests} requests of {args.records} record(s) ({args.form} form), {load.requests / load.seconds:.0f} req/s while sampled")
     print(summarise(args.out.read_text().splitlines()).render(args.top))
     print(f"raw samples: {args.out}")
     return 0

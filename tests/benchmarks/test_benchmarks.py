@@ -71,3 +71,13 @@ def test_domain_detection_table_covers_every_dataset_shift_and_policy():
     print(table)
     assert all(f"| {dataset} | {shift} |" in table for dataset in DATASETS for shift in SHIFTS)
     assert all(policy in table.splitlines()[0] for policy in POLICIES)
+
+
+def test_rbfgate_is_measured_in_both_body_forms_beside_the_record_form_comparisons(quick_results):
+    # The column form only for batches above one record, and for rbfgate only (check_agreement passed
+    # for it before any load, or the run would have raised).
+    _, results = quick_results
+    for records in Plan.quick().service_batches:
+        forms = {(row["server"], row["form"]) for row in results["service"] if row["records"] == records}
+        expected = {("rbfgate", "records"), ("reference", "records"), ("bare", "records")}
+        assert forms == (expected | {("rbfgate", "columns")} if records > 1 else expected), (records, forms)

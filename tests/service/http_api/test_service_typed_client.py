@@ -4,8 +4,10 @@ real ``rbfgate serve``.
 openapi-python-client (a generator of the OpenAPI community, not ours) turns
 ``GET /models/pallet-checks/openapi.json`` into a typed package; the test imports it and reads a
 typed label (an enum of the classes), a typed probability (one attribute per class) and a typed
-refusal (the 422 body as ``RecordsRefused``). Values are checked against the bundle's own scorer,
-which the bundle tests check against scikit-learn. Documents are validated with
+refusal (the 422 body as ``RecordsRefused``), in the records form and in the column form (the
+request body and the 200 answer are ``oneOf`` the two forms; /work/notes/columns_spec.md). Values
+are checked against the bundle's own scorer, which the bundle tests check against scikit-learn.
+Documents are validated with
 openapi-spec-validator against the OpenAPI 3.1 specification's schema.
 """
 
@@ -116,6 +118,34 @@ def test_generated_client_tells_scored_and_refused_results_apart_in_one_answer(g
     response, models = _score(generated, server, _PALLET, {**_PALLET, "peak_shock_g": 99.0})
     assert response.status_code == 200
     assert [type(result) for result in response.parsed.results] == [models.ScoredResult, models.RefusedResult]
+
+
+def test_generated_client_scores_a_column_body_and_reads_the_column_answer(generated, server, demo):
+    client_module = importlib.import_module(f"{_PACKAGE}.client")
+    score = importlib.import_module(f"{_PACKAGE}.api.default.score")
+    models = importlib.import_module(f"{_PACKAGE}.models")
+    too_warm = {**_PALLET, "core_temp_c": 19.0}
+    columns = models.Columns(**{name: [_PALLET[name], too_warm[name]] for name in _PALLET})
+    body = models.ScoreColumnsRequest(columns=columns, ids=["P-0001", None])
+    with client_module.Client(base_url=server.url) as client:
+        response = score.sync_detailed(client=client, body=body)
+    assert response.status_code == 200, response.content
+    answer = response.parsed
+    assert isinstance(answer, models.ScoreColumnsResponse)
+    bundle, scores = _expected(demo, _PALLET)
+    results = answer.columns
+    assert [status.value for status in results.status] == ["scored", "refused"]
+    assert isinstance(results.label[0], models.Label) and results.label[0].value == scores.labels[0]
+    assert results.label[1] is None
+    assert isinstance(results.probability, models.ColumnProbability)
+    for column, label in enumerate(bundle.classes):
+        scored, refused = getattr(results.probability, label)
+        assert scored == pytest.approx(scores.probabilities[0, column], abs=1e-12) and refused is None
+    assert results.nearest_support.percentile[0] == pytest.approx(scores.nearest_percentile[0], abs=1e-12)
+    assert answer.ids == ["P-0001", None]
+    [refused_row] = answer.refused
+    [problem] = refused_row.problems
+    assert (refused_row.row, problem.reason, problem.feature) == (1, models.RefusalReason.OUT_OF_RANGE, "core_temp_c")
 
 
 def test_inspect_writes_the_document_the_service_serves(demo, document):
