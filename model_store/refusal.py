@@ -37,6 +37,7 @@ from typing import Any
 
 import numpy as np
 
+from model_store.errors import InputError
 from model_store.manifest import FeatureSpec
 from model_store.record_columns import allowed_rows, column_values, plain_rows
 
@@ -264,12 +265,16 @@ def check_columns(
     (name -> n_rows JSON values) and ``ids`` (n_rows ids or None, or None as a whole) spell: row i
     is ``{name: columns[name][i], ...}`` plus ``RECORD_ID: ids[i]`` when that id is not None.
 
-    ``ids`` must be None when a feature is named ``RECORD_ID`` (a bundle from before record ids).
+    ``ids`` must be None when a feature is named ``RECORD_ID`` (a bundle from before record ids):
+    ``InputError`` otherwise.
     Plain rows are decided a column at a time; every other row is built as its record and goes
     through ``_RecordRule.check``, so both forms give the same values, problems and ids.
     """
     names = [feature.name for feature in features]
     with_ids = RECORD_ID not in names
+    if ids is not None and not with_ids:
+        raise InputError(f"this bundle has a feature named {RECORD_ID!r} (it predates record ids), so its rows take "
+                         f"no ids; pass ids=None and the feature as the column {RECORD_ID!r}")
     known = set(names) | ({RECORD_ID} if with_ids else set())
     rule = _RecordRule(names, [feature.allowed for feature in features], known, from_json, with_ids, False)
     low, high = rule.limits()

@@ -28,6 +28,7 @@ from service.problems import ServiceProblem
 __all__ = ["ColumnBody", "check_column_names", "read_request"]
 
 _MEMBERS = frozenset({"columns", "ids"})
+_ECHOED_NAME = 64  # characters of a member name put in a pointer or a detail
 
 
 @dataclass(frozen=True)
@@ -49,11 +50,13 @@ def read_request(document: Any, max_records: int) -> list[dict[str, Any]] | Colu
     if not isinstance(document, dict):
         raise _shape("/", f"the body must be a JSON object {{\"records\": [...]}} or {{\"columns\": {{...}}}}, "
                           f"not {_kind(document)}")
-    if "columns" in document:
+    if "records" in document and "columns" in document:
+        raise _shape("/columns", "a body holds either \"records\" or \"columns\", not both")
+    if "columns" in document or "ids" in document:
         return _read_columns(document, max_records)
     unknown = sorted(set(document) - {"records"})
     if unknown:
-        raise _shape(f"/{_escaped(unknown[0][:64])}", "unknown member; the body holds \"records\" (or \"columns\")")
+        raise _member_shape("", unknown[0], "unknown member; the body holds \"records\" (or \"columns\")")
     if "records" not in document:
         raise _shape("/records", "missing; send {\"records\": [{feature: number, ...}]} "
                                  "or {\"columns\": {feature: [numbers]}}")
@@ -71,11 +74,13 @@ def read_request(document: Any, max_records: int) -> list[dict[str, Any]] | Colu
 
 
 def _read_columns(document: Mapping[str, Any], max_records: int) -> ColumnBody:
+    if "records" in document:
+        raise _shape("/ids", "\"ids\" belong to the column form; in the record form each record carries its \"id\"")
     unknown = sorted(set(document) - _MEMBERS)
     if unknown:
-        detail = ("a body holds either \"records\" or \"columns\", not both" if unknown[0] == "records"
-                  else "unknown member; a column-form body holds only \"columns\" and \"ids\"")
-        raise _shape(f"/{_escaped(unknown[0][:64])}", detail)
+        raise _member_shape("", unknown[0], "unknown member; a column-form body holds only \"columns\" and \"ids\"")
+    if "columns" not in document:
+        raise _shape("/columns", "missing; \"ids\" go beside {\"columns\": {feature: [values]}}")
     columns = document["columns"]
     if not isinstance(columns, dict):
         raise _shape("/columns", f"must be an object {{feature: [values]}}, not {_kind(columns)}")
@@ -84,18 +89,17 @@ def _read_columns(document: Mapping[str, Any], max_records: int) -> ColumnBody:
         raise _shape("/ids", f"must be a list with one id (or null) per row, not {_kind(ids)}")
     for name, cells in columns.items():
         if not isinstance(cells, list):
-            raise _shape(f"/columns/{_escaped(name[:64])}",
-                                f"must be a list with one value per row, not {_kind(cells)}")
+            raise _member_shape("/columns", name, f"must be a list with one value per row, not {_kind(cells)}")
     if ids is None and not columns:
         raise _shape("/columns", "holds no column; send {feature: [values]} with one list per feature")
     first, n_rows = ("ids", len(ids)) if ids is not None else next((name, len(cells)) for name, cells in columns.items())
     for name, cells in columns.items():
         if len(cells) != n_rows:
-            raise _shape(
-                f"/columns/{_escaped(name[:64])}",
+            raise _member_shape(
+                "/columns", name,
                 f"holds {len(cells)} values, but {_named(first)} holds {n_rows}; every column has one value per row")
     if n_rows == 0:
-        raise _shape("/columns", "the columns are empty; send at least one row")
+        raise _shape("/ids" if ids is not None else "/columns", "is empty; send at least one row")
     if n_rows > max_records:
         raise _too_many(n_rows, max_records, "rows")
     return ColumnBody(columns, ids, n_rows)
@@ -106,7 +110,7 @@ def check_column_names(feature_names: list[str], body: ColumnBody) -> None:
     takes_ids = RECORD_ID not in feature_names
     if takes_ids and RECORD_ID in body.columns:
         raise _shape(f"/columns/{RECORD_ID}",
-                            f"{RECORD_ID!r} is not a feature of this model; send record ids as \"ids\", beside \"columns\"")
+                     f"{RECORD_ID!r} is not a feature of this model; send record ids as \"ids\", beside \"columns\"")
     if not takes_ids and body.ids is not None:
         raise _shape(
             "/ids", f"this model's bundle has a feature named {RECORD_ID!r} (it predates record ids), so its rows "
@@ -142,8 +146,17 @@ def _kind(value: Any) -> str:
     return kinds.get(type(value), "a value")
 
 
+def _member_shape(parent: str, name: str, detail: str) -> ServiceProblem:
+    """A shape problem of the member ``name`` of the object at ``parent``. A name longer than
+    ``_ECHOED_NAME`` is not echoed whole: the pointer is then the object's, and the detail names the
+    member by its first characters."""
+    if len(name) <= _ECHOED_NAME:
+        return _shape(f"{parent}/{_escaped(name)}", detail)
+    return _shape(parent, f"the member {name[:_ECHOED_NAME]!r}... ({len(name)} characters): {detail}")
+
+
 def _named(member: str) -> str:
-    return "\"ids\"" if member == "ids" else f"the column {member[:64]!r}"
+    return "\"ids\"" if member == "ids" else f"the column {member[:_ECHOED_NAME]!r}"
 
 
 def _escaped(name: str) -> str:

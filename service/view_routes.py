@@ -161,13 +161,14 @@ def add_view_routes(app: FastAPI, services: Services) -> None:
 
     @app.post("/view/data/models/{model}/try", include_in_schema=False)
     async def try_records(model: str, request: Request) -> Response:
-        """Score records with the active version, as POST /score/{model} does, answering 200 with the results."""
+        """Score records with the active version, as POST /score/{model} does (the operators' outside-domain
+        choice included), answering 200 with the results in the record form."""
         body = await read_body(request, limit)
 
         def run() -> Response:
             loaded = active_model(services, model)
             records = read_request(parse_json(body), services.settings.max_records)
-            batch = score_records(loaded, records, record_answer=True)
+            batch = score_records(loaded, records, services.registry.outside_action(loaded.name), record_answer=True)
             document = {"model": loaded.name, "version": loaded.version, "bundle_sha256": loaded.digest,
                         "results": batch.results}
             content = json.dumps(document, ensure_ascii=False, allow_nan=False, separators=(",", ":"))

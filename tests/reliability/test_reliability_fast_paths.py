@@ -20,7 +20,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from model_store.manifest import FeatureSpec
-from model_store.refusal import check_records, from_json
+from model_store.errors import InputError
+from model_store.refusal import check_columns, check_records, from_json
 from service.body import MAX_DEPTH, parse_json
 from service.problems import ServiceProblem
 
@@ -194,3 +195,33 @@ def test_numbers_from_two_to_the_63_up_send_a_body_to_the_strict_parser(document
         assert _fast_document(data) is _UNDECIDED
     elif not colon_in_a_string:  # a ":" inside a string is the other reason to ask the strict parser
         assert _fast_document(data) is not _UNDECIDED
+
+
+
+@st.composite
+def _columns(draw):
+    """A column-form body's columns and ids, as service.score_body hands them to check_columns."""
+    n_rows = draw(st.integers(1, 14))
+    cell = st.one_of(_values, st.floats(-1.0, 1.0))
+    columns = {name: draw(st.lists(cell, min_size=n_rows, max_size=n_rows))
+               for name in draw(st.lists(st.sampled_from(["a", "b", "c", "d", "\u00e9"]), unique=True, max_size=5))}
+    ids = draw(st.none() | st.lists(st.none() | _ids, min_size=n_rows, max_size=n_rows))
+    return columns, ids, n_rows
+
+
+@_SETTINGS
+@given(body=_columns())
+def test_the_column_form_gives_the_record_forms_answer_row_for_row(body):
+    columns, ids, n_rows = body
+    records = [{**{name: cells[row] for name, cells in columns.items()},
+                **({"id": ids[row]} if ids is not None and ids[row] is not None else {})} for row in range(n_rows)]
+    _same(check_columns(_FEATURES, columns, ids, n_rows), check_records(_FEATURES, records, _slow, ids=True))
+
+
+def test_check_columns_refuses_ids_for_a_bundle_whose_feature_is_named_id():
+    # Such a bundle predates record ids: "id" is its feature, so ids could only overwrite it.
+    features = [FeatureSpec.model_construct(name="id", allowed=(0.0, 10.0)),
+                FeatureSpec.model_construct(name="b", allowed=(0.0, 10.0))]
+    with pytest.raises(InputError, match="ids=None"):
+        check_columns(features, {"id": [1, 2], "b": [1, None]}, ["x", "y"], 2)
+    assert check_columns(features, {"id": [1, 2], "b": [1, None]}, None, 2).accepted.tolist() == [0]

@@ -250,8 +250,13 @@ def test_ids_of_another_length_than_the_columns_are_a_shape_error(shared_client,
     ({"columns": {}}, "/columns"),
     ({"columns": {"sepal_length_cm": []}}, "/columns"),
     ({"columns": {"sepal_length_cm": [5.1]}, "ids": "a"}, "/ids"),
-    ({"columns": {"sepal_length_cm": [5.1]}, "records": []}, "/records"),
+    ({"columns": {"sepal_length_cm": [5.1]}, "records": []}, "/columns"),  # either form, not both
+    ({"columns": {"sepal_length_cm": [5.1]}, "abc": 1, "records": []}, "/columns"),  # the clash is named first
     ({"columns": {"sepal_length_cm": [5.1]}, "limit": 3}, "/limit"),
+    ({"ids": [1]}, "/columns"),  # ids without columns: columns is what is missing
+    ({"ids": [1], "records": [{}]}, "/ids"),  # ids belong to the column form
+    ({"columns": {}, "ids": []}, "/ids"),  # the rows are counted by ids, so ids is what is empty
+    ({"columns": {"x" * 100: 5.1}}, "/columns"),  # a long name is not echoed whole: the object's pointer
 ])
 def test_a_column_body_of_the_wrong_shape_is_refused_with_a_pointer_to_the_fault(shared_client, body, pointer):
     _pointer_problem(shared_client.post("/score/iris", json=body), pointer)
@@ -294,3 +299,19 @@ def test_a_row_refused_as_outside_the_domain_keeps_its_verdict_and_score_in_the_
     assert document["columns"]["domain"]["score"][1] == as_records["results"][1]["domain"]["score"]
     assert document["refused"][0]["problems"][0]["reason"] == "outside_domain"
     assert document["columns"]["label"] == [as_records["results"][0]["label"], None]
+
+
+def test_a_long_column_name_is_named_by_its_first_characters_and_its_length(shared_client):
+    detail = _pointer_problem(shared_client.post("/score/iris", json={"columns": {"x" * 100: 5.1}}), "/columns")
+    assert f"'{'x' * 64}'... (100 characters)" in detail and "must be a list" in detail
+
+
+def test_the_pages_try_route_follows_the_operators_outside_domain_choice(make_client, store):
+    from .cases import GOOD_RECORD
+    from .test_service_domain import ODD_RECORD
+
+    store.set_outside_action("iris", "flag", reason="pilot with human review", actor="ops-cli")
+    client = make_client(store.root)
+    tried = client.post("/view/data/models/iris/try", json={"records": [GOOD_RECORD, ODD_RECORD]}).json()["results"]
+    scored = client.post("/score/iris", json={"records": [GOOD_RECORD, ODD_RECORD]}).json()["results"]
+    assert [result["status"] for result in tried] == [result["status"] for result in scored] == ["scored", "scored"]
