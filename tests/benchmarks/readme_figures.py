@@ -284,8 +284,21 @@ def _service_limits(service: list[dict], results: dict) -> list[str]:
             lines.append(
                 f"- Service, {BATCH_RECORDS:,} records: {columns['cpu_ms_per_request']:.1f} ms of server CPU per request "
                 f"in the column form{record_form}{scoring}; the rest is receiving and parsing the body (orjson), "
-                "the column-wise range rules, writing the answer, the metrics and the HTTP exchange.")
+                "the column-wise range rules, writing the answer, the metrics and the HTTP exchange."
+                + _cores_sentence(columns, service_row(service, "reference", 1, BATCH_RECORDS)))
     return lines
+
+
+def _cores_sentence(ours: dict, theirs: dict | None) -> str:
+    """Why records/s moves less than server CPU: the cores each server kept busy (CPU seconds per second)."""
+    if theirs is None:
+        return ""
+    busy = {name: row["cpu_ms_per_request"] * row["requests_per_second"] / 1e3 for name, row in
+            (("ours", ours), ("theirs", theirs))}
+    return (f" Records/s follow the cores each keeps busy: the reference {busy['theirs']:.1f} (a sync endpoint on FastAPI's "
+            f"thread pool, numpy with its default BLAS threads), one rbfgate worker {busy['ours']:.1f} (one BLAS thread, its Python on one "
+            f"core at a time), so x{theirs['cpu_ms_per_request'] / ours['cpu_ms_per_request']:.1f} less CPU per request "
+            f"gives x{ours['requests_per_second'] / theirs['requests_per_second']:.1f} the records/s.")
 
 
 def readme_block(readme_text: str) -> str:

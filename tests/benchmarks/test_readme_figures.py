@@ -31,10 +31,19 @@ def test_the_block_counts_the_scorer_targets_from_the_results():
     assert f"x10: met for {met} of {len(large)} models" in figures_block(results)
 
 
-def _with_column_form(results: dict, cpu_ms: float, speed_up: float) -> dict:
-    """``results`` plus rbfgate column-form rows beside its record-form ones (batches above one record),
-    at ``cpu_ms`` server CPU per request and ``speed_up`` times the record form's requests/s."""
+def _record_form_only(results: dict) -> dict:
+    """The committed results as a run from before the column form wrote them: no column rows, no "form"."""
     results = copy.deepcopy(results)
+    results["service"] = [{key: value for key, value in row.items() if key != "form"}
+                          for row in results["service"] if row.get("form", "records") == "records"]
+    return results
+
+
+def _with_column_form(results: dict, cpu_ms: float, speed_up: float) -> dict:
+    """``results`` (record form only) plus rbfgate column-form rows beside its record-form ones
+    (batches above one record), at ``cpu_ms`` server CPU per request and ``speed_up`` times the
+    record form's requests/s."""
+    results = _record_form_only(results)
     for row in list(results["service"]):
         if row["server"] == "rbfgate" and row["records"] > 1:
             results["service"].append({**row, "form": "columns", "cpu_ms_per_request": cpu_ms,
@@ -47,24 +56,25 @@ def _batch_targets(results: dict) -> list[tuple[str, str, bool]]:
 
 
 def test_results_without_a_form_are_read_as_the_record_form():
-    results = json.loads(RESULTS.read_text(encoding="utf-8"))
+    results = _record_form_only(json.loads(RESULTS.read_text(encoding="utf-8")))
     rows = results["service"]
-    assert all("form" not in row for row in rows)  # the committed file predates the column form
     assert service_row(rows, "rbfgate", 1, BATCH_RECORDS) is not None
     assert service_row(rows, "rbfgate", 1, BATCH_RECORDS, "columns") is None
     big = service_row(rows, "rbfgate", 1, BATCH_RECORDS)
     assert _batch_targets(results) == [  # judged on the record form, as when the file was written
         (f"service, 1 worker, {BATCH_RECORDS:,}-record requests: server CPU <= {BATCH_CPU_MS:g} ms per request",
          f"{big['cpu_ms_per_request']:.2f} ms", big["cpu_ms_per_request"] <= BATCH_CPU_MS),
-        (f"... >= {BATCH_RATIO:g}x the reference's records/s", _batch_targets(results)[1][1], False)]
+        (f"... >= {BATCH_RATIO:g}x the reference's records/s", _batch_targets(results)[1][1],
+         big["requests_per_second"] >= BATCH_RATIO * service_row(rows, "reference", 1, BATCH_RECORDS)["requests_per_second"])]
 
 
 def test_the_thousand_record_targets_are_judged_on_the_column_form():
-    results = json.loads(RESULTS.read_text(encoding="utf-8"))
+    results = _record_form_only(json.loads(RESULTS.read_text(encoding="utf-8")))
     big = service_row(results["service"], "rbfgate", 1, BATCH_RECORDS)
     reference = service_row(results["service"], "reference", 1, BATCH_RECORDS)
-    assert big["cpu_ms_per_request"] > BATCH_CPU_MS  # the record form misses both in the committed run
-    assert big["requests_per_second"] < BATCH_RATIO * reference["requests_per_second"]
+    # The record form misses both targets, so only the column form can meet them.
+    big["cpu_ms_per_request"] = BATCH_CPU_MS + 3.0
+    big["requests_per_second"] = 0.5 * BATCH_RATIO * reference["requests_per_second"]
     speed_up = 1.01 * BATCH_RATIO * reference["requests_per_second"] / big["requests_per_second"]
 
     met = _batch_targets(_with_column_form(results, BATCH_CPU_MS - 0.5, speed_up))
@@ -86,7 +96,7 @@ def test_the_readme_block_changes_with_every_column_form_figure():
     # So the README check above also fails when a column-form figure in the README is stale.
     results = json.loads(RESULTS.read_text(encoding="utf-8"))
     block = figures_block(_with_column_form(results, 7.0, 2.5))
-    assert block != figures_block(results)
+    assert block != figures_block(_record_form_only(results))
     assert block != figures_block(_with_column_form(results, 7.25, 2.5))   # server CPU
     assert block != figures_block(_with_column_form(results, 7.0, 2.6))    # requests/s
     faster_p99 = _with_column_form(results, 7.0, 2.5)
