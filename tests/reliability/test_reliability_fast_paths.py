@@ -225,3 +225,27 @@ def test_check_columns_refuses_ids_for_a_bundle_whose_feature_is_named_id():
     with pytest.raises(InputError, match="ids=None"):
         check_columns(features, {"id": [1, 2], "b": [1, None]}, ["x", "y"], 2)
     assert check_columns(features, {"id": [1, 2], "b": [1, None]}, None, 2).accepted.tolist() == [0]
+
+
+def test_text_that_spells_a_huge_number_does_not_count_as_a_number_in_the_walk():
+    # The leaf level is converted with numpy, which reads "1e30" as a number; only real JSON
+    # numbers may send a body to the strict parser (the definition in the test above).
+    from service.body import _UNDECIDED, _fast_document
+
+    data = json.dumps({"records": [{"a": 0.5, "b": "1e30", "c": None}, {"a": 1.5, "b": True, "c": "inf"}]}).encode()
+    assert _fast_document(data) is not _UNDECIDED
+
+
+@pytest.mark.parametrize("huge", ["18446744073709551616", "-9223372036854775809", "1e19", "1" + "0" * 400])
+def test_a_huge_number_among_nulls_still_sends_the_body_to_the_strict_parser(huge):
+    # null becomes NaN in the leaf level's conversion; it must not hide the huge number beside it.
+    from service.body import _UNDECIDED, _fast_document
+
+    data = ('{"records": [{"a": null, "b": true, "c": ' + huge + '}, {"a": null, "b": 1, "c": 2}]}').encode()
+    assert _fast_document(data) is _UNDECIDED
+
+
+def test_a_huge_number_beside_text_that_is_no_number_sends_the_body_to_the_strict_parser():
+    from service.body import _UNDECIDED, _fast_document
+
+    assert _fast_document(b'{"records": [{"a": "x", "c": 18446744073709551616}]}') is _UNDECIDED
