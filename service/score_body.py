@@ -12,8 +12,8 @@ feature without a column is ``missing`` on every row, a column that is no featur
 feature instead of 1,000 objects that repeat every name: a smaller body, parsed and converted a
 column at a time (tests/benchmarks measures both forms in one run).
 
-Shape errors are 422 with a JSON Pointer (RFC 6901) to the member at fault; too many records or
-rows is 413.
+Shape errors are 422 with a JSON Pointer (RFC 6901) to the member at fault (``""`` for the body
+itself); too many records or rows is 413.
 """
 
 from __future__ import annotations
@@ -48,7 +48,7 @@ def read_request(document: Any, max_records: int) -> list[dict[str, Any]] | Colu
     """The records (record form) or the columns (column form) of a parsed body; 422 for a wrong
     shape, 413 for too many records."""
     if not isinstance(document, dict):
-        raise _shape("/", f"the body must be a JSON object {{\"records\": [...]}} or {{\"columns\": {{...}}}}, "
+        raise _shape("", f"the body must be a JSON object {{\"records\": [...]}} or {{\"columns\": {{...}}}}, "
                           f"not {_kind(document)}")
     if "records" in document and "columns" in document:
         raise _shape("/columns", "a body holds either \"records\" or \"columns\", not both")
@@ -128,11 +128,12 @@ def _too_many(count: int, limit: int, what: str) -> ServiceProblem:
 
 
 def _shape(pointer: str, detail: str) -> ServiceProblem:
+    """422 for the member at ``pointer`` (RFC 6901; "" is the whole body, section 5)."""
     return ServiceProblem(
         422,
         "invalid-request",
         "The request body is not what the route takes",
-        f"{pointer}: {detail}",
+        f"{pointer or 'the body'}: {detail}",
         extra={"problems": [{"pointer": pointer, "detail": detail}]},
     )
 

@@ -46,8 +46,8 @@ MALFORMED_BODIES = [
 
 # (document, RFC 6901 pointer the 422 names)
 WRONG_SHAPES = [
-    ([], "/"),
-    ("records", "/"),
+    ([], ""),  # RFC 6901 section 5: "" is the whole document
+    ("records", ""),
     ({}, "/records"),
     ({"records": {"sepal_length_cm": 5.1}}, "/records"),
     ({"records": "all of them"}, "/records"),

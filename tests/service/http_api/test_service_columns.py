@@ -315,3 +315,10 @@ def test_the_pages_try_route_follows_the_operators_outside_domain_choice(make_cl
     tried = client.post("/view/data/models/iris/try", json={"records": [GOOD_RECORD, ODD_RECORD]}).json()["results"]
     scored = client.post("/score/iris", json={"records": [GOOD_RECORD, ODD_RECORD]}).json()["results"]
     assert [result["status"] for result in tried] == [result["status"] for result in scored] == ["scored", "scored"]
+
+
+@pytest.mark.parametrize("body", [[1, 2], "records", 5])
+def test_a_body_that_is_no_object_points_at_the_whole_document(shared_client, body):
+    # RFC 6901 section 5: "" is the whole document ("/" would be its member named "").
+    detail = _pointer_problem(shared_client.post("/score/iris", json=body), "")
+    assert detail.startswith("must be a JSON object") or "must be a JSON object" in detail
