@@ -180,13 +180,8 @@ def check_records(
     ``ids=True`` reads each record's ``RECORD_ID`` (not a feature, unless the bundle has a
     feature of that name) into ``CheckedBatch.ids`` and refuses records whose id is invalid.
     """
-    names = [feature.name for feature in features]
-    known = set(names)
-    bounds = [feature.allowed for feature in features]
-    with_ids = ids and RECORD_ID not in known
-    if with_ids:
-        known = known | {RECORD_ID}
-    rule = _RecordRule(names, bounds, known, convert, with_ids, allow_extra)
+    rule = _RecordRule.of(features, convert, ids=ids, allow_extra=allow_extra)
+    names, with_ids = rule.names, rule.with_ids
     if convert is from_json and len(records) >= _COLUMN_MIN_RECORDS:
         return _check_json_records(rule, records)
     rows: list[list[float]] = []
@@ -216,6 +211,14 @@ class _RecordRule:
     convert: Converter
     with_ids: bool
     allow_extra: bool
+
+    @classmethod
+    def of(cls, features: Sequence[FeatureSpec], convert: Converter, *, ids: bool, allow_extra: bool) -> _RecordRule:
+        """The rules for ``features``; with ``ids``, ``RECORD_ID`` is the record's id unless a feature has that name."""
+        names = [feature.name for feature in features]
+        with_ids = ids and RECORD_ID not in names
+        known = set(names) | {RECORD_ID} if with_ids else set(names)
+        return cls(names, [feature.allowed for feature in features], known, convert, with_ids, allow_extra)
 
     def check(self, record: Mapping[str, Any]) -> tuple[list[float], list[Problem], Any]:
         row, found = _check_one(record, self.names, self.bounds, self.convert)
@@ -270,13 +273,11 @@ def check_columns(
     Plain rows are decided a column at a time; every other row is built as its record and goes
     through ``_RecordRule.check``, so both forms give the same values, problems and ids.
     """
-    names = [feature.name for feature in features]
-    with_ids = RECORD_ID not in names
+    rule = _RecordRule.of(features, from_json, ids=True, allow_extra=False)
+    names, with_ids = rule.names, rule.with_ids
     if ids is not None and not with_ids:
         raise InputError(f"this bundle has a feature named {RECORD_ID!r} (it predates record ids), so its rows take "
                          f"no ids; pass ids=None and the feature as the column {RECORD_ID!r}")
-    known = set(names) | ({RECORD_ID} if with_ids else set())
-    rule = _RecordRule(names, [feature.allowed for feature in features], known, from_json, with_ids, False)
     low, high = rule.limits()
     values = np.full((n_rows, len(names)), np.nan)
     plain = np.ones(n_rows, dtype=bool)
