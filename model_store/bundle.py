@@ -81,7 +81,7 @@ class Bundle:
 
     @property
     def feature_names(self) -> list[str]:
-        return self.manifest.feature_names
+        return list(self._feature_names)  # a copy: the manifest's names, listed once at load
 
     @property
     def classes(self) -> list:

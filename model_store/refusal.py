@@ -120,7 +120,8 @@ class Problem:
 class CheckedBatch:
     """Records split into scoreable rows and refusals.
 
-    values:    (n_accepted, f) float64 raw units in manifest feature order
+    values:    (n_accepted, f) float64 raw units in manifest feature order, every value finite
+               and within its feature's allowed range (what ``Scorer.score`` takes unchecked)
     accepted:  (n_accepted,) indices of those records in the input
     problems:  input index -> its problems, for every refused record
     ids:       one per input record, its valid ``RECORD_ID`` or None (absent or refused);

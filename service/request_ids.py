@@ -2,9 +2,9 @@
 
 A caller (or a proxy in front of the service) may send ``X-Request-ID`` to follow one
 request through its own logs and ours. The service echoes it when it is 1 to 128 printable
-ASCII characters (0x20 to 0x7E, not only spaces), and otherwise makes one (32 hex digits
-from ``uuid4``), so a header cannot smuggle control characters or unbounded text into the
-logs. The id is on every answer the application gives, errors included (the outermost
+ASCII characters (0x20 to 0x7E, not only spaces), and otherwise makes one (the 32 hex
+digits of a random version-4 UUID), so a header cannot smuggle control characters or
+unbounded text into the logs. The id is on every answer the application gives, errors included (the outermost
 middleware adds it; the handler of unexpected errors, which Starlette runs outside every
 middleware, adds it itself through ``request_id``), and in the access log line.
 ``X-Request-ID`` is common practice (nginx ``$request_id``, Heroku's router), not a standard.
@@ -12,7 +12,7 @@ middleware, adds it itself through ``request_id``), and in the access log line.
 
 from __future__ import annotations
 
-import uuid
+import os
 
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
@@ -70,4 +70,9 @@ def _chosen(scope: Scope) -> str:
 
 
 def _new() -> str:
-    return uuid.uuid4().hex
+    """A version-4 UUID's 32 hex digits (RFC 9562 section 5.4: 122 random bits, version 4, variant
+    10), written from the bytes: ``uuid.uuid4().hex`` builds a UUID object first, 3x the time."""
+    octets = bytearray(os.urandom(16))
+    octets[6] = octets[6] & 0x0F | 0x40
+    octets[8] = octets[8] & 0x3F | 0x80
+    return octets.hex()

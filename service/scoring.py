@@ -94,7 +94,9 @@ def score_records(
     else:
         checked = check_records(bundle.manifest.features, body, from_json, ids=True)
         n_rows = len(body)
-    scores = bundle.score(checked.values) if len(checked.accepted) else None
+    # The checked rows are finite floats in manifest order: the scorer itself, not Bundle.score's
+    # conversion and finiteness check for callers of the library.
+    scores = bundle.scorer.score(checked.values) if len(checked.accepted) else None
     outside = apply_outside_policy(checked, scores, outside_action)
     refusals = summarise_refusals(checked.problems, checked.ids)
     scored = len(checked.accepted) - int(outside.sum())

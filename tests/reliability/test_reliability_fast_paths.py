@@ -174,9 +174,14 @@ def test_a_body_of_floats_is_taken_from_the_fast_parser():
     assert _fast_document(data) is not _UNDECIDED
 
 
+# The walk reads a short level in Python and a long one (service.body._NUMPY_LEVEL values or more)
+# with numpy: every walk test runs on one copy of its records and on enough copies for numpy.
+_COPIES = [1, 40]
+
+
 @_SETTINGS
-@given(document=_json_values)
-def test_numbers_from_two_to_the_63_up_send_a_body_to_the_strict_parser(document):
+@given(document=_json_values, copies=st.sampled_from(_COPIES))
+def test_numbers_from_two_to_the_63_up_send_a_body_to_the_strict_parser(document, copies):
     # The definition: orjson's document is taken only when every number in it is smaller than
     # 2**63 in magnitude (an integer orjson cannot keep exact becomes a float at least that large).
     from service.body import _UNDECIDED, _fast_document
@@ -188,7 +193,7 @@ def test_numbers_from_two_to_the_63_up_send_a_body_to_the_strict_parser(document
             return [leaf for child in value for leaf in leaves(child)]
         return [value]
 
-    data = json.dumps({"records": [document]}).encode("utf-8")
+    data = json.dumps({"records": [document] * copies}).encode("utf-8")
     numbers = [leaf for leaf in leaves(document) if isinstance(leaf, (int, float))]
     colon_in_a_string = any(isinstance(leaf, str) and ":" in leaf for leaf in leaves(document))
     if any(abs(number) >= 2**63 for number in numbers):
@@ -227,25 +232,40 @@ def test_check_columns_refuses_ids_for_a_bundle_whose_feature_is_named_id():
     assert check_columns(features, {"id": [1, 2], "b": [1, None]}, None, 2).accepted.tolist() == [0]
 
 
-def test_text_that_spells_a_huge_number_does_not_count_as_a_number_in_the_walk():
-    # The leaf level is converted with numpy, which reads "1e30" as a number; only real JSON
+@pytest.mark.parametrize("copies", _COPIES)
+def test_text_that_spells_a_huge_number_does_not_count_as_a_number_in_the_walk(copies):
+    # A long leaf level is converted with numpy, which reads "1e30" as a number; only real JSON
     # numbers may send a body to the strict parser (the definition in the test above).
     from service.body import _UNDECIDED, _fast_document
 
-    data = json.dumps({"records": [{"a": 0.5, "b": "1e30", "c": None}, {"a": 1.5, "b": True, "c": "inf"}]}).encode()
-    assert _fast_document(data) is not _UNDECIDED
+    records = [{"a": 0.5, "b": "1e30", "c": None}, {"a": 1.5, "b": True, "c": "inf"}] * copies
+    assert _fast_document(json.dumps({"records": records}).encode()) is not _UNDECIDED
 
 
+@pytest.mark.parametrize("copies", _COPIES)
 @pytest.mark.parametrize("huge", ["18446744073709551616", "-9223372036854775809", "1e19", "1" + "0" * 400])
-def test_a_huge_number_among_nulls_still_sends_the_body_to_the_strict_parser(huge):
-    # null becomes NaN in the leaf level's conversion; it must not hide the huge number beside it.
+def test_a_huge_number_among_nulls_still_sends_the_body_to_the_strict_parser(huge, copies):
+    # null becomes NaN in a long level's conversion; it must not hide the huge number beside it.
     from service.body import _UNDECIDED, _fast_document
 
-    data = ('{"records": [{"a": null, "b": true, "c": ' + huge + '}, {"a": null, "b": 1, "c": 2}]}').encode()
+    records = ', '.join(['{"a": null, "b": true, "c": ' + huge + '}', '{"a": null, "b": 1, "c": 2}'] * copies)
+    assert _fast_document(('{"records": [' + records + ']}').encode()) is _UNDECIDED
+
+
+@pytest.mark.parametrize("copies", _COPIES)
+def test_a_huge_number_beside_text_that_is_no_number_sends_the_body_to_the_strict_parser(copies):
+    from service.body import _UNDECIDED, _fast_document
+
+    records = ', '.join(['{"a": "x", "c": 18446744073709551616}'] + ['{"a": "y", "c": 1}'] * (copies - 1))
+    assert _fast_document(('{"records": [' + records + ']}').encode()) is _UNDECIDED
+
+
+@pytest.mark.parametrize("copies", _COPIES)
+def test_a_huge_integer_among_small_ones_sends_the_body_to_the_strict_parser(copies):
+    # All integers: the short level's Python max and the long level's numpy conversion must both see it.
+    from service.body import _UNDECIDED, _fast_document
+
+    huge = 2**64 + 1  # orjson reads it as a float; the strict parser keeps the exact integer
+    data = json.dumps({"records": [{"a": 1, "b": 2}] * copies + [{"a": huge, "b": 3}]}).encode()
     assert _fast_document(data) is _UNDECIDED
-
-
-def test_a_huge_number_beside_text_that_is_no_number_sends_the_body_to_the_strict_parser():
-    from service.body import _UNDECIDED, _fast_document
-
-    assert _fast_document(b'{"records": [{"a": "x", "c": 18446744073709551616}]}') is _UNDECIDED
+    assert _fast_document(data.replace(str(huge).encode(), b"4")) is not _UNDECIDED

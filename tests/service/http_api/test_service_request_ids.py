@@ -8,6 +8,7 @@ for a valid one is the service's own (README, "Request ids").
 from __future__ import annotations
 
 import re
+import uuid
 import warnings
 
 import pytest
@@ -46,6 +47,17 @@ def test_every_route_echoes_a_valid_supplied_request_id(make_client, store, rout
 def test_an_invalid_request_id_is_replaced_by_a_generated_one(shared_client, request_id):
     response = shared_client.get("/healthz", headers={"X-Request-ID": request_id.encode("latin-1")})
     assert _GENERATED.match(response.headers["X-Request-ID"])
+
+
+def test_generated_request_ids_are_distinct_version_4_uuids():
+    # RFC 9562 section 5.4: version 4, variant 10 (the standard library's uuid.UUID reads both fields).
+    from service.request_ids import _new
+
+    made = [_new() for _ in range(2000)]
+    assert len(set(made)) == len(made)
+    for text in made:
+        parsed = uuid.UUID(hex=text)
+        assert (parsed.version, parsed.variant, parsed.hex) == (4, uuid.RFC_4122, text)
 
 
 def test_a_request_id_of_exactly_128_printable_characters_is_echoed(shared_client):
