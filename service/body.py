@@ -126,9 +126,10 @@ def _members_depth_largest(document: Any) -> tuple[int, int, float]:
     """(members of every object, nesting depth, largest magnitude of a number) of a parsed
     document, a level at a time (the magnitude only down to ``MAX_DEPTH``, where the walk stops).
 
-    Each level is scanned with C-level map and set calls and, when it is long, one numpy reduction
-    rather than a Python loop per value (a scoring body is three levels: the object, its list of records, the
-    records; or four in the column form: the object, its columns, the arrays, their values).
+    Each level is scanned with C-level map and set calls and, when it is long, one numpy
+    reduction rather than a Python loop per value (a scoring body is three levels: the object,
+    its list of records, the records; or four in the column form: the object, its columns, the
+    arrays, their values).
     """
     members, depth, largest = 0, 0, 0
     level = [document]

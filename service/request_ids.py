@@ -4,9 +4,10 @@ A caller (or a proxy in front of the service) may send ``X-Request-ID`` to follo
 request through its own logs and ours. The service echoes it when it is 1 to 128 printable
 ASCII characters (0x20 to 0x7E, not only spaces), and otherwise makes one (the 32 hex
 digits of a random version-4 UUID), so a header cannot smuggle control characters or
-unbounded text into the logs. The id is on every answer the application gives, errors included (the outermost
-middleware adds it; the handler of unexpected errors, which Starlette runs outside every
-middleware, adds it itself through ``request_id``), and in the access log line.
+unbounded text into the logs. The id is on every answer the application gives, errors
+included (the outermost middleware adds it; the handler of unexpected errors, which Starlette
+runs outside every middleware, adds it itself through ``request_id``), and in the access log
+line.
 ``X-Request-ID`` is common practice (nginx ``$request_id``, Heroku's router), not a standard.
 """
 
