@@ -16,7 +16,8 @@ import json
 import sys
 from pathlib import Path
 
-from .report import BATCH_CPU_MS, BATCH_RATIO, BATCH_RECORDS, service_row, single_row_target, targets
+from .report import (BATCH_CPU_MS, BATCH_RATIO, BATCH_RECORDS, SERVICE_BARE_SHARE, SERVICE_RATIO, service_row,
+                     single_row_target, targets)
 
 __all__ = ["BEGIN", "END", "README", "RESULTS", "figures_block", "readme_block", "replace_block"]
 
@@ -168,13 +169,13 @@ def _results_paragraph(results: dict) -> str:
         memory = max(load["rss_delta_bytes"] for load in loads) / 2**20
         first = loads[0]
         text.append(f"A {first['n_support']:,} x {first['features']} bundle loads and self-tests in "
-                    f"{min(totals):.2f} to {max(totals):.2f} s (target {_LOAD_TARGET_SECONDS:g} s) and adds "
+                    f"{_range(totals, '.2f')} s (target {_LOAD_TARGET_SECONDS:g} s) and adds "
                     f"{memory:.0f} MiB of resident memory.")
     by_poll: dict[float, list[float]] = {}
     for switch in results.get("switch", []):
         by_poll.setdefault(switch["poll_seconds"], []).extend(switch["visible_after_commit"])
     if by_poll:
-        parts = [f"{min(values):.2f} to {max(values):.2f} s with `--poll-interval {poll:g}`"
+        parts = [f"{_range(values, '.2f')} s with `--poll-interval {poll:g}`"
                  for poll, values in sorted(by_poll.items(), reverse=True)]
         text.append(f"A switch is answered {' and '.join(parts)} after the pointer is written "
                     f"(target {_SWITCH_TARGET_SECONDS:g} s).")
@@ -263,8 +264,16 @@ def _service_limits(service: list[dict], results: dict) -> list[str]:
                      "headers, the log line and the metrics (the score routes already bypass FastAPI's router, "
                      "`service/score_dispatch.py`). The share of the bare endpoint is bound by that "
                      "difference, most of it per-call Python and numpy overhead rather than per-record work")
+        missed = _missed([
+            (ours["requests_per_second"] / theirs["requests_per_second"] < SERVICE_RATIO,
+             f"x{SERVICE_RATIO:g} the reference's requests/s "
+             f"(x{ours['requests_per_second'] / theirs['requests_per_second']:.1f})"),
+            (bare is not None and ours["requests_per_second"] / bare["requests_per_second"] < SERVICE_BARE_SHARE,
+             f"{SERVICE_BARE_SHARE:.0%} of the bare endpoint's requests/s "
+             f"({ours['requests_per_second'] / bare['requests_per_second']:.0%})" if bare else ""),
+        ])
         lines.append(
-            f"- Service, one record: rbfgate costs {ours['cpu_ms_per_request']:.2f} ms of server CPU per request and "
+            f"- {missed}Service, one record: rbfgate costs {ours['cpu_ms_per_request']:.2f} ms of server CPU per request and "
             f"the reference {theirs['cpu_ms_per_request']:.2f} ms{extra}. With 8 connections on one worker, p99 is "
             f"mostly queueing: 8 requests in flight x the per-request time, plus the machine's other load.")
     big = service_row(service, "rbfgate", 1, BATCH_RECORDS)
@@ -281,12 +290,27 @@ def _service_limits(service: list[dict], results: dict) -> list[str]:
         else:
             record_form = (f" and {big['cpu_ms_per_request']:.1f} ms in the record form (one JSON object per record "
                            "in and out)") if big else ""
+            reference = service_row(service, "reference", 1, BATCH_RECORDS)
+            missed = _missed([
+                (columns["cpu_ms_per_request"] > BATCH_CPU_MS,
+                 f"<= {BATCH_CPU_MS:g} ms of server CPU per request ({columns['cpu_ms_per_request']:.2f} ms)"),
+                (reference is not None
+                 and columns["requests_per_second"] / reference["requests_per_second"] < BATCH_RATIO,
+                 f"x{BATCH_RATIO:g} the reference's records/s"
+                 + (f" (x{columns['requests_per_second'] / reference['requests_per_second']:.1f})" if reference else "")),
+            ])
             lines.append(
-                f"- Service, {BATCH_RECORDS:,} records: {columns['cpu_ms_per_request']:.1f} ms of server CPU per request "
+                f"- {missed}Service, {BATCH_RECORDS:,} records: {columns['cpu_ms_per_request']:.1f} ms of server CPU per request "
                 f"in the column form{record_form}{scoring}; the rest is receiving and parsing the body (orjson), "
                 "the column-wise range rules, writing the answer, the metrics and the HTTP exchange."
                 + _cores_sentence(columns, service_row(service, "reference", 1, BATCH_RECORDS)))
     return lines
+
+
+def _missed(checks: list[tuple[bool, str]]) -> str:
+    """"Missed: a and b. " for the targets whose check is True, "" when none is."""
+    names = [name for missed, name in checks if missed]
+    return f"Missed: {' and '.join(names)}. " if names else ""
 
 
 def _cores_sentence(ours: dict, theirs: dict | None) -> str:

@@ -3,7 +3,8 @@
 In the default suite (not marked ``benchmark``): it reads tests/benchmarks/results/benchmark.json and
 compares the README's generated block with what tests/benchmarks/readme_figures.py makes of it. The
 other tests add rbfgate column-form rows to those results and check that the 1,000-record targets
-are judged on them and that every column-form figure reaches the block (so the comparison covers them).
+are judged on them and that every column-form figure reaches the block (so the comparison covers them);
+the last two check that a missed service target is named, with its measure, in the limits lines.
 """
 
 from __future__ import annotations
@@ -105,3 +106,36 @@ def test_the_readme_block_changes_with_every_column_form_figure():
             row["p99_ms"] /= 2
     assert block != figures_block(faster_p99)
     assert f"service, 1 worker, {BATCH_RECORDS:,} records per request, column form beside the record form" in block
+
+
+def _limit_lines(block: str, start: str) -> list[str]:
+    return [line for line in block.splitlines() if line.startswith("- ") and start in line]
+
+
+def test_each_missed_service_target_is_named_in_the_limits():
+    # The issue's rule: the performance section names, for each target missed, what limits it.
+    results = _record_form_only(json.loads(RESULTS.read_text(encoding="utf-8")))
+    reference = service_row(results["service"], "reference", 1, BATCH_RECORDS)
+    record_form = service_row(results["service"], "rbfgate", 1, BATCH_RECORDS)
+    fast = 1.01 * BATCH_RATIO * reference["requests_per_second"] / record_form["requests_per_second"]
+
+    met = figures_block(_with_column_form(results, BATCH_CPU_MS - 0.5, fast))
+    [line] = _limit_lines(met, f"Service, {BATCH_RECORDS:,} records")
+    assert not line.startswith("- Missed")
+
+    missed = figures_block(_with_column_form(results, BATCH_CPU_MS + 0.5, 0.5 * fast))
+    [line] = _limit_lines(missed, f"Service, {BATCH_RECORDS:,} records")
+    assert line.startswith(f"- Missed: <= {BATCH_CPU_MS:g} ms of server CPU per request ({BATCH_CPU_MS + 0.5:.2f} ms)"
+                           f" and x{BATCH_RATIO:g} the reference's records/s (x")
+
+
+def test_a_missed_one_record_target_is_named_in_the_limits():
+    results = json.loads(RESULTS.read_text(encoding="utf-8"))
+    ours, theirs, bare = (service_row(results["service"], server, 1, 1) for server in ("rbfgate", "reference", "bare"))
+    ours["requests_per_second"] = 5.5 * theirs["requests_per_second"]
+    bare["requests_per_second"] = ours["requests_per_second"] / 0.75  # 75 % of the bare endpoint: both met
+    [line] = _limit_lines(figures_block(results), "Service, one record")
+    assert line.startswith("- Service, one record")
+    bare["requests_per_second"] = ours["requests_per_second"] / 0.5
+    [line] = _limit_lines(figures_block(results), "Service, one record")
+    assert line.startswith("- Missed: 70% of the bare endpoint's requests/s (50%). Service, one record")
