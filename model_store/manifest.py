@@ -134,6 +134,16 @@ class ClassifierSpec(_Strict):
     break_ties: bool = False
     decision_function_shape: Literal["ovr", "ovo"] = "ovr"
 
+    @model_validator(mode="after")
+    def _classes_unique(self) -> ClassifierSpec:
+        # scikit-learn's classes_ are np.unique of the labels; a repeated class would make two
+        # decision columns answer to one name in every result object.
+        repeated = sorted({label for label in self.classes if self.classes.count(label) > 1})
+        if repeated:
+            raise ValueError(f"classifier.classes repeats {repeated[0]!r}; each class must appear once "
+                             "(as in scikit-learn's classes_)")
+        return self
+
 
 class SigmoidParams(_Strict):
     """Platt sigmoid ``p = 1 / (1 + exp(a * decision + b))``."""

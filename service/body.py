@@ -96,10 +96,10 @@ _UNDECIDED = object()
 # float, where JSON's own parser, and so strict_json, keeps an exact int. The float nearest such an
 # integer has magnitude 2**63 or more, so a document with any number that large goes to the strict
 # parser, which decides (integers orjson keeps exact near that edge go too: slower, the same
-# answer). Found with one largest magnitude per level's numbers, in C, during the walk that counts
+# answer). Found with one largest magnitude per level's numbers during the walk that counts
 # members and depth: on a 1,000-record body (10 features) the walk with a scan of the body's bytes
 # for long digit runs took 0.78 ms, the walk with Python's min and max 0.59 ms (best of 400, one
-# process); with numpy's conversion and reduction, see ``_leaf_magnitude``.
+# process); with numpy's conversion and reduction for long levels, see ``_leaf_magnitude``.
 _LARGEST_TAKEN = 2**63
 # A level of fewer values is read in Python: a one-record body's levels hold 1, 1 and f values,
 # where each numpy conversion (and the exception it raises on a container) costs more than the

@@ -16,8 +16,8 @@ import json
 import sys
 from pathlib import Path
 
-from .report import (BATCH_CPU_MS, BATCH_RATIO, BATCH_RECORDS, SERVICE_BARE_SHARE, SERVICE_RATIO, service_row,
-                     single_row_target, targets)
+from .report import (BATCH_CPU_MS, BATCH_RATIO, BATCH_RECORDS, SERVICE_BARE_SHARE, SERVICE_P99_MS, SERVICE_RATIO,
+                     service_row, single_row_target, targets)
 
 __all__ = ["BEGIN", "END", "README", "RESULTS", "figures_block", "readme_block", "replace_block"]
 
@@ -267,10 +267,12 @@ def _service_limits(service: list[dict], results: dict) -> list[str]:
         missed = _missed([
             (ours["requests_per_second"] / theirs["requests_per_second"] < SERVICE_RATIO,
              f"x{SERVICE_RATIO:g} the reference's requests/s "
-             f"(x{ours['requests_per_second'] / theirs['requests_per_second']:.1f})"),
+             f"(x{ours['requests_per_second'] / theirs['requests_per_second']:.2f})"),
             (bare is not None and ours["requests_per_second"] / bare["requests_per_second"] < SERVICE_BARE_SHARE,
              f"{SERVICE_BARE_SHARE:.0%} of the bare endpoint's requests/s "
-             f"({ours['requests_per_second'] / bare['requests_per_second']:.0%})" if bare else ""),
+             f"({ours['requests_per_second'] / bare['requests_per_second']:.1%})" if bare else ""),
+            (ours["worst_p99_ms"] > SERVICE_P99_MS,
+             f"p99 <= {SERVICE_P99_MS:g} ms (worst round {ours['worst_p99_ms']:.2f} ms)"),
         ])
         lines.append(
             f"- {missed}Service, one record: rbfgate costs {ours['cpu_ms_per_request']:.2f} ms of server CPU per request and "
@@ -282,28 +284,28 @@ def _service_limits(service: list[dict], results: dict) -> list[str]:
         scorer = [case for case in results.get("scorer", []) if case["rows"] == 10_000
                   and case["n_support"] == results.get("service_model", {}).get("n_support")]
         scoring = f"; the scorer alone needs {scorer[0]['rbfgate_1thread_seconds'] * 1e3 / 10:.1f} ms for 1,000 rows" if scorer else ""
+        judged = columns or big  # the targets are judged on the column form when the run measured it
+        reference = service_row(service, "reference", 1, BATCH_RECORDS)
+        missed = _missed([
+            (judged["cpu_ms_per_request"] > BATCH_CPU_MS,
+             f"<= {BATCH_CPU_MS:g} ms of server CPU per request ({judged['cpu_ms_per_request']:.2f} ms)"),
+            (reference is not None and judged["requests_per_second"] / reference["requests_per_second"] < BATCH_RATIO,
+             f"x{BATCH_RATIO:g} the reference's records/s"
+             + (f" (x{judged['requests_per_second'] / reference['requests_per_second']:.2f})" if reference else "")),
+        ])
         if columns is None:  # results from before the column form
             lines.append(
-                f"- Service, {BATCH_RECORDS:,} records: {big['cpu_ms_per_request']:.1f} ms of server CPU per request{scoring}; "
-                "the rest is receiving and parsing the body (orjson), the column-wise range rules, writing the "
-                "answer a column at a time, the metrics and the HTTP exchange.")
+                f"- {missed}Service, {BATCH_RECORDS:,} records: {big['cpu_ms_per_request']:.1f} ms of server CPU per "
+                f"request{scoring}; the rest is receiving and parsing the body (orjson), the column-wise range rules, "
+                "writing the answer a column at a time, the metrics and the HTTP exchange.")
         else:
             record_form = (f" and {big['cpu_ms_per_request']:.1f} ms in the record form (one JSON object per record "
                            "in and out)") if big else ""
-            reference = service_row(service, "reference", 1, BATCH_RECORDS)
-            missed = _missed([
-                (columns["cpu_ms_per_request"] > BATCH_CPU_MS,
-                 f"<= {BATCH_CPU_MS:g} ms of server CPU per request ({columns['cpu_ms_per_request']:.2f} ms)"),
-                (reference is not None
-                 and columns["requests_per_second"] / reference["requests_per_second"] < BATCH_RATIO,
-                 f"x{BATCH_RATIO:g} the reference's records/s"
-                 + (f" (x{columns['requests_per_second'] / reference['requests_per_second']:.1f})" if reference else "")),
-            ])
             lines.append(
                 f"- {missed}Service, {BATCH_RECORDS:,} records: {columns['cpu_ms_per_request']:.1f} ms of server CPU per request "
                 f"in the column form{record_form}{scoring}; the rest is receiving and parsing the body (orjson), "
                 "the column-wise range rules, writing the answer, the metrics and the HTTP exchange."
-                + _cores_sentence(columns, service_row(service, "reference", 1, BATCH_RECORDS)))
+                + _cores_sentence(columns, reference))
     return lines
 
 

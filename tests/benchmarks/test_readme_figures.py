@@ -4,7 +4,7 @@ In the default suite (not marked ``benchmark``): it reads tests/benchmarks/resul
 compares the README's generated block with what tests/benchmarks/readme_figures.py makes of it. The
 other tests add rbfgate column-form rows to those results and check that the 1,000-record targets
 are judged on them and that every column-form figure reaches the block (so the comparison covers them);
-the last two check that a missed service target is named, with its measure, in the limits lines.
+the last three check that a missed service target is named, with its measure, in the limits lines.
 """
 
 from __future__ import annotations
@@ -138,4 +138,17 @@ def test_a_missed_one_record_target_is_named_in_the_limits():
     assert line.startswith("- Service, one record")
     bare["requests_per_second"] = ours["requests_per_second"] / 0.5
     [line] = _limit_lines(figures_block(results), "Service, one record")
-    assert line.startswith("- Missed: 70% of the bare endpoint's requests/s (50%). Service, one record")
+    assert line.startswith("- Missed: 70% of the bare endpoint's requests/s (50.0%). Service, one record")
+    ours["worst_p99_ms"] = 12.5
+    theirs["requests_per_second"] = ours["requests_per_second"] / 4.96  # x4.96: printed so it cannot read as x5
+    [line] = _limit_lines(figures_block(results), "Service, one record")
+    assert line.startswith("- Missed: x5 the reference's requests/s (x4.96) and 70% of the bare endpoint's "
+                           "requests/s (50.0%) and p99 <= 10 ms (worst round 12.50 ms). Service, one record")
+
+
+def test_results_from_before_the_column_form_name_their_missed_targets_too():
+    results = _record_form_only(json.loads(RESULTS.read_text(encoding="utf-8")))
+    big = service_row(results["service"], "rbfgate", 1, BATCH_RECORDS)
+    big["cpu_ms_per_request"] = BATCH_CPU_MS + 1.25
+    [line] = _limit_lines(figures_block(results), f"Service, {BATCH_RECORDS:,} records")
+    assert line.startswith(f"- Missed: <= {BATCH_CPU_MS:g} ms of server CPU per request ({BATCH_CPU_MS + 1.25:.2f} ms)")

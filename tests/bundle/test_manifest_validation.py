@@ -78,6 +78,7 @@ MANIFEST_CASES = {
     "sigma-disagrees-with-gamma": (_set(3.0, "kernel", "sigma"), "does not match gamma"),
     "mixed-label-types": (_set([0, "1", 2], "classifier", "classes"), "field classifier.classes"),
     "float-labels": (_set([0.0, 1.0, 2.0], "classifier", "classes"), "field classifier.classes"),
+    "repeated-class": (_set([0, 1, 1], "classifier", "classes"), "classifier.classes repeats 1"),
     "unknown-field": (_set("surprise", "comment"), "field comment"),
     "other-format": (_set("rbfgate-bundle/3", "format"), "field format"),
     "format-1-with-a-domain-model": (_set("rbfgate-bundle/1", "format"), "format rbfgate-bundle/1 has no domain model"),

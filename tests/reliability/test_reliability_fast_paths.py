@@ -262,10 +262,12 @@ def test_a_huge_number_beside_text_that_is_no_number_sends_the_body_to_the_stric
 
 @pytest.mark.parametrize("copies", _COPIES)
 def test_a_huge_integer_among_small_ones_sends_the_body_to_the_strict_parser(copies):
-    # All integers: the short level's Python max and the long level's numpy conversion must both see it.
+    # Integers only in the body: the short level's Python max and the long level's numpy
+    # conversion must both see the huge one (orjson reads it as a float; the strict parser keeps
+    # the exact integer).
     from service.body import _UNDECIDED, _fast_document
 
-    huge = 2**64 + 1  # orjson reads it as a float; the strict parser keeps the exact integer
+    huge = 2**64 + 1
     data = json.dumps({"records": [{"a": 1, "b": 2}] * copies + [{"a": huge, "b": 3}]}).encode()
     assert _fast_document(data) is _UNDECIDED
     assert _fast_document(data.replace(str(huge).encode(), b"4")) is not _UNDECIDED

@@ -2,8 +2,8 @@
 one-row writer a single record takes (service.result_encoding).
 
 The reference is the column writer, whose answers the HTTP tests compare with scikit-learn; here
-each row of real bundles (string and integer labels, binary and three-class, calibrated or not,
-with and without a domain model) is scored alone and written both ways.
+each row of real bundles (string and integer labels, binary and three-class, ovr and ovo, with
+break_ties, calibrated or not, with and without a domain model) is scored alone and written both ways.
 """
 
 from __future__ import annotations
@@ -13,7 +13,8 @@ import dataclasses
 import numpy as np
 import orjson
 import pytest
-from sklearn.datasets import load_iris
+from sklearn.calibration import CalibratedClassifierCV
+from sklearn.datasets import load_breast_cancer, load_iris
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from sklearn.svm import SVC
@@ -26,18 +27,36 @@ def _rows(X: np.ndarray) -> np.ndarray:
     return np.vstack([X[::17], X[::23] + rng.normal(scale=0.3, size=X[::23].shape)])
 
 
-def _three_class_uncalibrated(bundle_factory):
+def _three_class_uncalibrated(bundle_factory, **svc):
     X, y = load_iris(return_X_y=True)
-    model = make_pipeline(StandardScaler(), SVC(C=2.0, decision_function_shape="ovr")).fit(X, y)
+    model = make_pipeline(StandardScaler(), SVC(C=2.0, **svc)).fit(X, y)
     return bundle_factory(model, X, y=y), X
 
 
-@pytest.fixture(params=["iris calibrated, string labels", "cancer binary, integer labels", "iris uncalibrated"])
+def _binary_calibrated_string_labels(bundle_factory):
+    X, y = load_breast_cancer(return_X_y=True)
+    labels = np.array(["malignant", "benign"])[y]
+    model = CalibratedClassifierCV(make_pipeline(StandardScaler(), SVC()), method="isotonic", ensemble=False)
+    return bundle_factory(model.fit(X, labels), X, y=labels), X
+
+
+_BUNDLES = ["iris calibrated, string labels", "cancer binary, integer labels", "iris uncalibrated, ovr",
+            "iris uncalibrated, ovo", "iris uncalibrated, break_ties", "cancer calibrated, string labels"]
+
+
+@pytest.fixture(params=_BUNDLES)
 def bundle_and_rows(request, iris_calibrated, cancer_binary, bundle_factory):
-    if request.param.startswith("iris calibrated"):
+    kind = request.param
+    if kind == "iris calibrated, string labels":
         bundle, _, X = iris_calibrated
-    elif request.param.startswith("cancer"):
+    elif kind == "cancer binary, integer labels":
         bundle, _, X = cancer_binary
+    elif kind == "cancer calibrated, string labels":
+        bundle, X = _binary_calibrated_string_labels(bundle_factory)
+    elif kind == "iris uncalibrated, ovo":
+        bundle, X = _three_class_uncalibrated(bundle_factory, decision_function_shape="ovo")
+    elif kind == "iris uncalibrated, break_ties":
+        bundle, X = _three_class_uncalibrated(bundle_factory, break_ties=True)
     else:
         bundle, X = _three_class_uncalibrated(bundle_factory)
     return bundle, _rows(X)
