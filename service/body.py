@@ -134,7 +134,7 @@ def _members_depth_largest(document: Any) -> tuple[int, int, float]:
     members, depth, largest = 0, 0, 0
     level = [document]
     while True:
-        leaves = _leaf_magnitude(level) if len(level) >= _NUMPY_LEVEL else None
+        leaves = _leaf_magnitude(level)
         if leaves is not None:
             largest = max(largest, leaves)
             break
@@ -165,7 +165,10 @@ def _leaf_magnitude(level: list[Any]) -> float | None:
     the general walk, where only real numbers count. The walk over a 1,000-record body of 10
     features took 0.31 ms instead of 0.60 with a set of types and Python's min and max, and 0.20
     instead of 0.50 for the same rows as columns (p10 of 300 alternating runs, one process).
+    A short level is None too: the general walk reads it faster (``_NUMPY_LEVEL``).
     """
+    if len(level) < _NUMPY_LEVEL:
+        return None
     try:
         magnitude = _largest(level)
     except (TypeError, ValueError, OverflowError):
