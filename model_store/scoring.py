@@ -205,6 +205,10 @@ class Scorer:
         if not math.isfinite(norm_sq * self.gamma):
             return None
         row = scaled[0]
+        # What needs only the row comes first: the classifier's gemv streams its whole support
+        # matrix through the core's cache, and the Python and numpy work after it then runs cold.
+        excess = range_excess(raw, self.allowed_low, self.allowed_high)
+        domain_score = None if self.domain is None else self.domain.decision_row(row, norm_sq)
         sums, index = self.kernel.evaluate_row(row, norm_sq)
         pairwise = (sums + self.intercepts).reshape(1, -1)
         if self.n_classes == 2:
@@ -236,10 +240,9 @@ class Scorer:
             nearest_index=np.array([index], dtype=np.int64),
             nearest_label=self.classes[nearest_class:nearest_class + 1].copy(),
             nearest_percentile=np.array([_percentile(distance, self._quantile_list, len(self._quantile_list) - 1)]),
-            range_excess=range_excess(raw, self.allowed_low, self.allowed_high),
+            range_excess=excess,
         )
-        if self.domain is not None:
-            domain_score = self.domain.decision_row(row, norm_sq)
+        if domain_score is not None:
             object.__setattr__(scores, "domain_score", np.array([domain_score]))
             object.__setattr__(scores, "domain_verdict", np.array([self.domain.verdict(domain_score)], dtype=object))
         return scores

@@ -2,6 +2,7 @@
 
     python3 -m tests.benchmarks.profile_service --records 1000 --seconds 8    # needs py-spy and wrk
     python3 -m tests.benchmarks.profile_service --records 1000 --form columns  # the column-form body
+    python3 -m tests.benchmarks.profile_service --records 1000 --form columns --gil --scoring-threads 2
 
 Publishes the service benchmark's model (989 support vectors x 10 features, fitted once and cached
 under tests/benchmarks/results/cache like the benchmark's), starts ``rbfgate serve`` with one
@@ -11,7 +12,10 @@ records (``--form``: the record form ``{"records": [...]}`` or, for more than on
 column form ``{"columns": {...}}`` of the same rows). It prints each thread's share of the
 samples, rbfgate's own frames with the largest inclusive shares, and the frames that are most often the innermost Python frame, and keeps py-spy's raw output (``--out``) for a flame
 graph. Native work shows up under the Python frame that called it: "Runner.run" as the innermost
-frame is the event loop's own C work (socket reads and writes, HTTP parsing). py-spy is a sampling
+frame is the event loop's own C work (socket reads and writes, HTTP parsing). With ``--gil`` only
+the thread holding the GIL is sampled: samples / (rate x seconds) is then the share of the time the
+GIL was held, and the frames are the Python work that more scoring threads cannot overlap (py-spy
+reads the GIL holder without pausing the worker, so treat it as an estimate). py-spy is a sampling
 profiler from outside the process (https://github.com/benfred/py-spy); install it with
 ``pip install py-spy``. Shares, not times, are the result: the machine is shared and noisy.
 """
@@ -35,6 +39,7 @@ _CACHE = Path(__file__).resolve().parent / "results" / "cache"
 _SITE = re.compile(r" \((?:/[^()]*?/(?:lib/python3\.\d+/site-packages|site-packages|lib/python3\.\d+)/"
                    r"|/[^()]*?/(?=model_store/|service/|tests/))")
 _OWN = re.compile(r" \((?:model_store|service)/")
+_RATE = 200  # samples per second
 
 
 @dataclass(frozen=True)
@@ -86,6 +91,10 @@ def main(argv: list[str] | None = None) -> int:
                         help="the body's form (default records; columns needs --records above 1)")
     parser.add_argument("--out", type=Path, default=Path("profile-raw.txt"), help="py-spy's raw output")
     parser.add_argument("--top", type=int, default=30, help="frames to print in each list")
+    parser.add_argument("--gil", action="store_true",
+                        help="keep only the samples of the thread holding the GIL: the Python work that one "
+                        "worker cannot spread over more threads")
+    parser.add_argument("--scoring-threads", type=int, help="the worker's --scoring-threads (default: serve's)")
     args = parser.parse_args(argv)
     if args.form == "columns" and args.records < 2:
         parser.error("--form columns: the column-form body is written for --records above 1")
@@ -104,17 +113,22 @@ def main(argv: list[str] | None = None) -> int:
         name, _ = publish_model(workdir / "store", model.bundle_path)
         body = _write_bodies(workdir, load_bundle(model.bundle_path), model.reference, [args.records])[args.records][args.form]
         wrk = ensure_wrk(print)
-        with rbfgate_server(workdir / "store", 1, workdir) as server:
+        threads = () if args.scoring_threads is None else ("--scoring-threads", str(args.scoring_threads))
+        with rbfgate_server(workdir / "store", 1, workdir, None, *threads) as server:
             url = f"{server.url}/score/{name}"
             run_wrk(wrk, url, body, connections=8, seconds=2.0)
             worker = _worker_pid(server.process.pid)
-            sampler = subprocess.Popen([spy, "record", "-p", str(worker), "-d", f"{args.seconds:g}", "-r", "200",
-                                        "-f", "raw", "-o", str(args.out), "--threads", "--nonblocking"])
+            sampler = subprocess.Popen([spy, "record", "-p", str(worker), "-d", f"{args.seconds:g}", "-r", str(_RATE),
+                                        "-f", "raw", "-o", str(args.out), "--threads", "--nonblocking",
+                                        *(["--gil"] if args.gil else [])])
             load = run_wrk(wrk, url, body, connections=8, seconds=args.seconds + 1.0)
             if sampler.wait(timeout=args.seconds + 60) != 0:
                 raise SystemExit(f"py-spy failed (exit {sampler.returncode}); it needs ptrace rights on the worker")
     print(f"{load.requests} requests of {args.records} record(s) ({args.form} form), {load.requests / load.seconds:.0f} req/s while sampled")
-    print(summarise(args.out.read_text().splitlines()).render(args.top))
+    summary = summarise(args.out.read_text().splitlines())
+    if args.gil:  # one sample per tick at most while some thread holds the GIL
+        print(f"the GIL was held in about {summary.samples / (_RATE * args.seconds):.0%} of the sampled time")
+    print(summary.render(args.top))
     print(f"raw samples: {args.out}")
     return 0
 
