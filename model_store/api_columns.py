@@ -22,7 +22,7 @@ import copy
 from typing import Any
 
 from model_store.manifest import Manifest
-from model_store.refusal import RECORD_ID
+from model_store.record_ids import RECORD_ID
 
 __all__ = ["column_schemas"]
 

@@ -36,7 +36,8 @@ from typing import Any
 
 from model_store.api_columns import column_schemas
 from model_store.manifest import Manifest
-from model_store.refusal import ID_CONTROL_RANGES, MAX_ID_INTEGER, MAX_ID_LENGTH, REASONS, RECORD_ID
+from model_store.record_ids import ID_CONTROL_RANGES, MAX_ID_INTEGER, MAX_ID_LENGTH, RECORD_ID
+from model_store.refusal import REASONS
 
 __all__ = [
     "DEFAULT_MAX_RECORDS",
@@ -312,7 +313,7 @@ def _components(manifest: Manifest, digest: str, max_records: int) -> dict[str, 
 
 
 def record_id_schema() -> dict[str, Any]:
-    """JSON Schema 2020-12 of a record's ``id``, exactly as ``model_store.refusal`` accepts it.
+    """JSON Schema 2020-12 of a record's ``id``, exactly as ``model_store.record_ids`` accepts it.
 
     The control characters are refused with ``not`` + ``pattern`` (valid when no character of the
     class occurs anywhere; JSON Schema 2020-12 validation section 6.3.3 and core 10.2.1.4) rather

@@ -29,7 +29,7 @@ from __future__ import annotations
 import re
 from collections.abc import Sequence
 
-from model_store.refusal import RECORD_ID
+from model_store.record_ids import RECORD_ID
 
 __all__ = ["client_name_warnings", "normalised"]
 

@@ -35,7 +35,7 @@ from model_store.metrics import classification_metrics
 from model_store.naming import check_name
 from model_store.policy_fit import ChosenPolicy, choose_policy
 from model_store.reference_rows import QUANTILE_LEVELS, feature_ranges, leave_self_out_distances, refusal_shares
-from model_store.refusal import RECORD_ID
+from model_store.record_ids import RECORD_ID
 
 __all__ = [
     "DEFAULT_MARGIN",
@@ -237,7 +237,7 @@ def _document(request: ExportRequest, golden_inputs: np.ndarray, ranges, domain:
 
 
 def check_feature_names(features: list[str]) -> None:
-    """Refuse a feature named like the record id member (``model_store.refusal.RECORD_ID``).
+    """Refuse a feature named like the record id member (``model_store.record_ids.RECORD_ID``).
 
     Over HTTP a record's ``"id"`` is the caller's record id, echoed on its result and never
     scored; a feature of that name would make ``{"id": 7}`` mean two things.

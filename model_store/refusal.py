@@ -10,15 +10,10 @@ value, a machine-readable reason and the allowed range. ``outside_domain`` is th
 record-level reason (no feature): it is decided after scoring, from the domain verdict
 (``model_store.domain_policy``).
 
-A JSON record may also carry its caller's id as ``"id"`` (``RECORD_ID``): a string of 1 to
-``MAX_ID_LENGTH`` characters none of which is a control character (Unicode general category Cc:
-U+0000-U+001F and U+007F-U+009F, The Unicode Standard, section 4.5), or an integer within
-±``MAX_ID_INTEGER`` = ±(2^53 - 1): RFC 8259 section 6 warns that integers beyond that range are not
-exact in every JSON parser (IEEE 754 doubles), so a caller's id could come back changed. It is not a
-feature and is never scored; ``check_records(..., ids=True)`` keeps it for the results and refuses
-the record (``invalid_id``, with a ``message`` naming the rule broken and its limit) when it is
-anything else. Exporting refuses a feature of that name, so the member cannot mean two things; in
-an older bundle that has such a feature it stays a feature.
+A JSON record may also carry its caller's id as ``"id"`` (``model_store.record_ids``): it is not
+a feature and is never scored; ``check_records(..., ids=True)`` keeps it for the results and refuses
+the record (``invalid_id``) when it breaks the id rule. In an older bundle that has a feature of
+that name it stays a feature.
 
 Values come in two flavours: JSON values (``from_json``), where only real
 numbers count, and CSV text (``from_text``), where the text must parse as a
@@ -40,14 +35,10 @@ import numpy as np
 from model_store.errors import InputError
 from model_store.manifest import FeatureSpec
 from model_store.record_columns import allowed_rows, column_values, plain_rows
+from model_store.record_ids import ID_RULE, RECORD_ID, id_problem, plainly_valid_id, printable_id
 
 __all__ = [
-    "ID_CONTROL_RANGES",
-    "ID_RULE",
-    "MAX_ID_INTEGER",
-    "MAX_ID_LENGTH",
     "REASONS",
-    "RECORD_ID",
     "CheckedBatch",
     "Converter",
     "Problem",
@@ -55,21 +46,11 @@ __all__ = [
     "check_records",
     "from_json",
     "from_text",
-    "id_problem",
 ]
 
 REASONS = (
     "missing", "null", "not_a_number", "not_finite", "out_of_range", "unknown_feature", "malformed_row", "invalid_id",
     "outside_domain",
-)
-RECORD_ID = "id"
-MAX_ID_LENGTH = 128
-MAX_ID_INTEGER = 2**53 - 1  # RFC 8259 section 6: [-(2**53)+1, (2**53)-1] is exact in every parser
-# Unicode general category Cc, exactly these two ranges (C0 controls with DEL, C1 controls).
-ID_CONTROL_RANGES = ((0x00, 0x1F), (0x7F, 0x9F))
-ID_RULE = (
-    f"a record id must be a string of 1 to {MAX_ID_LENGTH} characters without control characters, or an "
-    f"integer from -{MAX_ID_INTEGER} to {MAX_ID_INTEGER} (2^53 - 1); it is echoed on the result, never scored"
 )
 
 # A converter returns the float, or the reason the value cannot be scored.
@@ -229,7 +210,7 @@ class _RecordRule:
             if record_id is not None or RECORD_ID in record:
                 broken = id_problem(record_id)
                 if broken is not None:
-                    found.insert(0, Problem(RECORD_ID, _printable_id(record_id), "invalid_id", None, broken))
+                    found.insert(0, Problem(RECORD_ID, printable_id(record_id), "invalid_id", None, broken))
                     record_id = None
                 elif isinstance(record_id, float):
                     record_id = int(record_id)  # 7.0 is the integer 7 in JSON's data model; echo it as one
@@ -308,7 +289,7 @@ def check_columns(
 
 def _take_id(record_id: Any, index: int, record_ids: list[Any], plain: np.ndarray) -> None:
     """Keep a plain row's id when it is plainly valid; otherwise the row goes to the per-value rules."""
-    if _plainly_valid_id(record_id):
+    if plainly_valid_id(record_id):
         record_ids[index] = record_id
     else:
         plain[index] = False
@@ -331,67 +312,6 @@ def _settle(
             values[index] = row
             plain[index] = True
     return CheckedBatch(values[plain], np.flatnonzero(plain), problems, record_ids)
-
-
-# What id_problem accepts, decided without a Python loop over the characters: an int within the
-# limit (not a bool), or a string of 1 to MAX_ID_LENGTH characters with no control character and
-# no lone surrogate. Anything else (7.0, say) is left to id_problem itself.
-_ID_REFUSED_CHARACTERS = re.compile(
-    "[" + "".join(f"\\u{low:04x}-\\u{high:04x}" for low, high in ID_CONTROL_RANGES) + "\\ud800-\\udfff]"
-)
-
-
-def _plainly_valid_id(value: Any) -> bool:
-    kind = type(value)
-    if kind is int:
-        return -MAX_ID_INTEGER <= value <= MAX_ID_INTEGER
-    return kind is str and 0 < len(value) <= MAX_ID_LENGTH and _ID_REFUSED_CHARACTERS.search(value) is None
-
-
-def _printable_id(value: Any) -> Any:
-    """An invalid id as it can be echoed: a lone surrogate becomes its escape (UTF-8 cannot hold it)."""
-    if isinstance(value, str):
-        return value.encode("utf-8", "backslashreplace").decode("utf-8")
-    return value
-
-
-def id_problem(value: Any) -> str | None:
-    """Why ``value`` is not a valid record id (one phrase naming the limit), or None when it is one."""
-    if isinstance(value, str):
-        if not value:
-            return f"the id is empty; a string id has 1 to {MAX_ID_LENGTH} characters"
-        if len(value) > MAX_ID_LENGTH:
-            return f"the id has {len(value)} characters; a string id has at most {MAX_ID_LENGTH}"
-        for position, character in enumerate(value, start=1):
-            code = ord(character)
-            if any(low <= code <= high for low, high in ID_CONTROL_RANGES):
-                return (f"the id holds the control character U+{code:04X} at character {position}; an id must not "
-                        "hold control characters (Unicode category Cc: U+0000-U+001F, U+007F-U+009F)")
-            if 0xD800 <= code <= 0xDFFF:  # a lone surrogate (JSON "\ud800") could not be echoed as UTF-8
-                return f"the id holds the lone surrogate U+{code:04X} at character {position}, which UTF-8 cannot carry"
-        return None
-    # JSON does not tell 7 from 7.0 (RFC 8259 section 6; JSON Schema 2020-12 counts 7.0 as an
-    # "integer", validation section 6.1.1), so an integral float is the integer it equals.
-    if isinstance(value, float) and value.is_integer():
-        value = int(value)
-    if isinstance(value, int) and not isinstance(value, bool):
-        if abs(value) > MAX_ID_INTEGER:
-            return (f"the integer id is outside -{MAX_ID_INTEGER} to {MAX_ID_INTEGER} (2^53 - 1), beyond which JSON "
-                    "parsers need not keep integers exact (RFC 8259 section 6); send it as a string")
-        return None
-    return f"the id is {_kind(value)}; {ID_RULE}"
-
-
-def _kind(value: Any) -> str:
-    if value is None:
-        return "null"
-    if isinstance(value, bool):
-        return "a boolean"
-    if isinstance(value, float):
-        return "a number written with a fraction or an exponent"
-    if isinstance(value, (dict, list)):
-        return "an object" if isinstance(value, dict) else "a list"
-    return f"a {type(value).__name__}"
 
 
 def _check_one(record, names, bounds, convert) -> tuple[list[float], list[Problem]]:

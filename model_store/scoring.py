@@ -9,7 +9,7 @@ For a row ``x`` (raw units) the scorer computes, in order:
    where ``A`` rearranges scikit-learn's ``dual_coef_`` into libsvm's one-vs-one layout;
 5. labels by libsvm's vote (pair (i, j) votes i when its decision is > 0, ties go to the
    lowest class index), the binary decision as ``P[:, 0]``, the multiclass decision as
-   scikit-learn's ovr-shaped ``votes + sum / (3 (|sum| + 1))``;
+   scikit-learn's ovr-shaped ``votes + sum / (3 (|sum| + 1))`` (``model_store.one_vs_one``);
 6. probabilities through the bundle's calibration;
 7. when the bundle has a domain model, its one-class decision and verdict
    (``model_store.domain``), through the same kernel code (``model_store.kernel``).
@@ -34,7 +34,6 @@ domain verdict so that callers (CLI, service) can apply their refusal policy.
 from __future__ import annotations
 
 import bisect
-import functools
 import math
 from contextlib import nullcontext
 from dataclasses import dataclass
@@ -44,6 +43,7 @@ import numpy as np
 from model_store.calibration import Calibrator
 from model_store.domain import DomainModel
 from model_store.kernel import KERNEL_BLOCK_BYTES, MAX_CHUNK_ROWS, MIN_CHUNK_ROWS, KernelExpansion, workspace as _workspace
+from model_store.one_vs_one import libsvm_vote, libsvm_vote_one, ovr_decision, ovr_decision_one, pairwise_coefficients
 
 __all__ = ["KERNEL_BLOCK_BYTES", "MIN_CHUNK_ROWS", "Scorer", "Scores"]
 
@@ -131,7 +131,7 @@ class Scorer:
         self.scale = np.ascontiguousarray(scale, dtype=np.float64)
         boundaries = np.concatenate([[0], np.cumsum(support_per_class)])
         self.support_class = np.repeat(np.arange(self.n_classes), support_per_class)
-        pair_coef = _pairwise_coefficients(np.asarray(dual_coef, np.float64), boundaries, self.pairs)
+        pair_coef = pairwise_coefficients(np.asarray(dual_coef, np.float64), boundaries, self.pairs)
         self.kernel = KernelExpansion(support_vectors, pair_coef, gamma, block_bytes)
         self.intercepts = np.asarray(intercepts, dtype=np.float64)
         self.allowed_low = np.asarray(allowed_low, dtype=np.float64)
@@ -217,9 +217,9 @@ class Scorer:
             calibration_input, pairwise_decision = decision, None
         else:
             pair_values = pairwise[0].tolist()
-            decision = np.array([_ovr_decision_one(pair_values, self.pairs, self.n_classes)])
+            decision = np.array([ovr_decision_one(pair_values, self.pairs, self.n_classes)])
             label_index = (int(np.argmax(decision[0])) if self.break_ties
-                           else _libsvm_vote_one(pair_values, self.pairs, self.n_classes))
+                           else libsvm_vote_one(pair_values, self.pairs, self.n_classes))
             calibration_input = pairwise if self.calibrate_pairwise else decision
             pairwise_decision = pairwise
         probabilities = None
@@ -255,11 +255,11 @@ class Scorer:
             label_index = (decision >= 0).astype(np.int64)
             calibration_input = decision
         else:
-            decision = _ovr_decision(pairwise, self.pairs, self.n_classes)
+            decision = ovr_decision(pairwise, self.pairs, self.n_classes)
             if self.break_ties:
                 label_index = np.argmax(decision, axis=1)
             else:
-                label_index = _libsvm_vote(pairwise, self.pairs, self.n_classes)
+                label_index = libsvm_vote(pairwise, self.pairs, self.n_classes)
             calibration_input = pairwise if self.calibrate_pairwise else decision
         probabilities = None
         if self.calibrator is not None:
@@ -353,94 +353,6 @@ def _percentile(distance: float, quantiles: list[float], steps: int) -> float:
     span = quantiles[upper] - quantiles[lower]
     fraction = (distance - quantiles[lower]) / span if span > 0 else 0.0
     return 100.0 * (lower + fraction) / steps
-
-
-def _pairwise_coefficients(dual_coef: np.ndarray, boundaries: np.ndarray, pairs) -> np.ndarray:
-    """(n_sv, n_pairs): column (i, j) holds dual_coef_[j - 1] on class i's support
-    vectors and dual_coef_[i] on class j's, zero elsewhere (libsvm's one-vs-one layout)."""
-    coef = np.zeros((dual_coef.shape[1], len(pairs)))
-    for column, (i, j) in enumerate(pairs):
-        rows_i = slice(boundaries[i], boundaries[i + 1])
-        rows_j = slice(boundaries[j], boundaries[j + 1])
-        coef[rows_i, column] = dual_coef[j - 1, rows_i]
-        coef[rows_j, column] = dual_coef[i, rows_j]
-    return coef
-
-
-def _libsvm_vote(pairwise: np.ndarray, pairs, n_classes: int) -> np.ndarray:
-    """(n,) libsvm's label index from (n, k(k-1)/2) pairwise decisions: pair (i, j) votes i when > 0."""
-    wins = pairwise > 0
-    _, _, first, second = _pair_layout(tuple(pairs), n_classes)
-    votes = wins @ first + (~wins) @ second  # counts, exact in float64 (BLAS products)
-    return np.argmax(votes, axis=1)  # first maximum: libsvm gives ties to the lowest index
-
-
-def _ovr_decision(pairwise: np.ndarray, pairs, n_classes: int) -> np.ndarray:
-    """scikit-learn's ``_ovr_decision_function(dec < 0, -dec, n_classes)``, same operation order.
-
-    scikit-learn loops over the pairs (i, j) in order, adding pair k's value to class i's sum and
-    subtracting it from class j's. Every pair (i, c) with i < c comes before every pair (c, j), so
-    class c first receives all its subtractions in pair order, then all its additions in pair order:
-    ``np.subtract.at`` then ``np.add.at`` (each applied index by index, in order) make the same
-    operations on each sum without a loop of numpy calls per pair (digits, 10 classes: 0.75 ms of
-    a 10-row batch's 0.9 ms, before). Votes are counts, the same in any order.
-    """
-    first_index, second_index, first, second = _pair_layout(tuple(pairs), n_classes)
-    confidence = np.zeros((n_classes, len(pairwise)))
-    by_pair = pairwise.T
-    np.subtract.at(confidence, second_index, by_pair)
-    np.add.at(confidence, first_index, by_pair)
-    wins = pairwise >= 0
-    votes = wins @ first + (~wins) @ second  # counts, exact in float64
-    confidence = confidence.T
-    return votes + confidence / (3 * (np.abs(confidence) + 1))
-
-
-@functools.lru_cache(maxsize=64)
-def _pair_layout(pairs: tuple[tuple[int, int], ...], n_classes: int
-                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Each pair's first and second class (p,) and the (p, k) float one-hot matrices marking them,
-    p = k(k-1)/2; built once per class count (read-only, shared by every scorer)."""
-    first_index = np.array([i for i, _ in pairs], dtype=np.intp)
-    second_index = np.array([j for _, j in pairs], dtype=np.intp)
-    first = np.zeros((len(pairs), n_classes))
-    second = np.zeros((len(pairs), n_classes))
-    first[np.arange(len(pairs)), first_index] = 1.0
-    second[np.arange(len(pairs)), second_index] = 1.0
-    for array in (first_index, second_index, first, second):
-        array.setflags(write=False)
-    return first_index, second_index, first, second
-
-
-# One row's vote and ovr-shaped decision in Python floats: the same IEEE operations, per class in
-# the same pair order, as the functions above, whose numpy calls cost more than one row's
-# arithmetic (digits, 10 classes and 45 pairs, one BLAS thread: a single row took 878 us with a
-# numpy loop per pair, 89 us with these).
-
-
-def _libsvm_vote_one(pairwise: list[float], pairs, n_classes: int) -> int:
-    """``_libsvm_vote`` of one row, its pairwise decisions as floats."""
-    votes = [0] * n_classes
-    for (i, j), value in zip(pairs, pairwise):
-        if value > 0:
-            votes[i] += 1
-        else:
-            votes[j] += 1
-    return votes.index(max(votes))  # the first maximum, as np.argmax
-
-
-def _ovr_decision_one(pairwise: list[float], pairs, n_classes: int) -> list[float]:
-    """``_ovr_decision`` of one row, its pairwise decisions as floats."""
-    votes = [0.0] * n_classes
-    confidence = [0.0] * n_classes
-    for (i, j), value in zip(pairs, pairwise):
-        confidence[i] += value
-        confidence[j] -= value
-        if value >= 0:
-            votes[i] += 1
-        else:
-            votes[j] += 1
-    return [vote + total / (3 * (abs(total) + 1)) for vote, total in zip(votes, confidence)]
 
 
 def _array_bytes(holder: object, depth: int = 0) -> int:

@@ -14,7 +14,8 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from model_store.manifest import DomainSpec, FeatureSpec, FileEntry, KernelSpec, RefusalReport
 from model_store.naming import MAX_NAME_LENGTH
-from model_store.refusal import MAX_ID_INTEGER, MAX_ID_LENGTH, REASONS
+from model_store.record_ids import MAX_ID_INTEGER, MAX_ID_LENGTH
+from model_store.refusal import REASONS
 
 __all__ = [
     "ActivateRequest", "Alive", "BreakingChangesProblem", "DOCUMENTED_MODELS", "History", "LiveAt", "ModelDetail",

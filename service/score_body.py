@@ -22,7 +22,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from model_store.refusal import RECORD_ID
+from model_store.record_ids import RECORD_ID
 from service.problems import ServiceProblem
 
 __all__ = ["ColumnBody", "check_column_names", "read_request"]

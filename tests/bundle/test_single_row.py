@@ -151,7 +151,7 @@ def test_one_row_vote_and_ovr_decision_are_the_batch_functions_bit_for_bit(n_cla
     # The batch functions follow scikit-learn's _ovr_decision_function and libsvm's vote
     # (tests/bundle/test_sklearn_matrix.py); the one-row versions must give the same bits,
     # ties (zeros, equal votes) and NaN included.
-    from model_store.scoring import _libsvm_vote, _libsvm_vote_one, _ovr_decision, _ovr_decision_one
+    from model_store.one_vs_one import libsvm_vote, libsvm_vote_one, ovr_decision, ovr_decision_one
 
     pairs = [(i, j) for i in range(n_classes) for j in range(i + 1, n_classes)]
     rng = np.random.default_rng(n_classes)
@@ -159,8 +159,8 @@ def test_one_row_vote_and_ovr_decision_are_the_batch_functions_bit_for_bit(n_cla
     rows[::4] = np.round(rows[::4])  # exact zeros: decisions on the boundary
     rows[1::4] = np.where(rng.random((100, len(pairs))) < 0.5, 1.0, -1.0)  # many equal votes
     rows[2, 0] = np.nan
-    decisions = _ovr_decision(rows, pairs, n_classes)
-    votes = _libsvm_vote(rows, pairs, n_classes)
+    decisions = ovr_decision(rows, pairs, n_classes)
+    votes = libsvm_vote(rows, pairs, n_classes)
     for row, decision, vote in zip(rows, decisions, votes):
-        assert np.array_equal(_ovr_decision_one(row.tolist(), pairs, n_classes), decision, equal_nan=True)
-        assert _libsvm_vote_one(row.tolist(), pairs, n_classes) == vote
+        assert np.array_equal(ovr_decision_one(row.tolist(), pairs, n_classes), decision, equal_nan=True)
+        assert libsvm_vote_one(row.tolist(), pairs, n_classes) == vote

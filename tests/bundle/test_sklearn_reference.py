@@ -347,7 +347,7 @@ def test_ovr_decision_of_a_batch_is_scikit_learns_bit_for_bit(n_classes):
     # Reference: sklearn.utils.multiclass._ovr_decision_function(dec < 0, -dec, n_classes), the
     # per-pair loop BaseSVC.decision_function runs; ours accumulates each class's sum in the same
     # order without that loop, so the bits must agree (zeros, equal votes and NaN included).
-    from model_store.scoring import _ovr_decision
+    from model_store.one_vs_one import ovr_decision
 
     pairs = [(i, j) for i in range(n_classes) for j in range(i + 1, n_classes)]
     rng = np.random.default_rng(n_classes)
@@ -355,7 +355,7 @@ def test_ovr_decision_of_a_batch_is_scikit_learns_bit_for_bit(n_classes):
     dec[::5] = np.round(dec[::5])
     dec[1::5] = np.where(rng.random((100, len(pairs))) < 0.5, 1.0, -1.0)
     dec[2, 1] = np.nan
-    assert np.array_equal(_ovr_decision(dec, pairs, n_classes), _ovr_decision_function(dec < 0, -dec, n_classes),
+    assert np.array_equal(ovr_decision(dec, pairs, n_classes), _ovr_decision_function(dec < 0, -dec, n_classes),
                           equal_nan=True)
 
 
@@ -363,7 +363,7 @@ def test_ovr_decision_of_a_batch_is_scikit_learns_bit_for_bit(n_classes):
 def test_libsvm_vote_of_a_batch_is_the_per_pair_rule(n_classes):
     # libsvm's svm_predict_values (svm.cpp): pair (i, j) votes i when its decision is > 0, else j;
     # the label is the first class with the most votes. Written here as that loop, row by row.
-    from model_store.scoring import _libsvm_vote
+    from model_store.one_vs_one import libsvm_vote
 
     pairs = [(i, j) for i in range(n_classes) for j in range(i + 1, n_classes)]
     rng = np.random.default_rng(10 + n_classes)
@@ -374,4 +374,4 @@ def test_libsvm_vote_of_a_batch_is_the_per_pair_rule(n_classes):
         for (i, j), value in zip(pairs, row):
             votes[i if value > 0 else j] += 1
         expected.append(votes.index(max(votes)))
-    assert _libsvm_vote(dec, pairs, n_classes).tolist() == expected
+    assert libsvm_vote(dec, pairs, n_classes).tolist() == expected

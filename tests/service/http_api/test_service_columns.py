@@ -15,7 +15,7 @@ import json
 import numpy as np
 import pytest
 
-from model_store.refusal import MAX_ID_INTEGER
+from model_store.record_ids import MAX_ID_INTEGER
 
 _NEAREST = ("distance", "similarity", "label", "index", "percentile")
 

@@ -16,7 +16,7 @@ import unicodedata
 
 import pytest
 
-from model_store.refusal import ID_CONTROL_RANGES, MAX_ID_LENGTH, id_problem
+from model_store.record_ids import ID_CONTROL_RANGES, MAX_ID_LENGTH, id_problem
 
 from .cases import GOOD_RECORD
 

@@ -53,7 +53,7 @@ _VALUES = st.one_of(
     st.lists(st.integers(), max_size=2),
 )
 _NAMES = st.sampled_from(["sepal_length_cm", "sepal_width_cm", "petal_length_cm", "petal_width_cm", "colour", "id"])
-# Record ids (the service's rule, model_store.refusal.ID_RULE): strings of 1 to 128 characters
+# Record ids (the service's rule, model_store.record_ids.ID_RULE): strings of 1 to 128 characters
 # without a Unicode category Cc character, or integers within ±(2**53 - 1) (RFC 8259 section 6);
 # each side of every limit, and characters either side of the Cc ranges (U+001F/U+0020,
 # U+007E/U+007F, U+009F/U+00A0), with a final newline (which "$" would let through in Python).
