@@ -37,7 +37,6 @@ from __future__ import annotations
 import logging
 import threading
 import time
-from collections import OrderedDict
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -48,6 +47,7 @@ from model_store.domain_policy import DEFAULT_OUTSIDE_ACTION
 from model_store.errors import HistoryError, InvalidNameError, NotFoundError, RbfgateError, StoreError
 from model_store.naming import check_name
 from service.metrics import ServiceMetrics
+from service.pinned_versions import PinnedVersions
 from service.settings import DEFAULT_PINNED_CACHE_BYTES
 
 __all__ = ["LoadFailure", "LoadedModel", "ModelRegistry"]
@@ -103,7 +103,6 @@ class ModelRegistry:
     ) -> None:
         self._store = store
         self.poll_deadline = poll_deadline
-        self._pinned_cache_bytes = pinned_cache_bytes
         self._metrics = metrics
         self._on_event = on_event or (lambda event: None)
         self._clock = clock
@@ -121,8 +120,7 @@ class ModelRegistry:
         self._poll_started: float | None = None
         self._started = False
         self._refresh_lock = threading.RLock()
-        self._pinned: OrderedDict[tuple[str, str], LoadedModel] = OrderedDict()
-        self._pinned_lock = threading.Lock()
+        self._pinned = PinnedVersions(pinned_cache_bytes)
 
     # ---- reading (any thread, lock-free: the mappings are replaced, never changed)
 
@@ -447,33 +445,22 @@ class ModelRegistry:
     # ---- pinned versions
 
     def pinned(self, name: str, version: str) -> LoadedModel:
-        """A published version, loaded and verified on first use and kept in an LRU cache bounded by
-        bytes (``Bundle.resident_bytes``), not by count: a version larger than the whole budget is
-        served from a fresh load each time and never cached."""
+        """A published version, loaded and verified on first use (``service.pinned_versions``)."""
         check_name(name, what="model name")
         check_name(version, what="model version")
         self._store.bundle_dir(name, version)  # NotFoundError once pruned, even if cached
         current = self._table.get(name)
         if current is not None and current.version == version:
             return current
-        key = (name, version)
-        with self._pinned_lock:
-            cached = self._pinned.get(key)
-            if cached is not None:
-                self._pinned.move_to_end(key)
-                return cached
-            bundle = self._store.load_verified(name, version)
-            loaded = LoadedModel(name, version, bundle.digest, bundle, _now())
-            if bundle.resident_bytes <= self._pinned_cache_bytes:
-                self._pinned[key] = loaded
-                while sum(item.bundle.resident_bytes for item in self._pinned.values()) > self._pinned_cache_bytes:
-                    self._pinned.popitem(last=False)
-            return loaded
+        return self._pinned.get(name, version, self._load_pinned)
 
     def pinned_cache(self) -> tuple[int, int]:
         """(versions, bytes) in the pinned-version cache of this worker."""
-        with self._pinned_lock:
-            return len(self._pinned), sum(item.bundle.resident_bytes for item in self._pinned.values())
+        return self._pinned.size()
+
+    def _load_pinned(self, name: str, version: str) -> LoadedModel:
+        bundle = self._store.load_verified(name, version)
+        return LoadedModel(name, version, bundle.digest, bundle, _now())
 
 
 class _DigestMoved(Exception):
