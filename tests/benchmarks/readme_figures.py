@@ -41,9 +41,10 @@ def figures_block(results: dict) -> str:
         f"Measured on a shared {machine['cores']}-core {machine['cpu']}, {machine['memory_gib']:g} GiB, Python "
         f"{machine['python']}, numpy {machine['numpy']}, scikit-learn {machine['scikit_learn']}, "
         f"{_blas(machine)} (`tests/benchmarks/results/benchmark.md`, with the plot beside it), "
-        f"{results['started']} to {results['finished']}. Other test suites ran on the machine at the same time "
-        f"(load average {low_load:.1f} to {high_load:.1f} during the run), so the table gives CPU-time ratios "
-        "beside the wall-time ones. Absolute numbers hold for that machine only; the ratios are the claim.",
+        f"{results['started']} to {results['finished']}. The machine is shared with other work (load average "
+        f"{low_load:.1f} to {high_load:.1f} during the run, the benchmark's own servers and wrk included), so the "
+        "table gives CPU-time ratios beside the wall-time ones. Absolute numbers hold for that machine only; the "
+        "ratios are the claim.",
         "",
         "| | rbfgate faster than scikit-learn by (wall time; CPU time) | target |",
         "| --- | --- | --- |",
@@ -247,7 +248,8 @@ def _single_row_limits(single: list[dict], exp_rate: float | None = None) -> lis
                 f"({exp_ms:.2f} ms at the measured `exp` rate), reads the augmented matrix (f + 2 columns) in one "
                 "gemv, passes over the kernel values for the nearest support vector and the decision, and adds "
                 "the domain model's own expansion; a row at a near tie of the nearest support vector is scored "
-                "again by the batch arithmetic.")
+                "again by the batch arithmetic. A matrix larger than the core's cache leaves the few dozen numpy "
+                "calls around the gemv to run on a cold cache (measured below the figures).")
     return lines
 
 
