@@ -15,11 +15,12 @@ For a row ``x`` (raw units) the scorer computes, in order:
    (``model_store.domain``), through the same kernel code (``model_store.kernel``).
 
 Rows are processed in chunks so that the kernel block (rows x support vectors
-float64) stays under ``KERNEL_BLOCK_BYTES`` (4 MiB, cache-sized) and at most
-``MAX_CHUNK_ROWS`` (1,024) rows whatever the batch size; a single row is one
-matrix-vector product (``model_store.kernel``); bundles with more than 8,192 support vectors are also split into
-tiles of support vectors, so that a chunk keeps ``MIN_CHUNK_ROWS`` rows and the
-support matrix is not re-read for every few rows. Nearest support vectors,
+float64) stays under ``KERNEL_BLOCK_BYTES`` (a quarter of the core's L2 cache, 512 KiB to
+4 MiB, ``model_store.kernel.block_bytes_for``) and at most ``MAX_CHUNK_ROWS`` (1,024) rows
+whatever the batch size; a single row is one matrix-vector product (``model_store.kernel``);
+bundles with more than ``KERNEL_BLOCK_BYTES / (8 MIN_CHUNK_ROWS)`` support vectors (1,024 to
+8,192) are also split into tiles of support vectors, so that a chunk keeps ``MIN_CHUNK_ROWS``
+rows and the support matrix is not re-read for every few rows. Nearest support vectors,
 distances, percentiles and range checks came out bit-identical for batch
 sizes 1, 7, 100 and 10,000 (tests/bundle checks it). Decisions and
 probabilities may differ in the last bits, because OpenBLAS picks its
@@ -292,7 +293,7 @@ def _distances(scaled: np.ndarray, support_vectors: np.ndarray, index: np.ndarra
     """
     n_rows, n_features = scaled.shape
     distance = np.empty(n_rows)
-    chunk = max(1, min(n_rows, MAX_CHUNK_ROWS, KERNEL_BLOCK_BYTES // (8 * max(1, n_features))))  # buffer <= 4 MiB
+    chunk = max(1, min(n_rows, MAX_CHUNK_ROWS, KERNEL_BLOCK_BYTES // (8 * max(1, n_features))))  # buffer <= the block
     buffer = _workspace(chunk, n_features, 0)[0]  # the kernel's block: the kernel is done with it here
     for start in range(0, n_rows, chunk):
         stop = min(start + chunk, n_rows)

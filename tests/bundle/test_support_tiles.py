@@ -1,7 +1,7 @@
 """Bundles with many support vectors are scored in tiles of support vectors; tiles change nothing.
 
 The scorer splits the support vectors into tiles once a bundle has more than
-KERNEL_BLOCK_BYTES / (8 x MIN_CHUNK_ROWS) of them (8,192 at 4 MiB). The test
+KERNEL_BLOCK_BYTES / (8 x MIN_CHUNK_ROWS) of them (1,024 at 512 KiB, 8,192 at 4 MiB). The test
 bundles are far smaller, so these tests shrink the tile to a few support
 vectors and compare with one tile and with scikit-learn (the reference):
 
