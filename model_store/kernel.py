@@ -38,7 +38,6 @@ from model_store.cpu_cache import data_cache_bytes
 __all__ = ["KERNEL_BLOCK_BYTES", "MAX_CHUNK_ROWS", "MIN_CHUNK_ROWS", "KernelExpansion", "block_bytes_for", "workspace"]
 
 
-
 def block_bytes_for(l2_bytes: int | None) -> int:
     """The kernel block's size for a core with ``l2_bytes`` of L2 cache: a quarter of it, within
     512 KiB and 4 MiB; 1 MiB when the size is unknown.
@@ -57,6 +56,7 @@ def block_bytes_for(l2_bytes: int | None) -> int:
     return min(4 << 20, max(512 << 10, l2_bytes // 4))
 
 
+# This machine's block, decided once at import (every scorer of the process shares it).
 KERNEL_BLOCK_BYTES = block_bytes_for(data_cache_bytes(2))
 # Larger expansions are evaluated in tiles of support vectors so that a chunk still holds this many
 # rows: each tile of the support matrix is then read once per MIN_CHUNK_ROWS rows, not once per

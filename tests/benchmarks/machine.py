@@ -3,7 +3,11 @@
 These are the ceilings against which the scorer's achieved rate is read: per
 (row, support vector) pair the scorer does one product term of length f + 2
 (2 (f + 2) floating-point operations in dgemm), one exp, and a few cheap
-passes over the kernel block.
+passes over the kernel block. The product and the exp are timed on arrays of the
+scorer's own kernel block (``model_store.kernel.KERNEL_BLOCK_BYTES``, sized by the
+core's cache), for each feature count of the plan: a larger array would measure
+the next cache level, a slower rate than the scorer meets, and the scorer would
+seem to beat its floor.
 """
 
 from __future__ import annotations
@@ -25,14 +29,17 @@ class MachineLimits:
     """Measured throughputs at one BLAS thread setting.
 
     dgemm_gflops:        square 1024 x 1024 x 1024 product, 1e9 flop/s
-    dgemm_thin_gflops:   the scorer's shape, (rows x (f + 2)) @ ((f + 2) x n_sv), 1e9 flop/s
-    exp_per_second:      np.exp in place on a 4 MiB float64 block, values per second
+    thin_gflops:         {features (as text): 1e9 flop/s} for the scorer's shape, (rows x (f + 2)) @
+                         ((f + 2) x 1,024 support vectors) into one kernel block
+    exp_per_second:      np.exp in place on one kernel block of float64, values per second
+    block_bytes:         that kernel block's size
     """
 
     threads: str
     dgemm_gflops: float
-    dgemm_thin_gflops: float
+    thin_gflops: dict[str, float]
     exp_per_second: float
+    block_bytes: int
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -50,18 +57,25 @@ def blas_threads(limit: int | None):
         yield
 
 
-def measure_limits(threads: int | None, budget: float = 1.0) -> MachineLimits:
+def measure_limits(threads: int | None, features: tuple[int, ...] = (10, 50), budget: float = 1.0) -> MachineLimits:
+    """The machine's rates at ``threads`` BLAS threads, the product for each of ``features``."""
+    from model_store.kernel import KERNEL_BLOCK_BYTES
+
     rng = np.random.default_rng(1)
+    columns = 1024  # one tile of support vectors; the block holds as many rows as fit
+    rows = max(2, KERNEL_BLOCK_BYTES // (8 * columns))
     with blas_threads(threads):
         square = rng.normal(size=(1024, 1024))
         out = np.empty_like(square)
         seconds = median_seconds(lambda: np.matmul(square, square, out=out), budget=budget)
         dgemm = 2 * 1024**3 / seconds / 1e9
-        thin_left, thin_right = rng.normal(size=(52, 12)), rng.normal(size=(12, 10_000))
-        thin_out = np.empty((52, 10_000))
-        seconds = median_seconds(lambda: np.matmul(thin_left, thin_right, out=thin_out), budget=budget)
-        thin = 2 * 52 * 12 * 10_000 / seconds / 1e9
-        block = -rng.random(size=(4 << 20) // 8)
+        thin = {}
+        block_out = np.empty((rows, columns))
+        for count in features:
+            left, right = rng.normal(size=(rows, count + 2)), rng.normal(size=(count + 2, columns))
+            seconds = median_seconds(lambda: np.matmul(left, right, out=block_out), budget=budget)
+            thin[str(count)] = 2 * rows * (count + 2) * columns / seconds / 1e9
+        block = -rng.random(size=rows * columns)
         work = np.empty_like(block)
 
         def exp_in_place():
@@ -73,8 +87,9 @@ def measure_limits(threads: int | None, budget: float = 1.0) -> MachineLimits:
     return MachineLimits(
         threads="1" if threads == 1 else f"default ({_default_threads()})",
         dgemm_gflops=dgemm,
-        dgemm_thin_gflops=thin,
+        thin_gflops=thin,
         exp_per_second=len(block) / seconds,
+        block_bytes=rows * columns * 8,
     )
 
 

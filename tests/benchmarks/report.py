@@ -162,10 +162,13 @@ def write_markdown(results: dict, path: Path) -> None:
     ]
     lines += [f"| {name} | {measured} | {'yes' if met else '**no**'} |" for name, measured, met in targets(results)]
     lines += ["", "## Machine limits (measured in this run)", "",
-              "| BLAS threads | dgemm 1024^3 (GFLOP/s) | dgemm, scorer's shape 52x12 @ 12x10000 (GFLOP/s) | np.exp (1e9 values/s) |",
+              "| BLAS threads | dgemm 1024^3 (GFLOP/s) | dgemm, scorer's shape (rows x (f + 2)) @ ((f + 2) x 1,024), "
+              "one kernel block (GFLOP/s) | np.exp on one kernel block (1e9 values/s) |",
               "| --- | --- | --- | --- |"]
     for limit in results["limits"].values():
-        lines.append(f"| {limit['threads']} | {limit['dgemm_gflops']:.1f} | {limit['dgemm_thin_gflops']:.1f} | "
+        thin = ", ".join(f"{rate:.1f} (f = {count})" for count, rate in _thin_rates(limit).items())
+        block = f", block {limit['block_bytes'] >> 10} KiB" if "block_bytes" in limit else ""
+        lines.append(f"| {limit['threads']} | {limit['dgemm_gflops']:.1f} | {thin}{block} | "
                      f"{limit['exp_per_second'] / 1e9:.2f} |")
     if results.get("scorer"):
         lines += ["", "## Scorer: scikit-learn `decision_function` vs rbfgate `load_bundle(...).score(X)`", "",
@@ -368,3 +371,8 @@ def _time(seconds: float) -> str:
     if seconds >= 1e-3:
         return f"{seconds * 1e3:.2f} ms"
     return f"{seconds * 1e6:.0f} µs"
+
+
+def _thin_rates(limit: dict) -> dict[str, float]:
+    """{features: GFLOP/s} of the scorer's product; results from before per-feature rates had one, f = 10."""
+    return limit.get("thin_gflops") or {"10": limit["dgemm_thin_gflops"]}

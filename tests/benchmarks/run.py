@@ -63,11 +63,13 @@ def run(out: Path, plan: Plan, parts: tuple[str, ...] = _PARTS, log=print) -> di
     load_at_start = os.getloadavg()[0]
     log("machine and its limits (BLAS dgemm, numpy exp) ...")
     results["machine"] = describe_machine()
-    limits = {"1": measure_limits(1), "default": measure_limits(None)}
+    feature_counts = tuple(sorted({count for _, count in plan.models})) or (10,)
+    limits = {"1": measure_limits(1, feature_counts), "default": measure_limits(None, feature_counts)}
     results["limits"] = {key: value.to_dict() for key, value in limits.items()}
     for value in limits.values():
-        log(f"  {value.threads} thread(s): dgemm {value.dgemm_gflops:.1f} GFLOP/s (square), "
-            f"{value.dgemm_thin_gflops:.1f} GFLOP/s (scorer's shape), exp {value.exp_per_second / 1e9:.2f} G/s")
+        thin = ", ".join(f"{rate:.1f} (f = {count})" for count, rate in value.thin_gflops.items())
+        log(f"  {value.threads} thread(s): dgemm {value.dgemm_gflops:.1f} GFLOP/s (square), {thin} GFLOP/s "
+            f"(scorer's shape), exp {value.exp_per_second / 1e9:.2f} G/s, block {value.block_bytes >> 10} KiB")
     with tempfile.TemporaryDirectory(prefix="rbfgate-bench-") as work:
         workdir = Path(work)
         if "scorer" in parts:

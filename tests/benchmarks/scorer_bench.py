@@ -101,7 +101,7 @@ def bench_model(model: CachedModel, batch_sizes: list[int], limits_1thread: Mach
         sklearn_seconds, one_seconds, default_seconds = sklearn_time.wall, one_time.wall, default_time.wall
         error = max(_tolerance_used(outputs[1], reference), _tolerance_used(outputs[None], reference))
         pairs = size * model.n_support
-        floor = pairs * (2 * (model.features + 2) / (limits_1thread.dgemm_thin_gflops * 1e9)
+        floor = pairs * (2 * (model.features + 2) / (limits_1thread.thin_gflops[str(model.features)] * 1e9)
                          + 1 / limits_1thread.exp_per_second)
         result = ScorerResult(
             n_support=model.n_support,
