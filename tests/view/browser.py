@@ -1,6 +1,7 @@
 """Headless Chromium (Debian's ``chromium`` package) driven by Playwright, for the page tests.
 
-Playwright uses the installed browser (``executable_path``); it never downloads one. The flags
+Playwright uses the installed browser (``executable_path``); it never downloads one. Without it
+the page tests are skipped, except in CI, where they fail (``require_chromium``). The flags
 are the ones this machine needs (/work/.library/env/machines/python.md): no sandbox as root, no
 GPU, and no background networking, whose connections the closed network would refuse. Each
 browser gets a fresh profile folder under the test's tmp_path.
@@ -11,14 +12,16 @@ requests, and asserts there were none.
 
 from __future__ import annotations
 
+import os
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import pytest
 from playwright.sync_api import BrowserContext, Page, sync_playwright
 
-__all__ = ["CHROMIUM", "PHONE", "Tab", "chromium", "drawn_marks"]
+__all__ = ["CHROMIUM", "PHONE", "Tab", "chromium", "drawn_marks", "require_chromium"]
 
 CHROMIUM = "/usr/bin/chromium"
 _FLAGS = [
@@ -30,9 +33,23 @@ PHONE = {"width": 390, "height": 844}
 _READY_MS = 30_000
 
 
+def require_chromium() -> None:
+    """Skip the calling test when Debian's Chromium is not installed, except in CI (``CI=true``),
+    where .ci/run installs it and its absence fails the test (as the scale-out test does for nginx)."""
+    if os.access(CHROMIUM, os.X_OK):
+        return
+    reason = (f"headless Chromium is not installed at {CHROMIUM} (apt-get install chromium); "
+              "the page tests drive it")
+    if os.environ.get("CI") == "true":
+        pytest.fail(f"{reason}; in CI it must run (.ci/run installs it)")
+    pytest.skip(reason)
+
+
 @contextmanager
 def chromium(profile: Path, *, viewport=LAPTOP, offline: bool = False) -> Iterator[BrowserContext]:
-    """A browser with a fresh profile in ``profile``; ``offline`` blocks every network request."""
+    """A browser with a fresh profile in ``profile``; ``offline`` blocks every network request.
+    Skips the test when Chromium is missing (``require_chromium``)."""
+    require_chromium()
     with sync_playwright() as playwright:
         context = playwright.chromium.launch_persistent_context(
             str(profile), executable_path=CHROMIUM, args=_FLAGS, headless=True, viewport=viewport,
