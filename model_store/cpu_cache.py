@@ -17,7 +17,7 @@ from pathlib import Path
 __all__ = ["CPU0_CACHES", "data_cache_bytes"]
 
 CPU0_CACHES = Path("/sys/devices/system/cpu/cpu0/cache")
-_SIZE = re.compile(r"(\d+)([KMG]?)")
+_SIZE = re.compile(r"([0-9]{1,12})([KMG]?)")  # ASCII digits only, a bounded count
 _UNITS = {"": 1, "K": 1 << 10, "M": 1 << 20, "G": 1 << 30}
 
 
@@ -26,11 +26,11 @@ def data_cache_bytes(level: int, caches: Path = CPU0_CACHES) -> int | None:
     try:
         entries = sorted(caches.glob("index*"))
         for entry in entries:
-            if (entry / "level").read_text().strip() != str(level):
+            if _read(entry / "level") != str(level):
                 continue
-            if (entry / "type").read_text().strip() not in ("Data", "Unified"):
+            if _read(entry / "type") not in ("Data", "Unified"):
                 continue
-            size = _SIZE.fullmatch((entry / "size").read_text().strip())
+            size = _SIZE.fullmatch(_read(entry / "size"))
             if size is None:
                 return None
             found = int(size.group(1)) * _UNITS[size.group(2)]
@@ -38,3 +38,7 @@ def data_cache_bytes(level: int, caches: Path = CPU0_CACHES) -> int | None:
     except (OSError, UnicodeDecodeError):
         return None
     return None
+
+
+def _read(path: Path) -> str:
+    return path.read_text(encoding="ascii").strip()  # sysfs attributes are short ASCII text

@@ -42,8 +42,9 @@ def block_bytes_for(l2_bytes: int | None) -> int:
     """The kernel block's size for a core with ``l2_bytes`` of L2 cache: a quarter of it, within
     512 KiB and 4 MiB; 1 MiB when the size is unknown.
 
-    The block is passed over five times (exponent, argmax, clamp, exp, product), so it should stay in
-    the core's own cache beside the operands it meets there (common practice in blocked kernels).
+    The block is passed over up to five times (exponent, argmax, clamp when an exponent is positive,
+    exp, product), so it should stay in the core's own cache beside the operands it meets there
+    (common practice in blocked kernels; we did not read cache-miss counters).
     Measured on an Intel Xeon with 2 MB of L2 per core (2026-12-03, 10,000 rows, one BLAS thread,
     tests/benchmarks models), 512 KiB against the 4 MiB used before: 989 x 10 25.5 -> 20.1 ms,
     9,793 x 10 217 -> 174 ms, 49,966 x 10 1,037 -> 767 ms, 953 x 50 41.5 -> 38.4 ms, 9,792 x 50
@@ -253,8 +254,9 @@ _THREAD_WORKSPACE = threading.local()
 def workspace(rows: int, columns: int, width: int) -> tuple[np.ndarray, np.ndarray]:
     """This thread's kernel block (rows, columns) and row operand (rows, width), reused across calls.
 
-    A fresh 4 MB block per call costs page faults whenever glibc has given the memory back
-    (measured: 10,000 rows x 953 x 50 scored in 54 ms with fresh arrays, 46 ms without the faults).
+    A fresh block per call cost page faults whenever glibc had given the memory back (measured with
+    the 4 MiB block of the time: 10,000 rows x 953 x 50 scored in 54 ms with fresh arrays, 46 ms
+    without the faults).
     Per thread, so concurrent scoring threads never share one; each holds at most one block of
     KERNEL_BLOCK_BYTES (more only for an expansion built with a larger ``block_bytes``) and one row
     operand of MAX_CHUNK_ROWS x (f + 2) floats for the widest bundle it scored. The scorer also

@@ -94,7 +94,7 @@ def measure_limits(threads: int | None, features: tuple[int, ...] = (10, 50), bu
 
 
 def describe_machine() -> dict:
-    """CPU model, core count, memory, library versions and the BLAS in use."""
+    """CPU model, core count, one core's L2 cache (None when unknown), memory, library versions and the BLAS in use."""
     import sklearn
     from threadpoolctl import threadpool_info
 
@@ -116,9 +116,12 @@ def describe_machine() -> dict:
     blas = [f"{entry.get('internal_api')} {entry.get('version')} ({entry.get('architecture')}, "
             f"{entry.get('num_threads')} threads) for {entry.get('prefix')}"
             for entry in threadpool_info() if entry.get("user_api") == "blas"]
+    from model_store.cpu_cache import data_cache_bytes
+
     return {
         "cpu": cpu,
         "cores": os.cpu_count(),
+        "l2_cache_bytes": data_cache_bytes(2),
         "memory_gib": memory,
         "python": platform.python_version(),
         "numpy": np.__version__,

@@ -216,14 +216,16 @@ def _limits(results: dict) -> list[str]:
             f"most of it input validation. With {biggest['n_support']:,} support vectors x {biggest['features']} "
             "features both read every support vector for each row, so reading memory takes a large share of "
             f"either's time (x{biggest['ratio_1thread']:.1f}; the lines below give rbfgate's share of that floor).")
-    lines += _single_row_limits(single, results.get("limits", {}).get("1", {}).get("exp_per_second"))
+    lines += _single_row_limits(single, results.get("limits", {}).get("1", {}).get("exp_per_second"),
+                                results.get("machine", {}).get("l2_cache_bytes"))
     lines += _service_limits(results.get("service", []), results)
     return lines
 
 
-def _single_row_limits(single: list[dict], exp_rate: float | None = None) -> list[str]:
+def _single_row_limits(single: list[dict], exp_rate: float | None = None, l2_bytes: int | None = None) -> list[str]:
     """One line per single-row target missed, naming the limit with its measured share;
-    ``exp_rate`` is the one-thread np.exp rate measured in the same run (values per second)."""
+    ``exp_rate`` is the one-thread np.exp rate measured in the same run (values per second),
+    ``l2_bytes`` one core's L2 cache on that machine (None when the run did not record it)."""
     lines = []
     for case in single:
         if not case.get("stream_seconds"):
@@ -248,9 +250,18 @@ def _single_row_limits(single: list[dict], exp_rate: float | None = None) -> lis
                 f"({exp_ms:.2f} ms at the measured `exp` rate), reads the augmented matrix (f + 2 columns) in one "
                 "gemv, passes over the kernel values for the nearest support vector and the decision, and adds "
                 "the domain model's own expansion; a row at a near tie of the nearest support vector is scored "
-                "again by the batch arithmetic. A matrix larger than the core's cache leaves the few dozen numpy "
-                "calls around the gemv to run on a cold cache (measured below the figures).")
+                "again by the batch arithmetic." + _cold_cache(case, l2_bytes))
     return lines
+
+
+def _cold_cache(case: dict, l2_bytes: int | None) -> str:
+    """The cold-cache sentence of a missed single-row floor, when the gemv's matrix is larger than L2."""
+    streamed = case["support_bytes"] * (case["features"] + 2) / case["features"]  # the augmented matrix
+    if not l2_bytes or streamed <= l2_bytes:
+        return ""
+    return (f" The gemv streams {streamed / 1e6:.1f} MB through a core whose L2 cache holds "
+            f"{l2_bytes / 2**20:g} MiB, so the few dozen numpy calls around it run on a cold cache "
+            "(measured below the figures).")
 
 
 def _service_limits(service: list[dict], results: dict) -> list[str]:

@@ -4,7 +4,8 @@ In the default suite (not marked ``benchmark``): it reads tests/benchmarks/resul
 compares the README's generated block with what tests/benchmarks/readme_figures.py makes of it. The
 other tests add rbfgate column-form rows to those results and check that the 1,000-record targets
 are judged on them and that every column-form figure reaches the block (so the comparison covers them);
-the last three check that a missed service target is named, with its measure, in the limits lines.
+three check that a missed service target is named, with its measure, in the limits lines; the last
+two check the cold-cache sentence of a missed single-row floor and the machine-limits heading.
 """
 
 from __future__ import annotations
@@ -152,3 +153,37 @@ def test_results_from_before_the_column_form_name_their_missed_targets_too():
     big["cpu_ms_per_request"] = BATCH_CPU_MS + 1.25
     [line] = _limit_lines(figures_block(results), f"Service, {BATCH_RECORDS:,} records")
     assert line.startswith(f"- Missed: <= {BATCH_CPU_MS:g} ms of server CPU per request ({BATCH_CPU_MS + 1.25:.2f} ms)")
+
+
+def _with_l2(results: dict, l2_bytes: int | None) -> dict:
+    results = copy.deepcopy(results)
+    results["machine"]["l2_cache_bytes"] = l2_bytes
+    return results
+
+
+def test_a_missed_single_row_floor_names_the_cold_cache_only_when_the_matrix_exceeds_l2():
+    # The committed run misses the 9,792 x 50 floor (3.9 MB of support vectors, 4.1 MB streamed):
+    # with a 2 MiB L2 the line says the numpy calls run on a cold cache; with 8 MiB, or an L2 the
+    # run did not record, it says nothing about the cache.
+    results = json.loads(RESULTS.read_text(encoding="utf-8"))
+    missed = [line for line in figures_block(results).splitlines() if line.startswith("- Missed: single row at")]
+    if not missed:
+        return  # a run that met every single-row floor has no line to check
+    assert "cold cache" in figures_block(_with_l2(results, 2 << 20))
+    assert "cold cache" not in figures_block(_with_l2(results, 64 << 20))
+    assert "cold cache" not in figures_block(_with_l2(results, None))
+
+
+def test_the_machine_limits_heading_names_the_shapes_the_results_were_measured_on(tmp_path):
+    from .report import write_markdown
+
+    results = json.loads(RESULTS.read_text(encoding="utf-8"))
+    write_markdown(results, tmp_path / "now.md")
+    assert "one kernel block" in (tmp_path / "now.md").read_text(encoding="utf-8")
+    older = copy.deepcopy(results)  # the limits as runs before the per-block rates wrote them
+    for limit in older["limits"].values():
+        limit.pop("block_bytes")
+        limit["dgemm_thin_gflops"] = limit.pop("thin_gflops")["10"]
+    write_markdown(older, tmp_path / "older.md")
+    rendered = (tmp_path / "older.md").read_text(encoding="utf-8")
+    assert "52x12 @ 12x10000" in rendered and "one kernel block" not in rendered

@@ -14,7 +14,7 @@ from pathlib import Path
 import pytest
 
 from model_store.cpu_cache import data_cache_bytes
-from model_store.kernel import KERNEL_BLOCK_BYTES, block_bytes_for
+from model_store.kernel import block_bytes_for
 
 
 def _caches(root: Path, entries: list[tuple[str, str, str]]) -> Path:
@@ -45,10 +45,19 @@ def test_a_size_in_megabytes_is_read(tmp_path):
     assert data_cache_bytes(2, _caches(tmp_path, [("2", "Unified", "1M")])) == 1 << 20
 
 
-@pytest.mark.parametrize("entries", [[], [("1", "Data", "48K")], [("2", "Unified", "two megabytes")],
-                                     [("2", "Unified", "0K")]])
+@pytest.mark.parametrize("entries", [
+    [], [("1", "Data", "48K")], [("2", "Unified", "two megabytes")], [("2", "Unified", "0K")],
+    [("2", "Unified", "9" * 5000 + "K")],       # past Python's int digit limit: must not raise
+    [("2", "Unified", "\u0662\u0660\u0664\u0668K")],  # Arabic-Indic digits: not what the kernel writes
+])
 def test_an_unreadable_or_missing_level_2_is_unknown(tmp_path, entries):
     assert data_cache_bytes(2, _caches(tmp_path, entries)) is None
+
+
+def test_a_size_file_that_is_not_text_is_unknown(tmp_path):
+    caches = _caches(tmp_path, [("2", "Unified", "2048K")])
+    (caches / "index0" / "size").write_bytes(b"\xff\xfe2048K")
+    assert data_cache_bytes(2, caches) is None
 
 
 def test_no_cache_folder_at_all_is_unknown(tmp_path):
@@ -64,7 +73,3 @@ def test_no_cache_folder_at_all_is_unknown(tmp_path):
 ])
 def test_the_block_is_a_quarter_of_l2_within_its_bounds(l2_bytes, block):
     assert block_bytes_for(l2_bytes) == block
-
-
-def test_the_scorer_uses_the_block_of_this_machine():
-    assert KERNEL_BLOCK_BYTES == block_bytes_for(data_cache_bytes(2))

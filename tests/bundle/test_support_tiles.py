@@ -71,3 +71,41 @@ def test_a_tie_between_tiles_keeps_the_earlier_support_vector(cancer_standard, m
     tiled = scorer.score(np.vstack([raw, raw]))
     assert whole.nearest_index.tolist() == [first, first]
     assert tiled.nearest_index.tolist() == [first, first]
+
+
+def test_more_than_1024_support_vectors_at_the_smallest_block_give_the_same_scores(tmp_path, monkeypatch):
+    # The smallest kernel block the machine rule gives (512 KiB, model_store.kernel.block_bytes_for)
+    # tiles every bundle of more than 1,024 support vectors: a real one here, not a shrunken tile.
+    # digits, all ten classes (E. Alpaydin, C. Kaynak, UCI; scikit-learn's load_digits): with
+    # C = 1e-3 nearly every row is a support vector. Reference: one tile (a block large enough for
+    # all of them) and scikit-learn's decision_function.
+    from sklearn.datasets import load_digits
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+    from sklearn.svm import SVC
+
+    from conftest import export_model
+    from model_store.kernel import KernelExpansion
+
+    X, y = load_digits(return_X_y=True)
+    model = make_pipeline(StandardScaler(), SVC(C=1e-3)).fit(X, y)
+    bundle = export_model(model, X, tmp_path / "bundle", y=y, name="digits-all")
+    kernel = bundle.scorer.kernel
+    assert len(kernel.support_vectors) > 1024
+    smallest = KernelExpansion(kernel.support_vectors, kernel.coef, kernel.gamma, 512 << 10)
+    one_tile = KernelExpansion(kernel.support_vectors, kernel.coef, kernel.gamma, 64 << 20)
+    assert (smallest.support_per_tile, smallest.rows_per_chunk) == (1024, 64)
+    assert one_tile.support_per_tile == len(kernel.support_vectors)
+    rows = np.vstack([X, probe_rows(X, seed=11)])
+    monkeypatch.setattr(bundle.scorer, "kernel", one_tile)
+    whole = bundle.score(rows)
+    monkeypatch.setattr(bundle.scorer, "kernel", smallest)
+    for size in (7, 100, len(rows)):
+        parts = [bundle.score(rows[start:start + size]) for start in range(0, len(rows), size)]
+        for field in EXACT:
+            got = np.concatenate([getattr(part, field) for part in parts])
+            assert np.array_equal(got, getattr(whole, field)), (size, field)
+        decision = np.concatenate([part.decision for part in parts])
+        assert_close(decision, whole.decision, f"decision, batches of {size}", tolerance=BATCH_TOLERANCE)
+    decision, _ = sklearn_decisions(model, rows)
+    assert_close(np.concatenate([part.decision for part in parts]), decision, "decision, tiles vs scikit-learn")
