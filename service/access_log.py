@@ -16,14 +16,9 @@ them itself in that case.
 
 from __future__ import annotations
 
-import json
-import sys
-import threading
 import time
 from collections.abc import Callable
-from typing import Any, TextIO
-
-import orjson
+from typing import Any
 
 from starlette.requests import Request
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
@@ -31,28 +26,9 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 from service.metrics import ServiceMetrics
 from service.request_ids import request_id
 
-__all__ = ["AccessLogMiddleware", "JsonLines", "request_note"]
+__all__ = ["AccessLogMiddleware", "request_note"]
 
 _NOTE_KEY = "rbfgate_note"
-
-
-class JsonLines:
-    """Writes each event as one JSON line to ``stream`` (stdout by default), whole lines only."""
-
-    def __init__(self, stream: TextIO | None = None) -> None:
-        self._stream = stream
-        self._lock = threading.Lock()
-
-    def __call__(self, event: dict[str, Any]) -> None:
-        document = {"time": _now(), **event}
-        try:  # orjson: a few microseconds per line instead of tens (the line is written on every request)
-            line = orjson.dumps(document, default=str).decode("utf-8") + "\n"
-        except TypeError:  # an integer past 64 bits (a logged input value, say): the json module writes it
-            line = json.dumps(document, ensure_ascii=False, default=str, allow_nan=False) + "\n"
-        stream = self._stream or sys.stdout
-        with self._lock:
-            stream.write(line)
-            stream.flush()
 
 
 def request_note(request: Request) -> dict[str, Any]:
@@ -104,19 +80,3 @@ class AccessLogMiddleware:
 
 def _short(text: str, limit: int = 200) -> str:
     return text if len(text) <= limit else text[:limit] + "..."
-
-
-# The last whole second and its text, one tuple read and replaced at once (threads log too):
-# strftime runs once per second rather than once per line.
-_second_text = (-1, "")
-
-
-def _now() -> str:
-    """RFC 3339 UTC time with microseconds, ``2026-01-02T03:04:05.123456Z``."""
-    global _second_text
-    now = time.time()
-    second = int(now)
-    cached = _second_text
-    if cached[0] != second:
-        cached = _second_text = (second, time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(second)))
-    return f"{cached[1]}.{int((now - second) * 1e6):06d}Z"

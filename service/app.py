@@ -22,12 +22,13 @@ from fastapi.routing import APIRoute
 from starlette.concurrency import run_in_threadpool
 
 from model_store.store import Store
-from service.access_log import AccessLogMiddleware, JsonLines
+from service.access_log import AccessLogMiddleware
 from service.admission import ScoringGate
 from service.auth import ACCESS_RULES, Authenticator, access_check
 from service.context import Services
 from service.health_routes import add_health_routes
 from service.http_limits import HeaderSizeLimit
+from service.log_lines import JsonLines
 from service.metrics import ServiceMetrics
 from service.model_routes import add_model_routes
 from service.openapi import add_openapi_route
@@ -96,6 +97,7 @@ def create_app(
                 poller.stop()
             gate.close()
             metrics.worker_exited()
+            _flush(write_log)
 
     app = FastAPI(
         title="rbfgate",
@@ -120,6 +122,13 @@ def create_app(
     app.add_middleware(RequestIdMiddleware)  # outermost: every answer the app gives carries X-Request-ID
     app.state.services = services
     return app
+
+
+def _flush(write_log: Callable[[dict[str, Any]], None]) -> None:
+    """Write what a write-behind log sink (``service.log_lines``) still holds; other sinks have nothing pending."""
+    flush = getattr(write_log, "flush", None)
+    if callable(flush):
+        flush()
 
 
 def poll_deadline(poll_seconds: float) -> float:

@@ -7,6 +7,13 @@ values to files there and ``/metrics`` on any worker aggregates all of them
 (prometheus-client's multiprocess mode). Gauges use the ``livemax`` mode: a
 version shows as active while any live worker serves it.
 
+Requests are counted behind their answers: each one is noted (an append), and a writer thread
+counts the notes together at most ``COUNT_SECONDS`` later (``service.write_behind``), one update
+per series touched. ``/metrics`` and the traffic totals count this worker's notes first, so a
+worker reports every request it has answered; another worker's last ``COUNT_SECONDS`` may be
+missing from one scrape and appear in the next. A worker that stops normally counts its notes
+before it goes.
+
 Files in that directory that cannot be read (truncated by a full disk, damaged,
 or put there by something else) are left out of ``/metrics`` and named once in
 the log, so that one bad file never turns the whole answer into a 500: the
@@ -33,7 +40,9 @@ from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, Counter, G
 from prometheus_client import multiprocess
 from prometheus_client.mmap_dict import MmapedDict
 
-__all__ = ["DISTANCE_BUCKETS", "TRAFFIC_KEYS", "ServiceMetrics", "observe_many"]
+from service.write_behind import WriteBehind
+
+__all__ = ["COUNT_SECONDS", "DISTANCE_BUCKETS", "TRAFFIC_KEYS", "ServiceMetrics", "observe_many"]
 
 _LATENCY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)
 # Distances live in the scaled space, where one unit is about one training
@@ -44,12 +53,16 @@ TRAFFIC_KEYS = ("requests", "scored", "refused", "typical", "unusual", "outside"
 _METHODS = frozenset({"GET", "POST", "PUT", "PATCH", "DELETE", "HEAD", "OPTIONS"})
 _FILE_KINDS = frozenset({"counter", "gauge", "histogram", "summary"})  # prometheus-client's file name prefixes
 _log = logging.getLogger("rbfgate.service")
+# How late a request may be counted: /metrics on the same worker counts everything first; another
+# worker's last 0.05 s of requests may be missing from one scrape (Prometheus scrapes every 15 s or so).
+COUNT_SECONDS = 0.05
+_REQUEST, _SCORING = "request", "scoring"
 
 
 class ServiceMetrics:
     """All metrics of one app. ``multiprocess_dir`` switches on multiprocess mode."""
 
-    def __init__(self, multiprocess_dir: str | None = None) -> None:
+    def __init__(self, multiprocess_dir: str | None = None, flush_seconds: float = COUNT_SECONDS) -> None:
         self.multiprocess_dir = multiprocess_dir
         self._files = None if multiprocess_dir is None else _ReadableFiles(multiprocess_dir)
         self._registry = CollectorRegistry()
@@ -105,11 +118,13 @@ class ServiceMetrics:
             ["model", "version"], registry=registry,
         )
         self._children: dict[tuple, object] = {}
+        # Requests are counted behind their answers (service.write_behind): per request an append,
+        # not a dozen locked updates (in multiprocess mode each one a write to a shared file).
+        self._batch = WriteBehind(self._count, seconds=flush_seconds, name="rbfgate-metrics")
 
     def observe_request(self, route: str, method: str, status: int, seconds: float) -> None:
-        method = method if method in _METHODS else "other"
-        self._child(self.http_requests, route, method, str(status)).inc()
-        self._child(self.latency, route).observe(seconds)
+        """One HTTP request: its route template, method, status and duration."""
+        self._batch.add((_REQUEST, route, method, status, seconds))
 
     def observe_scoring(
         self,
@@ -123,21 +138,50 @@ class ServiceMetrics:
         percentiles: np.ndarray,
         verdicts: np.ndarray = np.empty(0),
     ) -> None:
-        """One scoring request: counts, (feature, reason) of each problem, (n,) distances, percentiles and verdicts."""
-        outcome = "refused" if scored == 0 else ("partial" if refused else "scored")
-        self._child(self.score_requests, model, version, outcome).inc()
-        if scored:
-            self._child(self.records, model, version, "scored").inc(scored)
-        if refused:
-            self._child(self.records, model, version, "refused").inc(refused)
-        for (feature, reason), count in _Tally(problems).items():
-            self._child(self.refusals, model, version, feature, reason).inc(count)
-        observe_many(self._child(self.distance, model, version), distances)
-        observe_many(self._child(self.percentile, model, version), percentiles)
-        if len(verdicts):
+        """One scoring request: counts, (feature, reason) of each problem, (n,) distances, percentiles and
+        verdicts. The arrays are kept until the batch is counted: the caller must not change them."""
+        self._batch.add((_SCORING, model, version, scored, refused, list(problems), distances, percentiles, verdicts))
+
+    def flush(self) -> None:
+        """Count every observation made so far (``render``, ``traffic`` and shutdown do this first)."""
+        self._batch.flush()
+
+    def _count(self, observations: list[tuple]) -> None:
+        """Count a batch of observations: one update per series it touches, not one per request."""
+        requests: _Tally = _Tally()
+        latencies: dict[str, list[float]] = {}
+        tallies: _Tally = _Tally()  # (metric, labels) -> amount
+        distances: dict[tuple[str, str], list[np.ndarray]] = {}
+        percentiles: dict[tuple[str, str], list[np.ndarray]] = {}
+        for observation in observations:
+            if observation[0] is _REQUEST:
+                _, route, method, status, seconds = observation
+                requests[route, method if method in _METHODS else "other", str(status)] += 1
+                latencies.setdefault(route, []).append(seconds)
+                continue
+            _, model, version, scored, refused, problems, distance, percentile, verdicts = observation
+            tallies[self.score_requests, (model, version, "refused" if scored == 0 else
+                                          "partial" if refused else "scored")] += 1
+            if scored:
+                tallies[self.records, (model, version, "scored")] += scored
+            if refused:
+                tallies[self.records, (model, version, "refused")] += refused
+            for (feature, reason), count in _Tally(problems).items():
+                tallies[self.refusals, (model, version, feature, reason)] += count
+            distances.setdefault((model, version), []).append(distance)
+            percentiles.setdefault((model, version), []).append(percentile)
             # Verdicts are the three fixed words of model_store.domain, never request text.
             for verdict, count in _Tally(verdicts.tolist()).items():
-                self._child(self.domain_verdicts, model, version, str(verdict)).inc(count)
+                tallies[self.domain_verdicts, (model, version, str(verdict))] += count
+        for labels, count in requests.items():
+            self._child(self.http_requests, *labels).inc(count)
+        for route, seconds in latencies.items():
+            observe_many(self._child(self.latency, route), np.array(seconds))
+        for (metric, labels), amount in tallies.items():
+            self._child(metric, *labels).inc(amount)
+        for histogram, arrays in ((self.distance, distances), (self.percentile, percentiles)):
+            for labels, parts in arrays.items():
+                observe_many(self._child(histogram, *labels), np.concatenate(parts))
 
     def _child(self, metric, *labels: str):
         """``metric.labels(*labels)``, remembered: label values come from a bounded set (module docstring),
@@ -181,12 +225,14 @@ class ServiceMetrics:
         return totals
 
     def _collected(self):
+        self.flush()
         if self.multiprocess_dir is None:
             return self._registry.collect()
         return self._files.collect()
 
     def render(self) -> tuple[bytes, str]:
         """The exposition text and its content type."""
+        self.flush()
         if self.multiprocess_dir is None:
             return generate_latest(self._registry), CONTENT_TYPE_LATEST
         _forget_dead_workers(self.multiprocess_dir)
@@ -195,7 +241,8 @@ class ServiceMetrics:
         return generate_latest(registry), CONTENT_TYPE_LATEST
 
     def worker_exited(self) -> None:
-        """Drop this worker's live gauges (multiprocess mode only)."""
+        """Count what is pending, then drop this worker's live gauges (multiprocess mode only)."""
+        self.flush()
         if self.multiprocess_dir is not None:
             multiprocess.mark_process_dead(os.getpid(), path=self.multiprocess_dir)
 

@@ -13,6 +13,7 @@ from __future__ import annotations
 import ast
 import hashlib
 import hmac
+import http.client
 import inspect
 import json
 import socket
@@ -135,6 +136,50 @@ def test_a_body_sent_too_slowly_is_dropped_and_logged_as_408(guarded_server):
             trickler.join(30)
     assert server.wait_for_log(lambda event: event.get("status") == 408 and event.get("route") == "/score/{model}")
     assert not server.wait_for_log(lambda event: event.get("status", 0) >= 500, timeout=0)
+
+
+def _score_on(connection: http.client.HTTPConnection) -> int:
+    connection.request("POST", "/score/iris", body=json.dumps({"records": [GOOD_RECORD]}),
+                       headers={"Content-Type": "application/json"})
+    response = connection.getresponse()
+    response.read()
+    return response.status
+
+
+def test_a_keep_alive_connection_that_keeps_asking_outlives_the_read_timeout(guarded_server):
+    # One timer per connection, moved lazily (service.http_limits): when it fires for a wait that a
+    # later request began, it must set itself again, not close a connection that is on time.
+    connection = http.client.HTTPConnection("127.0.0.1", guarded_server.port, timeout=10)
+    try:
+        assert _score_on(connection) == 200
+        first = connection.sock
+        started = time.monotonic()
+        while time.monotonic() - started < 3 * _READ_TIMEOUT:
+            time.sleep(0.4)
+            assert _score_on(connection) == 200
+            assert connection.sock is first  # the same connection throughout, never reopened
+    finally:
+        connection.close()
+
+
+def test_the_wait_for_the_next_request_counts_from_the_previous_response(guarded_server):
+    with socket.create_connection(("127.0.0.1", guarded_server.port), timeout=10) as sock:
+        time.sleep(0.75 * _READ_TIMEOUT)  # most of the first wait gone before the first request
+        body = json.dumps({"records": [GOOD_RECORD]}).encode()
+        sock.sendall(b"POST /score/iris HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\n"
+                     b"Content-Length: " + str(len(body)).encode() + b"\r\n\r\n" + body)
+        answer = b""
+        while b"\r\n\r\n" not in answer or not answer.rstrip().endswith(b"}"):
+            answer += sock.recv(65536)
+        answered = time.monotonic()
+        assert answer.startswith(b"HTTP/1.1 200")
+        sock.sendall(b"POST /score/iris HTTP/1.1\r\nHost: 127.0.0.1\r\n")  # the next request, never finished
+        while not _closed_by_server(sock) and time.monotonic() - answered < 5 * _READ_TIMEOUT:
+            time.sleep(0.05)
+        closed_after = time.monotonic() - answered
+    # The first wait's deadline passed 0.25 x the timeout after the answer; the second one's is a whole
+    # timeout after it (timer granularity and a shared machine allow the margin above).
+    assert 0.75 * _READ_TIMEOUT <= closed_after <= 2.5 * _READ_TIMEOUT, closed_after
 
 
 @pytest.mark.parametrize(("header_bytes", "accepted"), [(8 * 1024, True), (64 * 1024, False), (1024 * 1024, False)])

@@ -90,6 +90,25 @@ def test_column_checks_give_the_per_value_answer(records, ids, extra):
     _same(fast, check_records(_FEATURES, records, _slow, ids=ids, allow_extra=extra))
 
 
+@_SETTINGS
+@given(record=_record(), ids=st.booleans(), extra=st.booleans())
+def test_the_one_record_check_gives_the_per_value_answer(record, ids, extra):
+    # One record: plain ones in a few C-level calls (record_columns.plain_record), the rest by the rules.
+    fast = check_records(_FEATURES, [record], from_json, ids=ids, allow_extra=extra)
+    _same(fast, check_records(_FEATURES, [record], _slow, ids=ids, allow_extra=extra))
+
+
+@pytest.mark.parametrize("record", [
+    {"a": 0.5, "b": 7, "c": -3.25e300},
+    {"a": -1.0, "b": 100, "c": 1.7976931348623157e308},  # every bound, reached exactly
+    {"a": -0.0, "b": 0, "c": 5e-324},
+], ids=["inside", "on the bounds", "signed zero and the smallest subnormal"])
+def test_a_plain_record_is_accepted_as_its_floats(record):
+    checked = check_records(_FEATURES, [record], from_json, ids=True)
+    assert checked.accepted.tolist() == [0] and not checked.problems and checked.ids == [None]
+    assert checked.values.tobytes() == np.array([[float(record[name]) for name in "abc"]]).tobytes()
+
+
 def test_a_plain_batch_is_accepted_whole_by_the_column_checks():
     records = [{"a": 0.5, "b": 7, "c": -3.25e300, "id": index} for index in range(50)]
     checked = check_records(_FEATURES, records, from_json, ids=True)

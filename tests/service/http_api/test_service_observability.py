@@ -132,12 +132,13 @@ def test_fastapi_own_opentelemetry_export_stays_off_when_a_provider_is_set_up(ma
 def test_log_lines_are_json_objects_one_per_line():
     import io
 
-    from service.access_log import JsonLines
+    from service.log_lines import JsonLines
 
     stream = io.StringIO()
     write = JsonLines(stream)
     write({"event": "request", "status": 200})
     write({"event": "switch", "model": "iris"})
+    write.flush()
     lines = stream.getvalue().splitlines()
     assert [json.loads(line)["event"] for line in lines] == ["request", "switch"]  # RFC 8259 objects
     assert all(json.loads(line)["time"].endswith("Z") for line in lines)  # RFC 3339 UTC timestamps
