@@ -93,11 +93,15 @@ def create_app(
         try:
             yield
         finally:
-            for poller in pollers:
-                poller.stop()
-            gate.close()
-            metrics.worker_exited()
-            _flush(write_log)
+            try:
+                for poller in pollers:
+                    poller.stop()
+                gate.close()
+                metrics.worker_exited()
+            finally:
+                # uvicorn ends a signalled worker by re-raising the signal, so atexit never runs:
+                # this is where a worker stopped by SIGTERM or Ctrl-C writes its pending log lines.
+                _flush(write_log)
 
     app = FastAPI(
         title="rbfgate",

@@ -14,12 +14,15 @@ thread. ``handle`` runs under one lock, so two flushes never interleave.
 
 from __future__ import annotations
 
+import logging
 import threading
 import time
 from collections.abc import Callable
 from typing import Any
 
 __all__ = ["WriteBehind"]
+
+_log = logging.getLogger("rbfgate.service")
 
 
 class WriteBehind:
@@ -28,7 +31,9 @@ class WriteBehind:
     def __init__(self, handle: Callable[[list[Any]], None], *, seconds: float, name: str,
                  errors: tuple[type[BaseException], ...] = ()) -> None:
         """``errors``: what ``handle`` may raise on the writer thread and is then dropped with its
-        batch (a log stream that cannot be written, say); anything else ends the writer thread."""
+        batch, silently (a log stream that cannot be written, say: there is nowhere to say so);
+        anything else drops the batch too and is logged with its traceback (stderr). Either way the
+        writer thread goes on with the next batch. ``flush`` raises whatever ``handle`` raises."""
         self._handle = handle
         self._seconds = seconds
         self._name = name
@@ -73,3 +78,5 @@ class WriteBehind:
                 self.flush()
             except self._errors:
                 pass
+            except Exception:  # a bug in handle: that batch is lost, later ones are not (the thread lives on)
+                _log.exception("%s: a batch could not be handled and was dropped", self._name)

@@ -13,6 +13,7 @@ problems (feature, value, reason, allowed range, message) in the same order.
 from __future__ import annotations
 
 import json
+from collections import defaultdict
 
 import numpy as np
 import pytest
@@ -107,6 +108,15 @@ def test_a_plain_record_is_accepted_as_its_floats(record):
     checked = check_records(_FEATURES, [record], from_json, ids=True)
     assert checked.accepted.tolist() == [0] and not checked.problems and checked.ids == [None]
     assert checked.values.tobytes() == np.array([[float(record[name]) for name in "abc"]]).tobytes()
+
+
+def test_a_mapping_that_invents_missing_keys_gets_the_rules_answer():
+    # A defaultdict fills in a missing feature on lookup; the rules see it missing (found in review).
+    record = defaultdict(float, {"a": 0.5, "b": 7.0, "d": 1.0})  # c missing, d unknown
+    fast = check_records(_FEATURES, [record], from_json, ids=False)
+    _same(fast, check_records(_FEATURES, [defaultdict(float, {"a": 0.5, "b": 7.0, "d": 1.0})], _slow, ids=False))
+    assert [problem.reason for problem in fast.problems[0]] == ["missing", "unknown_feature"]
+    assert "c" not in record  # and the caller's record is left as it was
 
 
 def test_a_plain_batch_is_accepted_whole_by_the_column_checks():

@@ -4,14 +4,21 @@ from __future__ import annotations
 
 import io
 import json
+import os
+import subprocess
+import sys
 import threading
 import time
+from pathlib import Path
 
 from fastapi.testclient import TestClient
 
 from service.app import create_app
 from service.log_lines import JsonLines
 from service.settings import Settings
+from service.write_behind import WriteBehind
+
+_REPO = Path(__file__).resolve().parents[3]
 
 _RECORD = {"sepal_length_cm": 5.1, "sepal_width_cm": 3.5, "petal_length_cm": 1.4, "petal_width_cm": 0.2}
 
@@ -49,14 +56,45 @@ def test_lines_reach_the_stream_without_a_flush_within_the_interval():
     assert _events(stream)[0]["n"] == 1
 
 
-def test_lines_logged_together_are_written_with_one_write():
+def test_lines_logged_together_are_written_in_few_writes_of_whole_lines_within_pipe_buf():
     stream = _Recording()
     write = JsonLines(stream, flush_seconds=0.5)
     for n in range(100):
-        write({"event": "request", "n": n})
-    assert _wait_for(lambda: len(stream.writes) >= 1)
-    assert len(stream.writes) == 1  # one batch: 100 lines, logged well within the half second
-    assert [event["n"] for event in _events(stream)] == list(range(100))
+        write({"event": "request", "n": n, "pad": "x" * 200})  # ~250 bytes a line, 25 KB in all
+    write({"event": "request", "n": 100, "pad": "y" * 10_000})  # one line longer than PIPE_BUF
+    assert _wait_for(lambda: len(_events(stream)) == 101)
+    # pipe(7): Linux keeps a pipe write of at most PIPE_BUF = 4,096 bytes whole.
+    assert all(len(text.encode()) <= 4096 for text in stream.writes[:-1])
+    assert stream.writes[-1].count("\n") == 1 and len(stream.writes[-1]) > 10_000  # the long line alone
+    assert all(text.endswith("\n") for text in stream.writes)
+    assert 7 <= len(stream.writes) <= 9  # 25 KB in chunks of up to 4 KB, not one write per line
+    assert [event["n"] for event in _events(stream)] == list(range(101))
+
+
+_CHILD = """
+import sys
+from service.log_lines import JsonLines
+log = JsonLines()  # stdout: the pipe all the processes share
+for n in range(2000):
+    log({"event": "request", "worker": int(sys.argv[1]), "n": n, "pad": "x" * 300})
+"""
+
+
+def test_three_processes_writing_to_one_pipe_never_cut_each_others_lines():
+    # What several rbfgate workers do: one stdout pipe, a reader (a log collector) slower than them.
+    read_end, write_end = os.pipe()
+    children = [subprocess.Popen([sys.executable, "-c", _CHILD, str(worker)], stdout=write_end, cwd=_REPO,
+                                 env={**os.environ, "PYTHONPATH": str(_REPO)}) for worker in range(3)]
+    os.close(write_end)
+    data = b""
+    with os.fdopen(read_end, "rb", buffering=0) as pipe:
+        while chunk := pipe.read(4096):
+            data += chunk
+            time.sleep(0.0005)
+    assert [child.wait(60) for child in children] == [0, 0, 0]
+    events = [json.loads(line) for line in data.decode("utf-8").splitlines()]  # raises on a broken line
+    for worker in range(3):  # every line once, in each process's order (their atexit flush wrote the rest)
+        assert [event["n"] for event in events if event["worker"] == worker] == list(range(2000))
 
 
 def test_nothing_is_written_before_the_interval_or_a_flush():
@@ -124,6 +162,23 @@ def test_a_broken_stream_does_not_stop_later_lines(tmp_path):
     assert _wait_for(lambda: not Flaky.fail)
     write({"event": "kept"})
     assert _wait_for(lambda: "kept" in stream.getvalue())
+
+
+def test_a_failing_handler_loses_its_batch_but_not_the_writer_thread(caplog):
+    handled: list[list[int]] = []
+
+    def handle(items: list[int]) -> None:
+        if not handled and items[0] == 0:
+            handled.append([])  # fail once
+            raise RuntimeError("a bug in the handler")
+        handled.append(items)
+
+    batch = WriteBehind(handle, seconds=0.01, name="test-writer")
+    batch.add(0)
+    assert _wait_for(lambda: len(handled) == 1)
+    batch.add(1)
+    assert _wait_for(lambda: handled[-1:] == [[1]])
+    assert "test-writer: a batch could not be handled and was dropped" in caplog.text
 
 
 def test_the_apps_shutdown_writes_the_pending_lines(shared_store):
