@@ -274,9 +274,11 @@ def _service_limits(service: list[dict], results: dict) -> list[str]:
                      f"so {ours['cpu_ms_per_request'] - bare['cpu_ms_per_request']:.2f} ms per request is what rbfgate "
                      "adds: the access rule, the request id, the range rules, "
                      "the scorer's diagnostics (nearest support vector, percentile, domain model), the version "
-                     "headers, the log line and the metrics (the score routes already bypass FastAPI's router, "
-                     "`service/score_dispatch.py`). The share of the bare endpoint is bound by that "
-                     "difference, most of it per-call Python and numpy overhead rather than per-record work")
+                     "headers, the read deadline and connection cap, the log line and the metrics (those two "
+                     "written behind the answers, `service/write_behind.py`; the score routes already bypass "
+                     "FastAPI's router, `service/score_dispatch.py`). The share of the bare endpoint is bound by "
+                     "that difference, most of it per-call Python and numpy overhead rather than per-record work; "
+                     "the largest single part is the one-row scorer with its diagnostics (see the profiles below)")
         missed = _missed([
             (ours["requests_per_second"] / theirs["requests_per_second"] < SERVICE_RATIO,
              f"x{SERVICE_RATIO:g} the reference's requests/s "
